@@ -1,0 +1,27 @@
+# The two commands in the README's quick start are `make demo` and `make test`.
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+
+.PHONY: setup demo test bench clean
+
+setup: $(STAMP)
+
+$(STAMP): pyproject.toml
+	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+demo: setup
+	$(BIN)/kinemap demo --out kinemap-demo --overwrite
+
+test: setup
+	$(BIN)/python -m pytest -q
+
+bench: setup
+	$(BIN)/python benchmarks/moments.py
+
+clean:
+	rm -rf $(VENV) kinemap-demo kinemap-out .pytest_cache

@@ -1,0 +1,207 @@
+"""The ``kinemap`` command.
+
+Every subcommand builds the same configuration dict a TOML file would give
+(:mod:`kinemap.config`) and hands it to :mod:`kinemap.pipeline`.  User mistakes end with
+one line on stderr and exit code 2 (``--debug`` shows the traceback).
+"""
+from __future__ import annotations
+
+import argparse
+import sys
+import warnings
+
+from . import __version__
+from .errors import KinemapError, KinemapWarning
+
+__all__ = ["main", "build_parser"]
+
+EXIT_USAGE = 2
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse, but a usage error is one line (and exit code 2)."""
+
+    def error(self, message):
+        self.exit(EXIT_USAGE, f"kinemap: error: {message} (see '{self.prog} --help')\n")
+
+
+def _add_cube_options(p):
+    g = p.add_argument_group("reading the cube")
+    g.add_argument("--convention", choices=["radio", "optical", "relativistic"],
+                   help="velocity convention (default: radio for frequency axes, optical for "
+                        "wavelength axes, a velocity axis keeps its own)")
+    g.add_argument("--rest-value", metavar="QUANTITY",
+                   help="rest frequency or wavelength, e.g. '1420.405751768 MHz' (overrides "
+                        "the header)")
+    g.add_argument("--frame", metavar="SPECSYS",
+                   help="spectral frame of the output velocities (TOPOCENT, BARYCENT, LSRK); "
+                        "default: the cube's")
+    g.add_argument("--vrange", metavar="V1,V2", help="keep channels in this velocity range (km/s)")
+    g.add_argument("--box", metavar="X0:X1,Y0:Y1", help="pixel box (0-based, end exclusive)")
+    g.add_argument("--region", metavar="FILE", help="DS9 or CRTF region file")
+    g.add_argument("--beams", choices=["common", "refuse"], default="common",
+                   help="cube with a beam per channel: convolve to a common beam or refuse")
+    g.add_argument("--bunit", help="unit of the cube values when BUNIT is missing or wrong")
+    g.add_argument("--line-free", metavar="V1,V2[;V3,V4]",
+                   help="line-free velocity ranges (km/s) for the noise; default: automatic")
+
+
+def _add_output_options(p):
+    g = p.add_argument_group("output")
+    g.add_argument("--out", default="kinemap-out", metavar="DIR", help="output folder")
+    g.add_argument("--overwrite", action="store_true", help="write into a non-empty folder")
+    g.add_argument("--no-plots", action="store_true", help="skip PNG plots")
+    g.add_argument("--max-memory", default="1GB", metavar="SIZE",
+                   help="working-set bound for block-wise stages (default 1GB)")
+    g.add_argument("--no-progress", action="store_true", help="no progress bars")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="kinemap", description="Kinematics from spectral-line cubes.")
+    parser.add_argument("--version", action="version", version=f"kinemap {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    p = sub.add_parser("info", help="show what the reader understood about a cube")
+    p.add_argument("cube")
+    _add_cube_options(p)
+
+    p = sub.add_parser("maps", help="intensity, velocity and dispersion maps")
+    p.add_argument("cube")
+    p.add_argument("--method", choices=["moments"], default="moments",
+                   help="moments: moment maps with analytic errors")
+    p.add_argument("--channel-response", choices=["tophat", "hanning", "none"], default="tophat",
+                   help="how channels sample the spectrum (sets noise correlation)")
+    g = p.add_argument_group("signal mask")
+    g.add_argument("--mask", choices=["smooth", "threshold"], default="smooth",
+                   help="smooth-and-mask (default) or a plain S/N threshold")
+    g.add_argument("--no-mask", action="store_true", help="use every finite channel")
+    g.add_argument("--threshold", type=float, help="S/N threshold (default 5 smooth, 3 plain)")
+    g.add_argument("--grow-threshold", type=float, default=2.0,
+                   help="smooth mask grows into voxels above this smoothed S/N")
+    g.add_argument("--smooth-channels", type=int, default=3)
+    g.add_argument("--min-pixels", type=int, help="smallest island footprint kept (pixels)")
+    _add_cube_options(p)
+    _add_output_options(p)
+
+    p = sub.add_parser("run", help="run the stages described in a TOML config")
+    p.add_argument("config")
+    p.add_argument("--out", help="override [output] dir")
+    p.add_argument("--overwrite", action="store_true")
+
+    p = sub.add_parser("demo", help="make the invented demo cubes and run everything on them")
+    p.add_argument("--out", default="kinemap-demo", metavar="DIR")
+    p.add_argument("--overwrite", action="store_true")
+    p.add_argument("--no-progress", action="store_true")
+    return parser
+
+
+def config_from_args(args) -> dict:
+    from .config import validate_config
+
+    user = {
+        "input": {"cube": args.cube, "convention": args.convention, "rest_value": args.rest_value,
+                  "frame": args.frame, "vrange": args.vrange, "box": args.box,
+                  "region": args.region, "beams": args.beams, "bunit": args.bunit},
+        "noise": {"line_free": args.line_free or "auto"},
+    }
+    if getattr(args, "command", None) == "maps":
+        mask = {"method": "none" if args.no_mask else args.mask, "threshold": args.threshold,
+                "grow_threshold": args.grow_threshold, "smooth_channels": args.smooth_channels,
+                "min_pixels": args.min_pixels}
+        user["mask"] = mask
+        user["maps"] = {"method": args.method, "channel_response": args.channel_response}
+        user["output"] = {"dir": args.out, "overwrite": args.overwrite, "plots": not args.no_plots}
+        user["run"] = {"max_memory": args.max_memory, "progress": not args.no_progress}
+    return validate_config(user)
+
+
+def _cmd_info(args) -> int:
+    from .info import describe
+
+    print(describe(config_from_args(args)))
+    return 0
+
+
+def _cmd_maps(args) -> int:
+    from .pipeline import run_config
+
+    state = run_config(config_from_args(args))
+    _report(state, args.out)
+    return 0
+
+
+def _cmd_run(args) -> int:
+    from .config import load_config
+    from .pipeline import run_config
+
+    cfg = load_config(args.config)
+    if args.out:
+        cfg["output"]["dir"] = args.out
+    if args.overwrite:
+        cfg["output"]["overwrite"] = True
+    state = run_config(cfg)
+    _report(state, cfg["output"]["dir"])
+    return 0
+
+
+def _cmd_demo(args) -> int:
+    from .demo import run_demo
+
+    index = run_demo(args.out, overwrite=args.overwrite, progress=not args.no_progress)
+    print(f"kinemap demo: wrote {index}")
+    return 0
+
+
+def _report(state, out):
+    n = len(state.manifest["products"])
+    total = sum(state.timings.values())
+    print(f"kinemap: wrote {n} products to {out} in {total:.1f} s "
+          f"(velocities: {state.cube.meta.convention} convention, frame "
+          f"{state.cube.meta.frame or 'unknown'})")
+
+
+def _one_line_warnings(message, category, filename, lineno, file=None, line=None):
+    if issubclass(category, KinemapWarning):
+        return f"kinemap: warning: {message}\n"
+    return f"kinemap: warning ({category.__name__}): {message}\n"
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return EXIT_USAGE
+    warnings.formatwarning = _one_line_warnings
+    if not args.debug:
+        # Library chatter (spectral-cube, astropy) is not for the user of a command.
+        warnings.filterwarnings("ignore", module="spectral_cube")
+        warnings.filterwarnings("ignore", category=RuntimeWarning)
+    handler = {"info": _cmd_info, "maps": _cmd_maps, "run": _cmd_run, "demo": _cmd_demo}
+    try:
+        return handler[args.command](args)
+    except KinemapError as exc:
+        if args.debug:
+            raise
+        print(f"kinemap: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except KeyboardInterrupt:
+        print("kinemap: interrupted; nothing was written", file=sys.stderr)
+        return 130
+    except MemoryError:
+        if args.debug:
+            raise
+        print("kinemap: error: out of memory; lower --max-memory or cut the cube with --box or "
+              "--vrange", file=sys.stderr)
+        return 1
+    except Exception as exc:  # an internal bug: short message, traceback on request
+        if args.debug:
+            raise
+        print(f"kinemap: internal error: {type(exc).__name__}: {exc} (rerun with --debug for "
+              "the traceback and please report it)", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

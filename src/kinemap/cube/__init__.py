@@ -1,0 +1,8 @@
+"""Reading spectral-line cubes: axes, units, velocity conventions, frames, beams, subsets."""
+from .core import Cube, CubeMeta
+from .reader import read_cube
+from .spectral import CONVENTIONS, axis_kind, from_velocity, to_velocity
+from ._blocks import iter_blocks, block_rows
+
+__all__ = ["Cube", "CubeMeta", "read_cube", "CONVENTIONS", "axis_kind", "to_velocity",
+           "from_velocity", "iter_blocks", "block_rows"]

@@ -1,0 +1,45 @@
+"""Errors and warnings raised by kinemap.
+
+Every error a user can cause by giving bad input is a :class:`KinemapError` whose message
+names the problem and the fix in one line; the command-line tool prints that line and
+exits with code 2.  Warnings derive from :class:`KinemapWarning` so they can be filtered
+as a family or one kind at a time.
+"""
+
+__all__ = [
+    "KinemapError",
+    "KinemapWarning",
+    "HeaderRepairWarning",
+    "MissingUnitWarning",
+    "BeamWarning",
+    "NoiseWarning",
+    "FitWarning",
+]
+
+
+class KinemapError(Exception):
+    """Bad input or an impossible request; the message says what is wrong and how to fix it."""
+
+
+class KinemapWarning(UserWarning):
+    """Base class of every warning kinemap emits."""
+
+
+class HeaderRepairWarning(KinemapWarning):
+    """astropy/wcslib changed the header on reading (the original is kept and reported)."""
+
+
+class MissingUnitWarning(KinemapWarning):
+    """The cube has no usable BUNIT; values are carried in arbitrary units."""
+
+
+class BeamWarning(KinemapWarning):
+    """Something about the beam(s) the user should know."""
+
+
+class NoiseWarning(KinemapWarning):
+    """The noise estimate rests on few channels or failed for some pixels."""
+
+
+class FitWarning(KinemapWarning):
+    """Fits that failed or hit a bound for a notable fraction of pixels."""

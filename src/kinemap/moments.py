@@ -1,0 +1,170 @@
+"""Moment maps with analytic uncertainties.
+
+For the channels i that count as signal in a spectrum (inside the mask, finite), with
+intensities I_i, velocities v_i (km/s) and channel widths dv_i = |v_i+1 - v_i-1| / 2:
+
+* moment 0 (integrated intensity)  S  = sum_i I_i dv_i
+* moment 1 (intensity-weighted velocity)  m1 = sum_i I_i dv_i v_i / S
+* moment 2 (intensity-weighted dispersion, a sigma)  m2 = sqrt(M2),
+  M2 = sum_i I_i dv_i (v_i - m1)^2 / S
+* peak intensity, the velocity of the peak channel, the number of channels used.
+
+Uncertainties (1 sigma) come from linear propagation of the per-channel noise sigma of the
+spectrum.  Each moment is (to first order) a weighted sum of the I_i, so
+Var = sigma^2 sum_ij w_i w_j rho_|i-j| with rho the noise correlation between channels
+(rho = [1] for top-hat channels; [1, 2/3, 1/6] after Hanning smoothing, see
+:mod:`kinemap.response`) and weights
+
+* moment 0: w_i = dv_i
+* moment 1: w_i = dv_i (v_i - m1) / S
+* moment 2: w_i = dv_i ((v_i - m1)^2 - M2) / S for M2, and sigma(m2) = sigma(M2) / (2 m2).
+
+These are first-order (small-noise) errors: they become optimistic when S/N of S is below
+a few, and they do not include the bias a threshold mask imposes.  A pixel with no signal
+channels, or with S <= 0, gets NaN in moments 1 and 2.
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import astropy.units as u
+import numpy as np
+
+from ._units import KMS
+from .cube._blocks import DEFAULT_MAX_MEMORY, iter_blocks
+from .products import Product
+from .response import check_response, noise_correlation, variance_of_sum
+
+__all__ = ["MomentMaps", "compute_moments"]
+
+
+@dataclass(frozen=True)
+class MomentMaps:
+    """Moment maps of a cube (arrays (ny, nx); velocities km/s, intensities in the cube unit).
+
+    ``moment0`` is in cube unit x km/s.  NaN where undefined.
+    """
+
+    moment0: np.ndarray
+    moment1: np.ndarray
+    moment2: np.ndarray
+    moment0_err: np.ndarray
+    moment1_err: np.ndarray
+    moment2_err: np.ndarray
+    peak: np.ndarray
+    velocity_at_peak: np.ndarray
+    nchan: np.ndarray
+    bunit: u.UnitBase
+    channel_response: str
+    noise: np.ndarray | None = None
+    signal_footprint: np.ndarray | None = None
+    settings: dict = field(default_factory=dict)
+    seconds: float = 0.0
+
+    def products(self) -> list[Product]:
+        b = self.bunit
+        out = [
+            Product("moment0", self.moment0, b * KMS, "integrated intensity (moment 0)", "intensity"),
+            Product("moment1", self.moment1, KMS, "intensity-weighted velocity (moment 1)", "velocity"),
+            Product("moment2", self.moment2, KMS,
+                    "intensity-weighted dispersion (moment 2, a Gaussian sigma)", "dispersion"),
+            Product("moment0_err", self.moment0_err, b * KMS, "1-sigma error of moment 0", "error"),
+            Product("moment1_err", self.moment1_err, KMS, "1-sigma error of moment 1", "error"),
+            Product("moment2_err", self.moment2_err, KMS, "1-sigma error of moment 2", "error"),
+            Product("peak", self.peak, b, "peak intensity", "intensity"),
+            Product("velocity_at_peak", self.velocity_at_peak, KMS,
+                    "velocity of the peak channel", "velocity"),
+            Product("nchan", self.nchan.astype(np.int16), u.one, "number of channels used", "count"),
+        ]
+        if self.noise is not None:
+            out.append(Product("noise", self.noise, b, "1-sigma noise per channel", "noise"))
+        if self.signal_footprint is not None:
+            out.append(Product("mask", self.signal_footprint.astype(np.uint8), u.one,
+                               f"1 where the spectrum has channels in the signal mask "
+                               f"({self.settings.get('mask', 'none')})", "mask"))
+        return out
+
+
+def moments_of_block(data, velocity, dv, use, sigma, rho):
+    """Moments of a block: data (nchan, n), use (nchan, n) bool, sigma (n,).  Returns dict."""
+    w = np.where(use, data, 0.0)
+    wdv = w * dv[:, None]
+    n_used = use.sum(axis=0)
+    S = wdv.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pos = S > 0
+        m1 = np.where(pos, (wdv * velocity[:, None]).sum(axis=0) / S, np.nan)
+        d = velocity[:, None] - m1[None, :]
+        M2 = np.where(pos, (wdv * d * d).sum(axis=0) / S, np.nan)
+        M2 = np.where(M2 >= 0, M2, np.nan)
+        m2 = np.sqrt(M2)
+        s2 = sigma * sigma
+        dvu = np.where(use, dv[:, None], 0.0)
+        e0 = np.sqrt(variance_of_sum(dvu, s2, rho))
+        e1 = np.sqrt(variance_of_sum(dvu * d / S, s2, rho))
+        eM2 = np.sqrt(variance_of_sum(dvu * (d * d - M2) / S, s2, rho))
+        e2 = eM2 / (2.0 * m2)
+        masked = np.where(use, data, -np.inf)
+        ipk = np.argmax(masked, axis=0)
+        peak = np.take_along_axis(masked, ipk[None], axis=0)[0]
+    none = n_used == 0
+    peak = np.where(none, np.nan, peak)
+    vpk = np.where(none, np.nan, velocity[ipk])
+    S = np.where(none, np.nan, S)
+    e0 = np.where(none, np.nan, e0)
+    bad1 = none | ~np.isfinite(m1)
+    e1 = np.where(bad1, np.nan, e1)
+    e2 = np.where(bad1 | ~np.isfinite(m2) | (m2 == 0), np.nan, e2)
+    return dict(moment0=S, moment1=m1, moment2=m2, moment0_err=e0, moment1_err=e1,
+                moment2_err=e2, peak=peak, velocity_at_peak=vpk, nchan=n_used)
+
+
+def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "tophat",
+                    max_memory: int = DEFAULT_MAX_MEMORY, progress: bool = False) -> MomentMaps:
+    """Moment maps of ``cube`` over the signal channels of ``mask``.
+
+    Parameters
+    ----------
+    cube : kinemap.cube.Cube
+    mask : kinemap.masks.SignalMask, optional
+        None uses every finite channel.
+    noise : kinemap.noise.NoiseMap, optional
+        Needed for the error maps and for a 'threshold' mask; without it errors are NaN.
+    channel_response : {'tophat', 'hanning', 'none'}
+        Sets the channel-to-channel noise correlation in the errors.
+
+    Returns
+    -------
+    MomentMaps
+    """
+    t0 = time.perf_counter()
+    response = check_response(channel_response)
+    rho = noise_correlation(response)
+    nchan, ny, nx = cube.shape
+    v = cube.velocity
+    dv = cube.channel_width
+    sigma_map = noise.sigma if noise is not None else np.full((ny, nx), np.nan)
+    keys = ("moment0", "moment1", "moment2", "moment0_err", "moment1_err", "moment2_err",
+            "peak", "velocity_at_peak", "nchan")
+    out = {k: np.full((ny, nx), np.nan) for k in keys}
+    for ys, block in iter_blocks(cube, max_memory=max_memory, progress=progress and "moments"):
+        sig = sigma_map[ys]
+        if mask is not None:
+            use = mask.block(ys, block, sig, cube.footprint)
+        else:
+            use = np.isfinite(block)
+            if cube.footprint is not None:
+                use &= cube.footprint[None, ys, :]
+        rows = block.shape[1]
+        res = moments_of_block(block.reshape(nchan, -1), v, dv, use.reshape(nchan, -1),
+                               sig.reshape(-1), rho)
+        for k in keys:
+            out[k][ys] = res[k].reshape(rows, nx)
+    footprint = out["nchan"] > 0
+    return MomentMaps(**out, bunit=cube.meta.bunit, channel_response=response,
+                      noise=noise.sigma if noise is not None else None,
+                      signal_footprint=footprint,
+                      settings={"mask": mask.method if mask is not None else "none",
+                                "channel_response": response},
+                      seconds=time.perf_counter() - t0)
