@@ -31,7 +31,9 @@ CASES = [
      lambda x: (x * u.Hz).to(u.km / u.s, u.doppler_radio(HI))),
     ("WAVE", "Angstrom", 6560.0, 0.25, {"RESTWAV": 6564.61e-10}, "optical",
      lambda x: (x * u.AA).to(u.km / u.s, u.doppler_optical(6564.61 * u.AA))),
-    ("AWAV", "Angstrom", 6575.0, -0.25, {"RESTWAV": HALPHA_AIR.to_value(u.m)}, "optical",
+    # RESTWAV is in vacuum (FITS WCS Paper III): 6564.61289 A is what wcslib gives for
+    # 6562.80 A in air (astropy.wcs 'WAVE-A2W', checked in test_restwav_vacuum_to_air_as_wcslib)
+    ("AWAV", "Angstrom", 6575.0, -0.25, {"RESTWAV": 6564.61289406447e-10}, "optical",
      lambda x: (x * u.AA).to(u.km / u.s, u.doppler_optical(HALPHA_AIR))),
     ("VRAD", "km/s", -100.0, 5.0, {}, "radio", lambda x: x * u.km / u.s),
     ("VOPT", "m/s", 4.0e5, -2.0e3, {}, "optical", lambda x: (x * u.m / u.s).to(u.km / u.s)),
@@ -61,6 +63,21 @@ def test_convention_override_goes_through_frequency(tmp_path, conv, equiv):
     ref = (axis_values(h, 40) * u.Hz).to_value(u.km / u.s, equivalencies=equiv(HI))  # astropy
     np.testing.assert_allclose(cube.velocity, ref, atol=1e-9)
     assert cube.meta.ctype == "FREQ"  # the header's CTYPE is never edited
+
+
+@pytest.mark.parametrize("air", [4861.33, 6562.80, 6583.45])
+def test_restwav_vacuum_to_air_as_wcslib(air):
+    """Our air <-> vacuum step inverts wcslib's AWAV translation (astropy.wcs, 'WAVE-A2W')."""
+    from astropy.wcs import WCS
+
+    from kinemap.airvac import fits_vacuum_to_air
+
+    h = fits.Header({"NAXIS": 1, "NAXIS1": 4, "CTYPE1": "AWAV", "CUNIT1": "Angstrom",
+                     "CRVAL1": air, "CDELT1": 1.0, "CRPIX1": 1})
+    w = WCS(h)
+    w.wcs.sptr("WAVE-A2W")
+    vac = float(w.pixel_to_world_values(np.array([0.0]))[0]) * 1e10
+    assert float(fits_vacuum_to_air(vac)) == pytest.approx(air, abs=1e-6)
 
 
 def test_velocity_axis_converted_to_other_convention(tmp_path):
@@ -134,7 +151,7 @@ def test_missing_bunit_warns_and_carries_on(tmp_path):
 
 def test_optical_cube_without_beam_is_quiet_radio_cube_warns(tmp_path):
     h = make_header("AWAV", crval=6550.0, cdelt=0.25, cunit="Angstrom",
-                    extra={"RESTWAV": HALPHA_AIR.to_value(u.m)})
+                    extra={"RESTWAV": 6564.61e-10})
     path = write_cube(tmp_path / "o.fits", gaussian_cube(40, 12, 10, centre_chan=20, sigma_chan=3), h)
     with warnings.catch_warnings():
         warnings.simplefilter("error", BeamWarning)

@@ -12,6 +12,7 @@ from astropy.io import fits
 from astropy.wcs.utils import pixel_to_skycoord
 
 from .._units import parse_quantity
+from ..airvac import fits_vacuum_to_air
 from ..errors import BeamWarning, KinemapError
 from ._header import build_wcs, find_cube_hdu, open_fits, parse_bunit, sha256
 from .beams import check_policy, read_beam
@@ -40,7 +41,8 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
         optical for a wavelength axis, the axis' own for a velocity axis.
     rest_value : Quantity or str, optional
         Rest frequency or wavelength; overrides RESTFRQ/RESTFREQ/RESTWAV.  For an AWAV
-        axis it must be an air wavelength.
+        axis it must be an air wavelength.  A header's RESTWAV is a vacuum wavelength
+        (FITS WCS Paper III) and is converted to air for AWAV axes.
     frame : str, optional
         Spectral frame for the velocities (TOPOCENT, BARYCENT, LSRK, ...).  Default: the
         cube's SPECSYS.  A change needs the observer's location and time in the header.
@@ -120,6 +122,13 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
         rest = wcs.wcs.restfrq * u.Hz
     elif wcs.wcs.restwav > 0:
         rest = wcs.wcs.restwav * u.m
+        if kind.medium == "air":
+            # RESTWAV is a vacuum wavelength (FITS WCS Paper III); the AWAV axis needs the
+            # air value, converted with the dispersion formula wcslib uses.
+            air = float(fits_vacuum_to_air(rest.to_value(u.AA))) * u.AA
+            repairs.append(f"RESTWAV {rest.to(u.AA):.3f} (vacuum) read as {air:.3f} in air "
+                           "for the AWAV axis")
+            rest = air
     else:
         rest = None
     if kind.medium == "air" and rest is not None and not rest.unit.is_equivalent(u.m):

@@ -6,7 +6,7 @@ import tomllib
 from pathlib import Path
 
 from ..errors import KinemapError
-from . import _airvac
+from .. import airvac as _airvac
 
 REQUIRED = ("mass_amu", "source")
 NUMERIC = (

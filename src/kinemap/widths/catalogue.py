@@ -20,7 +20,8 @@ from astropy.constants import c as _C
 
 from .._units import KMS, to_value
 from ..errors import KinemapError
-from . import _airvac, _parse
+from .. import airvac as _airvac
+from . import _parse
 
 __all__ = [
     "Line",
