@@ -11,12 +11,13 @@ from conftest import make_header, write_cube
 from kinemap.cube import read_cube
 from kinemap.errors import KinemapError
 from kinemap.masks import make_mask
-from kinemap.noise import MAD_TO_SIGMA, estimate_noise
+from kinemap.noise import CLIP, clip_correction, estimate_noise
 
 
-def test_mad_constant_is_gaussian_consistency_factor():
-    # 1 / Phi^-1(3/4) for a normal distribution (scipy.stats reference)
-    assert MAD_TO_SIGMA == pytest.approx(1.0 / stats.norm.ppf(0.75), rel=1e-12)
+def test_clip_correction_is_truncated_normal_sigma():
+    # sigma of a unit normal truncated at +-c (scipy.stats.truncnorm, reference library)
+    assert clip_correction(CLIP) == pytest.approx(stats.truncnorm(-CLIP, CLIP).std(), rel=1e-12)
+    assert clip_correction(2.0) == pytest.approx(stats.truncnorm(-2, 2).std(), rel=1e-12)
 
 
 def _cube(tmp_path, data, **kw):

@@ -21,7 +21,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import ndimage
 
 from .errors import KinemapError
 from .response import noise_correlation, variance_of_sum
@@ -78,6 +77,8 @@ def _smoothing_noise_factor(filled, finite, sig, nbox, rho, nplanes=24):
     over the MAD of the raw ones is the spatial factor.  Spectral part: exact for a boxcar
     of ``nbox`` channels given the channel correlation ``rho``.
     """
+    from scipy import ndimage
+
     nchan = filled.shape[0]
     idx = np.unique(np.linspace(0, nchan - 2, min(nplanes, nchan - 1)).astype(int))
     diff = (filled[idx + 1] - filled[idx]) * (finite[idx + 1] & finite[idx])
@@ -145,6 +146,8 @@ def make_mask(cube, noise, *, method: str = "smooth", threshold: float | None = 
         min_pixels = int(max(1, round(1.1331 * (beam_fwhm_pix ** 2 + fwhm_pix ** 2))))
     if noise is None:
         raise KinemapError("the smooth mask needs a noise map; estimate the noise first")
+    from scipy import ndimage  # a tenth of a second to import: only for this method
+
     data = np.asarray(cube.data, dtype=np.float32)
     finite = np.isfinite(data)
     filled = np.where(finite, data, 0.0).astype(np.float32)

@@ -34,7 +34,8 @@ import numpy as np
 from ._units import KMS
 from .cube._blocks import DEFAULT_MAX_MEMORY, iter_blocks
 from .products import Product
-from .response import check_response, noise_correlation, variance_of_sum
+from ._moments_kernel import USE_FINITE, USE_MASK, USE_THRESHOLD, moments_kernel
+from .response import check_response, noise_correlation
 
 __all__ = ["MomentMaps", "compute_moments"]
 
@@ -86,40 +87,6 @@ class MomentMaps:
         return out
 
 
-def moments_of_block(data, velocity, dv, use, sigma, rho):
-    """Moments of a block: data (nchan, n), use (nchan, n) bool, sigma (n,).  Returns dict."""
-    w = np.where(use, data, 0.0)
-    wdv = w * dv[:, None]
-    n_used = use.sum(axis=0)
-    S = wdv.sum(axis=0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        pos = S > 0
-        m1 = np.where(pos, (wdv * velocity[:, None]).sum(axis=0) / S, np.nan)
-        d = velocity[:, None] - m1[None, :]
-        M2 = np.where(pos, (wdv * d * d).sum(axis=0) / S, np.nan)
-        M2 = np.where(M2 >= 0, M2, np.nan)
-        m2 = np.sqrt(M2)
-        s2 = sigma * sigma
-        dvu = np.where(use, dv[:, None], 0.0)
-        e0 = np.sqrt(variance_of_sum(dvu, s2, rho))
-        e1 = np.sqrt(variance_of_sum(dvu * d / S, s2, rho))
-        eM2 = np.sqrt(variance_of_sum(dvu * (d * d - M2) / S, s2, rho))
-        e2 = eM2 / (2.0 * m2)
-        masked = np.where(use, data, -np.inf)
-        ipk = np.argmax(masked, axis=0)
-        peak = np.take_along_axis(masked, ipk[None], axis=0)[0]
-    none = n_used == 0
-    peak = np.where(none, np.nan, peak)
-    vpk = np.where(none, np.nan, velocity[ipk])
-    S = np.where(none, np.nan, S)
-    e0 = np.where(none, np.nan, e0)
-    bad1 = none | ~np.isfinite(m1)
-    e1 = np.where(bad1, np.nan, e1)
-    e2 = np.where(bad1 | ~np.isfinite(m2) | (m2 == 0), np.nan, e2)
-    return dict(moment0=S, moment1=m1, moment2=m2, moment0_err=e0, moment1_err=e1,
-                moment2_err=e2, peak=peak, velocity_at_peak=vpk, nchan=n_used)
-
-
 def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "tophat",
                     max_memory: int = DEFAULT_MAX_MEMORY, progress: bool = False) -> MomentMaps:
     """Moment maps of ``cube`` over the signal channels of ``mask``.
@@ -142,25 +109,34 @@ def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "top
     response = check_response(channel_response)
     rho = noise_correlation(response)
     nchan, ny, nx = cube.shape
-    v = cube.velocity
-    dv = cube.channel_width
+    v = np.ascontiguousarray(cube.velocity, dtype=np.float64)
+    dv = np.ascontiguousarray(cube.channel_width, dtype=np.float64)
     sigma_map = noise.sigma if noise is not None else np.full((ny, nx), np.nan)
     keys = ("moment0", "moment1", "moment2", "moment0_err", "moment1_err", "moment2_err",
             "peak", "velocity_at_peak", "nchan")
     out = {k: np.full((ny, nx), np.nan) for k in keys}
-    for ys, block in iter_blocks(cube, max_memory=max_memory, progress=progress and "moments"):
-        sig = sigma_map[ys]
-        if mask is not None:
-            use = mask.block(ys, block, sig, cube.footprint)
-        else:
-            use = np.isfinite(block)
-            if cube.footprint is not None:
-                use &= cube.footprint[None, ys, :]
+    rho = np.ascontiguousarray(rho, dtype=np.float64)
+    mode, threshold = USE_FINITE, 0.0
+    if mask is not None and mask.method == "threshold":
+        mode, threshold = USE_THRESHOLD, float(mask.threshold)
+    elif mask is not None and mask.method == "smooth":
+        mode = USE_MASK
+    no_mask = np.zeros((1, 1), dtype=np.bool_)
+    for ys, block in iter_blocks(cube, max_memory=max_memory, progress=progress and "moments",
+                                 dtype=None):
         rows = block.shape[1]
-        res = moments_of_block(block.reshape(nchan, -1), v, dv, use.reshape(nchan, -1),
-                               sig.reshape(-1), rho)
-        for k in keys:
-            out[k][ys] = res[k].reshape(rows, nx)
+        flat = block.reshape(nchan, -1)
+        sig = np.ascontiguousarray(sigma_map[ys].reshape(-1), dtype=np.float64)
+        if cube.footprint is not None:
+            fp = np.ascontiguousarray(cube.footprint[ys].reshape(-1))
+        else:
+            fp = np.ones(flat.shape[1], dtype=np.bool_)
+        m = (np.ascontiguousarray(mask.mask[:, ys, :].reshape(nchan, -1))
+             if mode == USE_MASK else no_mask)
+        res = np.empty((len(keys), flat.shape[1]))
+        moments_kernel(flat, v, dv, mode, threshold, sig, m, fp, rho, res)
+        for i, k in enumerate(keys):
+            out[k][ys] = res[i].reshape(rows, nx)
     footprint = out["nchan"] > 0
     return MomentMaps(**out, bunit=cube.meta.bunit, channel_response=response,
                       noise=noise.sigma if noise is not None else None,

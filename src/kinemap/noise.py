@@ -1,8 +1,11 @@
 """Robust noise per pixel from line-free channels.
 
-The estimator is the median absolute deviation scaled to a Gaussian sigma,
-``1.4826 * median(|x - median(x)|)`` (common practice).  With line-free velocity ranges it
-runs over those channels of each spectrum.  Without them ('auto') it runs over the second
+The estimator is an iteratively clipped RMS: values beyond 3.5 sigma of the mean are
+dropped until the kept set settles, and the result is divided by the sigma of a Gaussian
+truncated at +-3.5 (0.9969) so it is unbiased for Gaussian noise.  It is as robust as the
+median absolute deviation against a minority of outliers at a fraction of the cost (two
+median selections per spectrum dominated the run time on survey cubes).  With line-free
+velocity ranges it runs over those channels of each spectrum.  Without them ('auto') it runs over the second
 differences of neighbouring channels, scaled by their noise factor given the channel
 correlation (sqrt(6) for independent channels, 1 after Hanning smoothing): a line several
 channels wide nearly cancels in them, so the estimate works even when emission fills most
@@ -19,12 +22,23 @@ import numpy as np
 
 from ._units import KMS, to_value
 from .cube._blocks import DEFAULT_MAX_MEMORY, iter_blocks
-from .response import noise_correlation, variance_of_sum
+from ._noise_kernel import channel_noise, second_difference_noise
 from .errors import KinemapError, NoiseWarning
+from .response import noise_correlation, variance_of_sum
 
-__all__ = ["NoiseMap", "estimate_noise", "MAD_TO_SIGMA"]
+__all__ = ["NoiseMap", "estimate_noise", "clip_correction", "CLIP"]
 
-MAD_TO_SIGMA = 1.482602218505602  # 1 / Phi^-1(3/4), Gaussian consistency (common practice)
+CLIP = 3.5  # clip at 3.5 sigma: drops 0.05 % of Gaussian noise, lines and edges beyond
+
+
+def clip_correction(c: float) -> float:
+    """sigma of a unit Gaussian truncated at +-c: sqrt(1 - 2 c phi(c) / (2 Phi(c) - 1))."""
+    from math import erf, exp, pi, sqrt
+
+    phi = exp(-0.5 * c * c) / sqrt(2.0 * pi)
+    mass = erf(c / sqrt(2.0))
+    return sqrt(1.0 - 2.0 * c * phi / mass)
+
 
 
 @dataclass(frozen=True)
@@ -39,7 +53,7 @@ class NoiseMap:
         Channels the estimate rests on.
     unit : Unit
     method : str
-        'line-free ranges' or 'MAD of second differences'.
+        'line-free ranges' or 'clipped RMS of second differences'.
     """
 
     sigma: np.ndarray
@@ -52,31 +66,12 @@ class NoiseMap:
         return float(np.nanmedian(self.sigma)) if np.isfinite(self.sigma).any() else float("nan")
 
 
-def _mad_sigma(x, keep):
-    """Column-wise MAD sigma of x (nchan, n) over channels where keep is True."""
-    y = np.where(keep & np.isfinite(x), x, np.nan)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        med = np.nanmedian(y, axis=0)
-        return MAD_TO_SIGMA * np.nanmedian(np.abs(y - med), axis=0), med
-
-
+# Second differences x_i-1 - 2 x_i + x_i+1: a line many channels wide nearly cancels in
+# them (its gradient exactly, its curvature mostly) while the noise adds with
+# Var = sigma^2 sum_jk w_j w_k rho_|j-k| for w = (1, -2, 1): 6 sigma^2 for independent
+# channels, 1 sigma^2 after Hanning smoothing.  The MAD keeps the few large values at
+# sharp line edges from biasing the estimate.
 _SECOND_DIFF = np.array([1.0, -2.0, 1.0])
-
-
-def _difference_sigma(x, finite, rho):
-    """Sigma from the MAD of second differences x_i-1 - 2 x_i + x_i+1.
-
-    A line many channels wide nearly cancels in second differences (its gradient exactly,
-    its curvature mostly) while the noise adds: Var = sigma^2 sum_jk w_j w_k rho_|j-k| with
-    w = (1, -2, 1), i.e. 6 sigma^2 for independent channels and 1 sigma^2 after Hanning
-    smoothing.  The MAD keeps the few large values at sharp line edges from biasing it.
-    """
-    d = x[:-2] - 2.0 * x[1:-1] + x[2:]
-    ok = finite[:-2] & finite[1:-1] & finite[2:]
-    s, _ = _mad_sigma(d, ok)
-    factor = float(np.sqrt(variance_of_sum(_SECOND_DIFF[:, None], 1.0, rho))[0])
-    return s / factor, ok
 
 
 def line_free_channels(velocity: np.ndarray, ranges) -> np.ndarray:
@@ -112,22 +107,22 @@ def estimate_noise(cube, *, line_free=None, channel_response: str = "tophat",
     nchan, ny, nx = cube.shape
     rho = noise_correlation(channel_response)
     auto = line_free is None or (isinstance(line_free, str) and line_free.lower() == "auto")
-    fixed = None if auto else line_free_channels(cube.velocity, line_free)
+    fixed = None if auto else np.ascontiguousarray(line_free_channels(cube.velocity, line_free))
     sigma = np.full((ny, nx), np.nan)
     nused = np.zeros((ny, nx), np.int32)
     any_finite = False
-    for ys, block in iter_blocks(cube, max_memory=max_memory, progress=progress and "noise"):
+    factor = float(np.sqrt(variance_of_sum(_SECOND_DIFF[:, None], 1.0, rho))[0])
+    corr = clip_correction(CLIP)
+    for ys, block in iter_blocks(cube, max_memory=max_memory, progress=progress and "noise",
+                                 dtype=None):
         flat = block.reshape(nchan, -1)
-        finite = np.isfinite(flat)
-        any_finite |= bool(finite.any())
-        if fixed is not None:
-            keep = np.broadcast_to(fixed[:, None], flat.shape) & finite
-            s, _ = _mad_sigma(flat, keep)
+        s = np.empty(flat.shape[1])
+        n = np.empty(flat.shape[1], dtype=np.int64)
+        if fixed is None:
+            second_difference_noise(flat, factor, CLIP, corr, s, n)
         else:
-            s, keep = _difference_sigma(flat, finite, rho)
-        n = keep.sum(axis=0)
-        s = np.where(n >= 3, s, np.nan)
-        s = np.where(s > 0, s, np.nan)  # zero MAD: constant data, no noise estimate
+            channel_noise(flat, fixed, CLIP, corr, s, n)
+        any_finite |= bool(n.any()) or bool(np.isfinite(flat).any())
         sigma[ys] = s.reshape(-1, nx)
         nused[ys] = n.reshape(-1, nx)
     if not any_finite:
@@ -140,4 +135,4 @@ def estimate_noise(cube, *, line_free=None, channel_response: str = "tophat",
         warnings.warn(f"noise undetermined for {bad.mean():.0%} of pixels", NoiseWarning,
                       stacklevel=2)
     return NoiseMap(sigma=sigma, nchan_used=nused, unit=cube.meta.bunit,
-                    method="MAD of second differences" if auto else "line-free ranges")
+                    method="clipped RMS of second differences" if auto else "line-free ranges")

@@ -30,9 +30,10 @@ def block_rows(shape, *, max_memory: int = DEFAULT_MAX_MEMORY, factor: float = 6
 
 def iter_blocks(cube, *, max_memory: int = DEFAULT_MAX_MEMORY, factor: float = 6.0,
                 progress: bool | str = False, dtype=np.float64):
-    """Yield ``(rows, block)``: a row slice and the float64 data of those rows.
+    """Yield ``(rows, block)``: a row slice and the data of those rows, C-contiguous.
 
-    ``progress`` is False, True or a label for the progress bar.
+    ``dtype=None`` keeps float32 data as float32 (native byte order, for compiled kernels)
+    and turns anything else into float64.  ``progress`` is False, True or a bar label.
     """
     nchan, ny, nx = cube.shape
     rows = block_rows(cube.shape, max_memory=max_memory, factor=factor)
@@ -44,7 +45,10 @@ def iter_blocks(cube, *, max_memory: int = DEFAULT_MAX_MEMORY, factor: float = 6
     try:
         for y0 in starts:
             ys = slice(y0, min(ny, y0 + rows))
-            block = np.asarray(cube.data[:, ys, :], dtype=dtype)
+            raw = cube.data[:, ys, :]
+            single = raw.dtype.kind == "f" and raw.dtype.itemsize == 4  # any byte order
+            dt = dtype or (np.float32 if single else np.float64)
+            block = np.ascontiguousarray(np.asarray(raw), dtype=dt)
             yield ys, block
             if bar is not None:
                 bar.update(ys.stop - ys.start)

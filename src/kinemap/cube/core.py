@@ -4,7 +4,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field, replace
 
 import astropy.units as u
-import dask.array as da
 import numpy as np
 from astropy.wcs import WCS
 
@@ -39,7 +38,8 @@ class CubeMeta:
     repairs : tuple of str
         Header repairs astropy/wcslib (and kinemap) made on reading.
     source : str
-        Input file name.  ``checksum`` is its SHA-256.
+        Input file name.  ``checksum`` is its SHA-256 (computed in a background thread
+        while the stages run; reading the property waits for it).
     spectral_unit : Unit
         Unit of :attr:`Cube.spectral`.
     subset : dict
@@ -63,12 +63,19 @@ class CubeMeta:
     native_convention: str
     repairs: tuple = ()
     source: str = ""
-    checksum: str = ""
+    checksum_job: object = None
     bunit_missing: bool = False
     spectral_unit: u.UnitBase = u.one
     subset: dict = field(default_factory=dict)
     memmapped: bool = True
     wcs3d: WCS | None = None
+
+    @property
+    def checksum(self) -> str:
+        job = self.checksum_job
+        if job is None:
+            return ""
+        return job.result() if hasattr(job, "result") else str(job)
 
     @property
     def pixel_scale_arcsec(self) -> float:
@@ -84,9 +91,10 @@ class Cube:
 
     Attributes
     ----------
-    data : dask.array.Array
-        Values, shape (nchan, ny, nx), lazily read (memory-mapped where the file allows).
-        NaN means no data.
+    data : array-like
+        Values, shape (nchan, ny, nx): a numpy memory-map view where the file allows
+        (read from disk only when sliced), else an in-memory array; a dask array works
+        too.  NaN means no data.  Slice it in blocks (``cube._blocks.iter_blocks``).
     velocity : ndarray
         Channel-centre velocities, float64 km/s, in ``meta.convention`` and ``meta.frame``.
     spectral : Quantity
@@ -96,7 +104,7 @@ class Cube:
     meta : CubeMeta
     """
 
-    data: da.Array
+    data: object
     velocity: np.ndarray
     spectral: u.Quantity
     meta: CubeMeta

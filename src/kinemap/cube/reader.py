@@ -3,9 +3,9 @@ from __future__ import annotations
 
 import os
 import warnings
+from concurrent.futures import ThreadPoolExecutor
 
 import astropy.units as u
-import dask.array as da
 import numpy as np
 from astropy.coordinates import SkyCoord
 from astropy.io import fits
@@ -13,7 +13,7 @@ from astropy.wcs.utils import pixel_to_skycoord
 
 from .._units import parse_quantity
 from ..airvac import fits_vacuum_to_air
-from ..errors import BeamWarning, KinemapError
+from ..errors import KinemapError
 from ._header import build_wcs, find_cube_hdu, open_fits, parse_bunit, sha256
 from .beams import check_policy, read_beam
 from .core import Cube, CubeMeta
@@ -22,6 +22,9 @@ from .spectral import axis_kind, check_convention, check_rest_value, to_velocity
 from .subset import channel_range, parse_box, region_footprint
 
 __all__ = ["read_cube"]
+
+# hashlib releases the GIL, so the input's checksum is computed while the stages run.
+_CHECKSUMS = ThreadPoolExecutor(max_workers=1, thread_name_prefix="kinemap-sha256")
 
 
 def read_cube(path, *, convention: str | None = None, rest_value=None, frame: str | None = None,
@@ -64,7 +67,8 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
     Returns
     -------
     Cube
-        Lazily read data (dask, memory-mapped where possible), shape (nchan, ny, nx).
+        Lazily read data (a numpy memory map where the file allows), shape
+        (nchan, ny, nx).
     """
     path = os.fspath(path)
     hdul = open_fits(path)
@@ -98,7 +102,9 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
     raw = hdu_obj.data  # memory-mapped when the file allows
     if raw is None:
         raise KinemapError(f"{path}: the cube HDU holds no data")
-    arr = da.from_array(raw, chunks="auto" if raw.ndim == 3 else -1)
+    # A numpy memmap stays lazy through squeeze/transpose/slicing (views), so blocks of
+    # rows are read from disk only when a stage asks for them.
+    arr = raw
     # numpy axis order is the reverse of the WCS order
     np_axis = {i: naxis - 1 - i for i in range(naxis)}
     drop = [np_axis[i] for i in range(naxis) if i not in (spec, lon, lat)]
@@ -209,7 +215,8 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
         wcs=wcs2d, bunit=bunit_value, convention=conv, rest_value=rest, frame=target_frame,
         beam=beam, medium=kind.medium, ctype_original=ctype_original, ctype=ctype,
         native_convention=kind.convention, repairs=tuple(repairs),
-        source=os.path.basename(path), checksum=sha256(path) if checksum else "",
+        source=os.path.basename(path),
+        checksum_job=_CHECKSUMS.submit(sha256, path) if checksum else None,
         bunit_missing=bunit_missing, spectral_unit=spec_unit, subset=subset,
         memmapped=bool(memmapped), wcs3d=wcs3d)
     return Cube(data=arr, velocity=velocity[cs], spectral=spectral[cs], meta=meta,
@@ -229,8 +236,4 @@ def _convolve_to_common(hdul, hdu_obj, beam_list):
         vcube = VaryingResolutionSpectralCube.read(hdul)
         conv = vcube.convolve_to(common)
     data = np.asarray(conv.unmasked_data[:].value, dtype=np.float32)
-    if hdu_obj.header.get("NAXIS", 3) > 3:
-        pass  # spectral-cube already dropped the Stokes axis
-    if conv.shape != data.shape:
-        warnings.warn("unexpected shape after beam convolution", BeamWarning, stacklevel=2)
-    return da.from_array(data, chunks="auto"), common
+    return data, common

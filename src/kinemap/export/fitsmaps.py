@@ -50,7 +50,7 @@ def product_header(meta, *, unit, description: str, key: str, options: dict | No
     h["DATE"] = (datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S"), "UTC creation time")
     h["KMINPUT"] = (meta.source[:60], "input cube file name")
     if meta.checksum:
-        h["KMSHA256"] = (meta.checksum, "SHA-256 of the input file")
+        h["KMSHA256"] = meta.checksum  # 64 hex digits leave no room for a comment
     h["KMCTYPE"] = (meta.ctype_original, "spectral CTYPE of the input, as written")
     for k, v in (extra or {}).items():
         h[k] = v

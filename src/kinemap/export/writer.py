@@ -13,7 +13,6 @@ import numpy as np
 
 from .fitsmaps import product_header, write_fits
 from .manifest import build_manifest, write_json
-from .plots import plot_map, save
 
 __all__ = ["write_products"]
 
@@ -36,6 +35,8 @@ def write_products(folder, meta, products, *, options: dict, timings: dict,
     """
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
+    if plots:  # matplotlib costs a third of a second to import: only when plotting
+        from .plots import plot_map, save
     t0 = time.perf_counter()
     written = {}
     figure_list = {}
