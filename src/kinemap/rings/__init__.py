@@ -1,0 +1,40 @@
+"""Tilted-ring fitting of velocity fields (Begeman 1989) and harmonic ring expansions.
+
+Works on numpy arrays plus the sky geometry of the pixel grid; reads and writes no files.
+
+Public API
+----------
+fit_rings(velocity, grid, ...) -> RingFitResult
+    Three-stage tilted-ring fit with automatic first guesses.
+first_guess(velocity, grid, ...) -> FirstGuess
+    Centre, v_sys, position angle and inclination estimated from the maps.
+SkyGrid
+    Orientation and scale of the pixel grid (``SkyGrid.from_wcs``, ``SkyGrid.from_scale``).
+harmonic_expansion(velocity, rings, grid, ...) -> Table
+model_velocity_field(rings, shape, grid) -> Quantity
+major_axis_pv(cube, velocity_axis, result, ...) -> PositionVelocitySlice
+dynamical_mass(v_rot, radius) -> Quantity;  physical_radius(radius, distance) -> Quantity
+"""
+from .fit import RING_COLUMNS, RingFitResult, fit_rings
+from .grid import SkyGrid
+from .guess import FirstGuess, first_guess
+from .harmonics import HARMONIC_TERMS, harmonic_expansion
+from .mass import dynamical_mass, physical_radius
+from .model import model_velocity_field
+from .pv import PositionVelocitySlice, major_axis_pv
+
+__all__ = [
+    "fit_rings",
+    "RingFitResult",
+    "RING_COLUMNS",
+    "SkyGrid",
+    "first_guess",
+    "FirstGuess",
+    "harmonic_expansion",
+    "HARMONIC_TERMS",
+    "model_velocity_field",
+    "major_axis_pv",
+    "PositionVelocitySlice",
+    "dynamical_mass",
+    "physical_radius",
+]

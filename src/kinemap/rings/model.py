@@ -1,0 +1,139 @@
+"""Model velocity field from a ring solution."""
+from __future__ import annotations
+
+import astropy.units as u
+import numpy as np
+from astropy.table import Table
+
+from .._units import KMS
+from ..errors import KinemapError
+from ._geometry import disk_coords
+from .grid import as_grid
+
+__all__ = ["model_velocity_field"]
+
+
+def model_velocity_field(rings: Table, shape: tuple[int, int], grid) -> u.Quantity:
+    """Line-of-sight velocity of a tilted-ring solution on a pixel grid.
+
+    Parameters
+    ----------
+    rings : `~astropy.table.Table`
+        A ring table as made by :func:`kinemap.rings.fit_rings` (columns radius, v_rot,
+        v_exp, position_angle, inclination, v_sys, x_center, y_center; ``meta['ring_width']``
+        in arcsec).  Rows with NaN in any of those columns are skipped.
+    shape : (ny, nx)
+        Shape of the output map.
+    grid : SkyGrid or Quantity
+        Sky geometry of the pixels (or the pixel scale: north up, east left).
+
+    Returns
+    -------
+    Quantity [km/s], shape (ny, nx)
+        NaN outside the rings (beyond half a ring width past the last ring or inside the
+        inner edge of the first).
+
+    Notes
+    -----
+    Interpolation between rings (the usual scheme): for each pixel and each ring k,
+    f_k = r_k - R_k, where r_k is the pixel's disk-plane radius under ring k's geometry.
+    The pixel lies between the last ring k-1 whose ellipse it is outside of and the first
+    ring k whose ellipse contains it; all ring parameters (geometry and velocities) are
+    interpolated linearly with weight t = f_{k-1} / (f_{k-1} - f_k) and v_los is evaluated
+    with the interpolated ring.  Inside the first ring the geometry is the first ring's
+    and v_rot, v_exp fall linearly to 0 at the centre (so the model is continuous there);
+    within half a ring width outside the last ring the last ring is used unchanged.
+    """
+    grid = as_grid(grid)
+    needed = ("radius", "v_rot", "v_exp", "position_angle", "inclination", "v_sys", "x_center", "y_center")
+    missing = [c for c in needed if c not in rings.colnames]
+    if missing:
+        raise KinemapError(f"'rings' table lacks column(s) {', '.join(missing)}; pass a table from fit_rings")
+    if len(shape) != 2:
+        raise KinemapError(f"'shape' must be (ny, nx), got {shape!r}")
+    width = rings.meta.get("ring_width")
+    radius = _plain(rings["radius"], u.arcsec)
+    if width is None:
+        if radius.size < 2:
+            raise KinemapError("'rings' has one row and no meta['ring_width']; add the ring width in arcsec")
+        width = float(np.min(np.diff(radius)))
+    params = {
+        "radius": radius,
+        "v_rot": _plain(rings["v_rot"], KMS),
+        "v_exp": _plain(rings["v_exp"], KMS),
+        "position_angle": _plain(rings["position_angle"], u.deg),
+        "inclination": _plain(rings["inclination"], u.deg),
+        "v_sys": _plain(rings["v_sys"], KMS),
+        "x_center": _plain(rings["x_center"], u.pix),
+        "y_center": _plain(rings["y_center"], u.pix),
+    }
+    return model_field(params, float(width), tuple(shape), grid.jacobian) * KMS
+
+
+def _plain(col, unit):
+    q = u.Quantity(col)
+    if q.unit == u.dimensionless_unscaled:
+        return np.asarray(q.value, float)
+    return q.to_value(unit)
+
+
+def model_field(params, width, shape, jac):
+    """Plain-float model field; ``params`` maps names to per-ring arrays (NaN rows skipped)."""
+    names = ("radius", "v_rot", "v_exp", "position_angle", "inclination", "v_sys", "x_center", "y_center")
+    ok = np.all([np.isfinite(np.asarray(params[n], float)) for n in names], axis=0)
+    p = {n: np.asarray(params[n], float)[ok] for n in names}
+    out = np.full(shape, np.nan)
+    n = p["radius"].size
+    if n == 0:
+        return out
+    # PA interpolation must not jump across 0/360
+    p["position_angle"] = np.rad2deg(np.unwrap(np.deg2rad(p["position_angle"])))
+    yy, xx = np.indices(shape, dtype=float)
+    xx, yy = xx.ravel(), yy.ravel()
+    npix = xx.size
+    lower = np.full(npix, -1)  # ring index k (pixel between k-1 and k); -1 = not yet placed
+    tfrac = np.zeros(npix)
+    prev_f = None
+    for k in range(n):
+        r, _, _ = disk_coords(jac, xx, yy, p["x_center"][k], p["y_center"][k], p["position_angle"][k],
+                              p["inclination"][k])
+        f = r - p["radius"][k]
+        new = (lower < 0) & (f <= 0)
+        if k == 0:
+            inside = new & (r >= p["radius"][0] - width / 2 - 1e-9)
+            lower[new] = 0
+            # fraction of the first ring's velocities: r / R_0 (0 at the centre)
+            tfrac[new] = r[new] / p["radius"][0] if p["radius"][0] > 0 else 1.0
+            lower[new & ~inside] = -2  # inside the inner edge: no model
+        else:
+            fp = prev_f[new]
+            with np.errstate(invalid="ignore", divide="ignore"):
+                t = np.where(fp - f[new] > 0, fp / (fp - f[new]), 1.0)
+            lower[new] = k
+            tfrac[new] = np.clip(t, 0.0, 1.0)
+        prev_f = f
+    outer = (lower == -1) & (prev_f <= width / 2 + 1e-9)
+    lower[outer] = n - 1
+    tfrac[outer] = 1.0
+    placed = lower >= 0
+    k = lower[placed]
+    t = tfrac[placed]
+    km1 = np.maximum(k - 1, 0)
+
+    def interp(name):
+        a = p[name]
+        return a[km1] * (1 - t) + a[k] * t
+
+    g = {name: interp(name) for name in names}
+    first = k == 0
+    for name in ("x_center", "y_center", "position_angle", "inclination", "v_sys"):
+        g[name][first] = p[name][0]
+    for name in ("v_rot", "v_exp"):
+        g[name][first] = p[name][0] * t[first]
+    _, c, s = disk_coords(jac, xx[placed], yy[placed], g["x_center"], g["y_center"], g["position_angle"],
+                          g["inclination"])
+    si = np.sin(np.deg2rad(g["inclination"]))
+    v = g["v_sys"] + si * (g["v_rot"] * c + g["v_exp"] * s)
+    flat = out.ravel()
+    flat[np.nonzero(placed)[0]] = v
+    return flat.reshape(shape)
