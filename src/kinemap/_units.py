@@ -20,6 +20,8 @@ def to_value(value, unit, *, name: str, equivalencies=None, allow_plain: bool = 
     unit = u.Unit(unit)
     if isinstance(value, str):
         value = parse_quantity(value, name=name)
+        if value.unit == u.dimensionless_unscaled:  # a bare number written as text
+            value = value.value
     if isinstance(value, u.Quantity):
         try:
             out = value.to_value(unit, equivalencies=equivalencies or [])
@@ -38,7 +40,7 @@ def parse_quantity(text, *, name: str) -> u.Quantity:
     if isinstance(text, u.Quantity):
         return text
     try:
-        q = u.Quantity(str(text).strip())
+        q = u.Quantity(str(text).strip().replace("\u2212", "-"))
     except (TypeError, ValueError):
         raise KinemapError(
             f"could not read '{name}' = {text!r} as a number with a unit; write it like '5 km/s'"

@@ -33,7 +33,7 @@ def product_header(meta, *, unit, description: str, key: str, options: dict | No
         except ValueError:
             h["BUNIT"] = (unit.to_string(), "unit of the values")
     h["BTYPE"] = (key, "kinemap product")
-    h["VCONV"] = (meta.convention, "velocity convention (radio, optical, relativistic)")
+    h["VCONV"] = (meta.convention, "radio, optical or relativistic")
     if meta.rest_value is not None:
         rv = meta.rest_value
         if rv.unit.is_equivalent(u.Hz):
@@ -63,9 +63,13 @@ def product_header(meta, *, unit, description: str, key: str, options: dict | No
 
 
 def write_fits(path, data, header) -> None:
+    """Write one HDU with CHECKSUM/DATASUM.  astropy's WCS comments that do not fit on a
+    card are shortened (their warning is not the user's concern)."""
     arr = np.asarray(data)
     if arr.dtype == bool:
         arr = arr.astype(np.uint8)
     if arr.dtype.kind == "f" and arr.dtype != np.float32 and arr.dtype != np.float64:
         arr = arr.astype(np.float32)
-    fits.PrimaryHDU(data=arr, header=header).writeto(path, overwrite=True, checksum=True)
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="Card is too long")
+        fits.PrimaryHDU(data=arr, header=header).writeto(path, overwrite=True, checksum=True)
