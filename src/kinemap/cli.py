@@ -84,6 +84,31 @@ def build_parser() -> argparse.ArgumentParser:
     _add_cube_options(p)
     _add_output_options(p)
 
+    p = sub.add_parser("rings", help="rotation curve: tilted-ring fit of a velocity field")
+    p.add_argument("input", help="a velocity map (2D FITS, km/s) or a cube")
+    g = p.add_argument_group("geometry (first guesses are automatic when not given)")
+    g.add_argument("--center", metavar="RA,DEC", help="centre, degrees or sexagesimal")
+    g.add_argument("--pa", metavar="DEG", help="position angle, east of north to the receding side")
+    g.add_argument("--inclination", metavar="DEG", help="0 face-on, 90 edge-on")
+    g.add_argument("--vsys", metavar="VELOCITY", help="systemic velocity (km/s or with a unit)")
+    g.add_argument("--fix", metavar="NAMES", help="comma-separated parameters held fixed: "
+                   "center, position_angle, inclination, v_sys, v_exp")
+    g = p.add_argument_group("rings")
+    g.add_argument("--ring-width", metavar="ARCSEC", help="default: about one beam")
+    g.add_argument("--distance", metavar="DIST", help="e.g. '10 Mpc': radii in kpc and M(<R)")
+    g.add_argument("--weighting", choices=["uniform", "cos", "cos2"], default="cos",
+                   help="angular weight |cos theta| (default), cos^2 theta, or none")
+    g.add_argument("--exclude-minor-axis", default="20", metavar="DEG",
+                   help="half-width of the wedge around the minor axis left out (default 20)")
+    g.add_argument("--stages", default="1,2,3", help="stages to run (default 1,2,3)")
+    g.add_argument("--final-geometry", choices=["median", "polynomial", "rings", "global"],
+                   default="median", help="stage 3: how the ring geometry is smoothed")
+    g.add_argument("--bootstrap", type=int, default=0, metavar="N", help="bootstrap resamples")
+    g.add_argument("--velocity-error", metavar="FITS", help="error map for a velocity-map input")
+    g.add_argument("--intensity", metavar="FITS", help="intensity map for a velocity-map input")
+    _add_cube_options(p)
+    _add_output_options(p)
+
     p = sub.add_parser("run", help="run the stages described in a TOML config")
     p.add_argument("config")
     p.add_argument("--out", help="override [output] dir")
@@ -99,12 +124,36 @@ def build_parser() -> argparse.ArgumentParser:
 def config_from_args(args) -> dict:
     from .config import validate_config
 
+    cube = getattr(args, "cube", None)
+    velocity_map = None
+    if getattr(args, "command", None) == "rings":
+        from .cube import is_2d_image
+
+        if is_2d_image(args.input):
+            velocity_map = args.input
+        else:
+            cube = args.input
     user = {
-        "input": {"cube": args.cube, "convention": args.convention, "rest_value": args.rest_value,
+        "input": {"cube": cube, "convention": args.convention, "rest_value": args.rest_value,
                   "frame": args.frame, "vrange": args.vrange, "box": args.box,
                   "region": args.region, "beams": args.beams, "bunit": args.bunit},
         "noise": {"line_free": args.line_free or "auto"},
     }
+    if getattr(args, "command", None) == "rings":
+        user["input"].update({"velocity_map": velocity_map, "velocity_error": args.velocity_error,
+                              "intensity": args.intensity})
+        try:
+            stages = [int(x) for x in args.stages.split(",") if x.strip()]
+        except ValueError:
+            raise KinemapError(f"'stages' must look like '1,2,3', got {args.stages!r}") from None
+        user["rings"] = {"center": args.center, "pa": args.pa, "inclination": args.inclination,
+                         "vsys": args.vsys, "ring_width": args.ring_width,
+                         "distance": args.distance, "weighting": args.weighting,
+                         "exclude_minor_axis": args.exclude_minor_axis, "stages": stages,
+                         "final_geometry": args.final_geometry, "bootstrap": args.bootstrap,
+                         "fix": [f.strip() for f in (args.fix or "").split(",") if f.strip()]}
+        user["output"] = {"dir": args.out, "overwrite": args.overwrite, "plots": not args.no_plots}
+        user["run"] = {"max_memory": args.max_memory, "progress": not args.no_progress}
     if getattr(args, "command", None) == "maps":
         mask = {"method": "none" if args.no_mask else args.mask, "threshold": args.threshold,
                 "grow_threshold": args.grow_threshold, "smooth_channels": args.smooth_channels,
@@ -128,6 +177,18 @@ def _cmd_maps(args) -> int:
 
     state = run_config(config_from_args(args))
     _report(state, args.out)
+    return 0
+
+
+def _cmd_rings(args) -> int:
+    from .pipeline import run_config
+
+    state = run_config(config_from_args(args))
+    _report(state, args.out)
+    s = state.results["rings"].summary()
+    print(f"kinemap: PA {s['position_angle_deg']:.1f} deg, inclination {s['inclination_deg']:.1f} "
+          f"deg, v_sys {s['v_sys_kms']:.1f} km/s; {s['rings_fitted']} rings fitted, "
+          f"{s['rings_failed']} could not be fitted (see rotation_curve.ecsv, column status)")
     return 0
 
 
@@ -157,8 +218,8 @@ def _report(state, out):
     n = len(state.manifest["products"])
     total = sum(state.timings.values())
     print(f"kinemap: wrote {n} products to {out} in {total:.1f} s "
-          f"(velocities: {state.cube.meta.convention} convention, frame "
-          f"{state.cube.meta.frame or 'unknown'})")
+          f"(velocities: {state.meta.convention} convention, frame "
+          f"{state.meta.frame or 'unknown'})")
 
 
 def _one_line_warnings(message, category, filename, lineno, file=None, line=None):
@@ -178,7 +239,8 @@ def main(argv=None) -> int:
         # Library chatter (spectral-cube, astropy) is not for the user of a command.
         warnings.filterwarnings("ignore", module="spectral_cube")
         warnings.filterwarnings("ignore", category=RuntimeWarning)
-    handler = {"info": _cmd_info, "maps": _cmd_maps, "run": _cmd_run, "demo": _cmd_demo}
+    handler = {"info": _cmd_info, "maps": _cmd_maps, "rings": _cmd_rings, "run": _cmd_run,
+               "demo": _cmd_demo}
     try:
         return handler[args.command](args)
     except KinemapError as exc:

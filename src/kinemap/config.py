@@ -7,13 +7,19 @@ silently ignored).
 
 Sections and keys (defaults in brackets)::
 
-    [input]   cube (required), convention, rest_value, frame, vrange = [v1, v2], box,
-              region, beams ["common"], bunit, hdu
+    [input]   cube (required unless velocity_map), convention, rest_value, frame,
+              vrange = [v1, v2], box, region, beams ["common"], bunit, hdu;
+              velocity_map, velocity_error, intensity (2D FITS maps for [rings])
     [noise]   line_free ["auto"] or [[v1, v2], ...]
     [mask]    method ["smooth"] | "threshold" | "none", threshold, grow_threshold [2.0],
               smooth_beams [1.5], smooth_pixels [3.0], smooth_channels [3], min_pixels,
               min_channels [2]
     [maps]    method ["moments"] | "gauss", channel_response ["tophat"]
+    [rings]   center ("RA,DEC"), pa, inclination, vsys, ring_width (arcsec), distance
+              (Mpc), weighting ["cos"] | "cos2" | "uniform", exclude_minor_axis [20] (deg),
+              stages [[1, 2, 3]], final_geometry ["median"] | "polynomial" | "rings" |
+              "global", fix [[]], min_points [20], bootstrap [0], seed [0],
+              expansion_in_geometry [false], pv_diagram [true]
     [output]  dir ["kinemap-out"], overwrite [false], plots [true]
     [run]     max_memory ["1GB"], progress [true]
 
@@ -33,11 +39,13 @@ __all__ = ["SCHEMA", "default_config", "load_config", "validate_config", "parse_
 # section -> key -> (allowed python types, default)
 SCHEMA: dict[str, dict[str, tuple]] = {
     "input": {
-        "cube": ((str,), None), "convention": ((str, type(None)), None),
+        "cube": ((str, type(None)), None), "convention": ((str, type(None)), None),
         "rest_value": ((str, type(None)), None), "frame": ((str, type(None)), None),
         "vrange": ((list, tuple, str, type(None)), None), "box": ((list, tuple, str, type(None)), None),
         "region": ((str, type(None)), None), "beams": ((str,), "common"),
         "bunit": ((str, type(None)), None), "hdu": ((int, str, type(None)), None),
+        "velocity_map": ((str, type(None)), None), "velocity_error": ((str, type(None)), None),
+        "intensity": ((str, type(None)), None),
     },
     "noise": {"line_free": ((str, list, tuple, type(None)), "auto")},
     "mask": {
@@ -47,6 +55,17 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "min_pixels": ((int, type(None)), None), "min_channels": ((int,), 2),
     },
     "maps": {"method": ((str,), "moments"), "channel_response": ((str,), "tophat")},
+    "rings": {
+        "center": ((str, type(None)), None), "pa": ((int, float, str, type(None)), None),
+        "inclination": ((int, float, str, type(None)), None),
+        "vsys": ((int, float, str, type(None)), None),
+        "ring_width": ((int, float, str, type(None)), None),
+        "distance": ((int, float, str, type(None)), None), "weighting": ((str,), "cos"),
+        "exclude_minor_axis": ((int, float, str), 20.0), "stages": ((list,), [1, 2, 3]),
+        "final_geometry": ((str,), "median"), "fix": ((list,), []), "min_points": ((int,), 20),
+        "bootstrap": ((int,), 0), "seed": ((int,), 0), "expansion_in_geometry": ((bool,), False),
+        "pv_diagram": ((bool,), True),
+    },
     "output": {"dir": ((str,), "kinemap-out"), "overwrite": ((bool,), False),
                "plots": ((bool,), True)},
     "run": {"max_memory": ((str, int, float), "1GB"), "progress": ((bool,), True)},
@@ -84,10 +103,16 @@ def validate_config(user: dict, *, base_dir: str | None = None) -> dict:
                 names = "/".join(t.__name__ for t in types if t is not type(None))
                 raise KinemapError(f"[{sec}] {key} must be {names}, got {value!r}")
             cfg[sec][key] = value
-    if not cfg["input"]["cube"]:
-        raise KinemapError("the config needs [input] cube = \"path/to/cube.fits\"")
+    if not cfg["input"]["cube"] and not cfg["input"]["velocity_map"]:
+        raise KinemapError("the config needs [input] cube = \"path/to/cube.fits\" (or "
+                           "velocity_map = \"map.fits\" for a rotation curve from a map)")
+    if cfg["input"]["velocity_map"] and "rings" not in user:
+        raise KinemapError("[input] velocity_map is only used by [rings]; add a [rings] section "
+                           "or give a cube")
     if base_dir:
-        for sec, key in (("input", "cube"), ("input", "region"), ("output", "dir")):
+        for sec, key in (("input", "cube"), ("input", "region"), ("output", "dir"),
+                         ("input", "velocity_map"), ("input", "velocity_error"),
+                         ("input", "intensity")):
             v = cfg[sec][key]
             if v and not os.path.isabs(v):
                 cfg[sec][key] = os.path.normpath(os.path.join(base_dir, v))

@@ -63,6 +63,10 @@ class MomentMaps:
     settings: dict = field(default_factory=dict)
     seconds: float = 0.0
 
+    def velocity_field(self):
+        """(velocity, velocity error, intensity) maps for a ring fit."""
+        return self.moment1, self.moment1_err, self.moment0
+
     def products(self) -> list[Product]:
         b = self.bunit
         out = [

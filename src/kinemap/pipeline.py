@@ -10,16 +10,18 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass, field
 
+import astropy.units as u
 import numpy as np
 
 from .config import parse_size
-from .cube import read_cube
+from .cube import read_cube, read_map
 from .errors import KinemapError
 from .export.outdir import StagedOutput, check_output_dir
 from .export.writer import write_products
 from .masks import make_mask
 from .moments import compute_moments
 from .noise import estimate_noise
+from .rings.stage import run_rings
 
 __all__ = ["RunState", "run_config", "prepare", "STAGES"]
 
@@ -30,10 +32,16 @@ class RunState:
 
     config: dict
     cube: object = None
+    velocity_map: object = None
     noise: object = None
     mask: object = None
     results: dict = field(default_factory=dict)
     timings: dict = field(default_factory=dict)
+
+    @property
+    def meta(self):
+        """Provenance of the run's input: the cube's, or the velocity map's."""
+        return self.cube.meta if self.cube is not None else self.velocity_map.meta
 
     @property
     def max_memory(self) -> int:
@@ -44,10 +52,10 @@ class RunState:
         return bool(self.config["run"]["progress"])
 
 
-def _timed(state, name, fn, *args, **kwargs):
+def _timed(state, stage, fn, *args, **kwargs):
     t0 = time.perf_counter()
     out = fn(*args, **kwargs)
-    state.timings[name] = state.timings.get(name, 0.0) + time.perf_counter() - t0
+    state.timings[stage] = state.timings.get(stage, 0.0) + time.perf_counter() - t0
     return out
 
 
@@ -105,9 +113,32 @@ def stage_maps(state: RunState):
                   max_memory=state.max_memory, progress=state.progress)
 
 
+def _velocity_field(state):
+    """(velocity, error, intensity) for the ring fit: from the maps stage or from FITS maps."""
+    if state.velocity_map is not None:
+        inp = state.config["input"]
+        err = inten = None
+        if inp["velocity_error"]:
+            err = read_map(inp["velocity_error"], unit="km/s", like=state.velocity_map,
+                           name="velocity error map").data
+        if inp["intensity"]:
+            inten = read_map(inp["intensity"], unit="", like=state.velocity_map,
+                             name="intensity map").data
+        vmap = state.velocity_map
+        v = vmap.data if vmap.unit == u.one else (vmap.data * vmap.unit).to_value(u.km / u.s)
+        return v, err, inten
+    return state.results["maps"].velocity_field()
+
+
+def stage_rings(state: RunState):
+    v, err, inten = _velocity_field(state)
+    return _timed(state, "rings", run_rings, v, err, inten, state.meta, state.config["rings"],
+                  cube=state.cube, progress=state.progress)
+
+
 # (config section, result name, stage function).  A stage runs when its section is in the
 # config; later capabilities add their entry here.
-STAGES = [("maps", "maps", stage_maps)]
+STAGES = [("maps", "maps", stage_maps), ("rings", "rings", stage_rings)]
 
 
 def _options(cfg):
@@ -123,8 +154,15 @@ def run_config(cfg: dict, *, stage_dir=None) -> RunState:
     out = cfg["output"]
     if stage_dir is None:
         check_output_dir(out["dir"], overwrite=out["overwrite"])
-    state = prepare(cfg)
-    sections = set(cfg.get("_sections", ())) | {"maps"}
+    sections = set(cfg.get("_sections", ()))
+    if cfg["input"]["velocity_map"]:
+        state = RunState(config=cfg)
+        state.velocity_map = _timed(state, "read", read_map, cfg["input"]["velocity_map"],
+                                    unit="km/s", name="velocity map")
+        sections.discard("maps")
+    else:
+        state = prepare(cfg)
+        sections.add("maps")
     for section, name, fn in STAGES:
         if section in sections:
             state.results[name] = fn(state)
@@ -137,13 +175,13 @@ def run_config(cfg: dict, *, stage_dir=None) -> RunState:
             summary[name] = res.summary()
     center = _systemic(state)
     if stage_dir is not None:
-        state.manifest = write_products(stage_dir, state.cube.meta, products,
+        state.manifest = write_products(stage_dir, state.meta, products,
                                         options=_options(cfg), timings=state.timings,
                                         figures=figures, plots=out["plots"], center=center,
                                         summary=summary)
         return state
     with StagedOutput(out["dir"], overwrite=out["overwrite"]) as staged:
-        state.manifest = write_products(staged.path, state.cube.meta, products,
+        state.manifest = write_products(staged.path, state.meta, products,
                                         options=_options(cfg), timings=state.timings,
                                         figures=figures, plots=out["plots"], center=center,
                                         summary=summary)
@@ -152,6 +190,9 @@ def run_config(cfg: dict, *, stage_dir=None) -> RunState:
 
 def _systemic(state) -> float | None:
     """Centre for velocity colour scales: the median moment-1 velocity of signal pixels."""
+    rings = state.results.get("rings")
+    if rings is not None:
+        return rings.summary()["v_sys_kms"]
     maps = state.results.get("maps")
     v = getattr(maps, "moment1", None)
     if v is None or not np.isfinite(v).any():

@@ -14,7 +14,7 @@ import numpy as np
 
 __all__ = ["Product", "KINDS"]
 
-KINDS = ("intensity", "velocity", "dispersion", "error", "count", "status", "mask",
+KINDS = ("intensity", "velocity", "residual", "dispersion", "error", "count", "status", "mask",
          "noise", "ratio", "temperature", "cube", "table", "other")
 
 

@@ -11,7 +11,8 @@ from astropy.wcs import WCS, FITSFixedWarning
 
 from ..errors import HeaderRepairWarning, KinemapError, MissingUnitWarning
 
-__all__ = ["open_fits", "find_cube_hdu", "build_wcs", "parse_bunit", "sha256"]
+__all__ = ["open_fits", "find_cube_hdu", "find_image_hdu_2d", "build_wcs", "parse_bunit",
+           "sha256"]
 
 
 def open_fits(path):
@@ -50,6 +51,14 @@ def find_cube_hdu(hdul, path, hdu_index=None):
             f"{path} holds a 2D image, not a cube: it has no spectral axis; give a "
             "spectral-line cube (two celestial axes and one spectral axis)")
     raise KinemapError(f"{path} holds no image data with a spectral axis; give a spectral-line cube")
+
+
+def find_image_hdu_2d(hdul, path):
+    """The first image HDU with data (for 2D maps)."""
+    for hdu in hdul:
+        if getattr(hdu, "is_image", False) and hdu.header.get("NAXIS", 0) >= 2:
+            return hdu
+    raise KinemapError(f"{path} holds no image; give a 2D FITS map")
 
 
 def build_wcs(header, path) -> tuple[WCS, list[str]]:

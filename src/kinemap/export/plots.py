@@ -19,7 +19,7 @@ from ..status import Status  # noqa: E402
 
 __all__ = ["plot_map", "CMAPS"]
 
-CMAPS = {"intensity": "inferno", "velocity": "RdBu_r", "dispersion": "viridis",
+CMAPS = {"intensity": "inferno", "velocity": "RdBu_r", "residual": "RdBu_r", "dispersion": "viridis",
          "error": "cividis", "noise": "cividis", "count": "Greys", "mask": "Greys",
          "ratio": "PuOr_r", "temperature": "plasma", "other": "viridis"}
 
@@ -69,8 +69,9 @@ def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float
         cmap.set_bad("#e8e8e8")
         if vals.size == 0:
             vmin, vmax = 0.0, 1.0
-        elif kind == "velocity":
-            c = float(np.median(vals)) if center is None else float(center)
+        elif kind in ("velocity", "residual"):
+            c = 0.0 if kind == "residual" else (float(np.median(vals)) if center is None
+                                               else float(center))
             half = float(np.percentile(np.abs(vals - c), 98)) or 1.0
             vmin, vmax = c - half, c + half
         else:
