@@ -12,7 +12,7 @@ from tqdm.auto import tqdm
 
 from ..errors import KinemapError
 
-__all__ = ["iter_blocks", "block_rows", "DEFAULT_MAX_MEMORY"]
+__all__ = ["iter_blocks", "read_rows", "block_rows", "DEFAULT_MAX_MEMORY"]
 
 DEFAULT_MAX_MEMORY = 1 << 30  # 1 GiB working set unless the caller says otherwise
 
@@ -26,6 +26,16 @@ def block_rows(shape, *, max_memory: int = DEFAULT_MAX_MEMORY, factor: float = 6
             f"'max_memory' of {max_memory} bytes cannot hold one spectrum of {nchan} channels "
             "with the stage's temporaries; raise it")
     return int(max(1, min(ny, max_memory // max(per_row, 1))))
+
+
+def read_rows(cube, ys: slice, *, dtype=None) -> np.ndarray:
+    """Rows ``ys`` of ``cube`` as a C-contiguous (nchan, rows, nx) array (see iter_blocks)."""
+    if cube.source is not None:
+        return cube.source.read(ys, dtype=dtype)
+    raw = cube.data[:, ys, :]
+    single = raw.dtype.kind == "f" and raw.dtype.itemsize == 4  # any byte order
+    dt = dtype or (np.float32 if single else np.float64)
+    return np.ascontiguousarray(np.asarray(raw), dtype=dt)
 
 
 def iter_blocks(cube, *, max_memory: int = DEFAULT_MAX_MEMORY, factor: float = 6.0,
@@ -45,11 +55,7 @@ def iter_blocks(cube, *, max_memory: int = DEFAULT_MAX_MEMORY, factor: float = 6
     try:
         for y0 in starts:
             ys = slice(y0, min(ny, y0 + rows))
-            raw = cube.data[:, ys, :]
-            single = raw.dtype.kind == "f" and raw.dtype.itemsize == 4  # any byte order
-            dt = dtype or (np.float32 if single else np.float64)
-            block = np.ascontiguousarray(np.asarray(raw), dtype=dt)
-            yield ys, block
+            yield ys, read_rows(cube, ys, dtype=dtype)
             if bar is not None:
                 bar.update(ys.stop - ys.start)
     finally:

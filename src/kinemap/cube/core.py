@@ -101,6 +101,9 @@ class Cube:
         Channel-centre spectral coordinates as on the file's axis (Hz, m or m/s).
     footprint : ndarray of bool or None
         Spatial selection (True = inside the user's region); None means everything.
+    source : kinemap.cube._source.FileSource or None
+        How to read rows straight from the file (bounded memory, other processes); None
+        when the data live only in memory (e.g. after convolution to a common beam).
     meta : CubeMeta
     """
 
@@ -109,6 +112,7 @@ class Cube:
     spectral: u.Quantity
     meta: CubeMeta
     footprint: np.ndarray | None = None
+    source: object = None
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -127,4 +131,7 @@ class Cube:
         return np.abs(np.gradient(v))
 
     def with_changes(self, **kwargs) -> "Cube":
+        """A copy with fields replaced; new data drop the file source (it no longer applies)."""
+        if "data" in kwargs and "source" not in kwargs:
+            kwargs["source"] = None
         return replace(self, **kwargs)

@@ -16,6 +16,7 @@ from ..airvac import fits_vacuum_to_air
 from ..errors import KinemapError
 from ._header import build_wcs, find_cube_hdu, open_fits, parse_bunit, sha256
 from .beams import check_policy, read_beam
+from ._source import FileSource
 from .core import Cube, CubeMeta
 from .frames import change_frame, normalise_frame
 from .spectral import axis_kind, check_convention, check_rest_value, to_velocity
@@ -111,7 +112,8 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
     arr = arr.squeeze(axis=tuple(drop)) if drop else arr
     keep = sorted(np_axis[i] for i in (spec, lon, lat))
     pos = {ax: k for k, ax in enumerate(keep)}
-    arr = arr.transpose(pos[np_axis[spec]], pos[np_axis[lat]], pos[np_axis[lon]])
+    order = (pos[np_axis[spec]], pos[np_axis[lat]], pos[np_axis[lon]])
+    arr = arr.transpose(order)
     wcs2d = wcs.celestial
     if lon > lat:  # keep x = longitude, y = latitude
         wcs2d = wcs2d.sub([2, 1])
@@ -200,6 +202,14 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
         ys, xs = slice(int(yy.min()), int(yy.max()) + 1), slice(int(xx.min()), int(xx.max()) + 1)
         footprint = fp_full[ys, xs]
     arr = arr[cs, ys, xs]
+    source = None
+    if beam_list is None and memmapped and raw.dtype.kind == "f":
+        hdu_index = next(i for i, h in enumerate(hdul) if h is hdu_obj)
+        source = FileSource(path=os.path.abspath(path),
+                            offset=int(hdul.fileinfo(hdu_index)["datLoc"]),
+                            raw_shape=tuple(raw.shape), dtype=raw.dtype.str, drop=tuple(drop),
+                            order=tuple(order), channels=(cs.start, cs.stop),
+                            rows=(ys.start, ys.stop), cols=(xs.start, xs.stop))
     wcs2d = wcs2d.slice((ys, xs))
     wcs3d = wcs.sub([lon + 1, lat + 1, spec + 1]).slice((cs, ys, xs))
     subset = {}
@@ -220,7 +230,7 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
         bunit_missing=bunit_missing, spectral_unit=spec_unit, subset=subset,
         memmapped=bool(memmapped), wcs3d=wcs3d)
     return Cube(data=arr, velocity=velocity[cs], spectral=spectral[cs], meta=meta,
-                footprint=footprint)
+                footprint=footprint, source=source)
 
 
 def _convolve_to_common(hdul, hdu_obj, beam_list):
