@@ -7,6 +7,21 @@ least squares, and only the geometry goes to scipy.optimize.least_squares.  Poin
 assigned to rings with the geometry at the start of an outer iteration and the
 assignment is frozen during the inner least-squares call (so the cost is smooth); outer
 iterations repeat until the assignment settles.
+
+Error recipe (all errors 1 sigma; the beam factor is applied by the caller)
+-------------------------------------------------------------------------
+* Geometry: covariance from the Jacobian J of the profiled residual (rows sqrt(W) times
+  the derivative of the model with v_rot, v_exp re-solved; for variable projection this
+  is the geometry block of the full covariance, Golub & Pereyra 1973; from memory), in
+  the sandwich form A^-1 B A^-1 because the angular weights are not inverse variances.
+* Linear parameters (v_rot, v_exp): the same sandwich form per ring, conditional on
+  the geometry.
+* Noise scale s^2: without an error map the reduced chi^2 (of all points for the
+  geometry, of the ring's points for v_rot, v_exp).  With an error map the errors are
+  absolute, s^2 = 1, unless the reduced chi^2 exceeds 1: then s^2 = chi^2_red, because
+  residuals larger than the stated errors mean the model or the errors are off (moment-1
+  biases, non-circular motions, beam smearing), and the stated errors would understate the
+  uncertainty (common practice: errors scaled by sqrt(chi^2_red) when it exceeds 1).
 """
 from __future__ import annotations
 
@@ -147,20 +162,20 @@ def linear_errors(ring, n, c, s, w, wa, inv_var, resid, vexp_free, absolute, ext
 
     The angular weights are not inverse variances, so the covariance is
     A^-1 B A^-1 with A = sum W x x^T, B = sum W wa x x^T (W = wa / sigma^2), times the
-    noise scale s^2: 1 with an error map, else the per-ring reduced chi^2 of the points
-    used.  ``extra_dof`` is the number of nonlinear parameters fitted per ring.
+    noise scale s^2: the per-ring reduced chi^2 of the points used, floored at 1 with an
+    error map (absolute errors, inflated only when the residuals exceed them).
+    ``extra_dof`` is the number of nonlinear parameters fitted per ring.
     """
     used = wa > 0
     a00 = np.bincount(ring, w * c * c, n)
     b00 = np.bincount(ring, w * wa * c * c, n)
     npts = np.bincount(ring, used.astype(float), n)
     p = (2 if vexp_free else 1) + extra_dof
+    chi = np.bincount(ring, np.where(used, resid * resid * inv_var, 0.0), n)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        s2 = np.where(npts > p, chi / (npts - p), np.nan)
     if absolute:
-        s2 = np.ones(n)
-    else:
-        chi = np.bincount(ring, np.where(used, resid * resid * inv_var, 0.0), n)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            s2 = np.where(npts > p, chi / (npts - p), np.nan)
+        s2 = np.fmax(s2, 1.0)  # NaN (too few points for a chi^2) -> 1
     with np.errstate(invalid="ignore", divide="ignore"):
         if vexp_free:
             a11 = np.bincount(ring, w * s * s, n)
@@ -351,7 +366,7 @@ def fit_geometry(pts: Points, jac, edges, geom0, free, vexp_free, vexp_fixed, cf
         chi2_red = float(np.sum(sol.resid**2 * sub.inv_var)) / (m - n_par)
 
     if free and jac_res is not None:
-        cov = _sandwich_cov(jac_res, wa_jac, 1.0 if pts.absolute else chi2_red)
+        cov = _sandwich_cov(jac_res, wa_jac, noise_scale(chi2_red, pts.absolute))
         if cov is not None:
             for j, name in enumerate(free):
                 geom_err[name][:] = np.sqrt(max(cov[j, j], 0.0))
@@ -360,6 +375,13 @@ def fit_geometry(pts: Points, jac, edges, geom0, free, vexp_free, vexp_fixed, cf
             geom_err[name][:] = 0.0
     return GeometryFit(geom, geom_err, vrot, vrot_err, vexp, vexp_err, npoints, status, int(fit_status),
                        idx, ring, chi2_red)
+
+
+def noise_scale(chi2_red: float, absolute: bool) -> float:
+    """s^2 multiplying the formal covariance (see the module docstring)."""
+    if absolute:
+        return max(1.0, chi2_red) if np.isfinite(chi2_red) else 1.0
+    return chi2_red
 
 
 def _sandwich_cov(jr, wa, s2):

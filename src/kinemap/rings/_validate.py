@@ -49,6 +49,30 @@ def error_map(err, shape) -> np.ndarray | None:
     return out
 
 
+# An error below this fraction of the map's median error is a round-off zero of an error
+# propagation (e.g. a moment-1 error from one channel, where the formula gives exactly 0
+# up to float noise), not a measurement: such pixels are skipped like pixels with error 0.
+ROUNDOFF_ERROR_FRACTION = 1e-6
+
+
+def drop_roundoff_errors(error, velocity):
+    """Set round-off-zero errors to 0 (so they are skipped); return (map, number unusable).
+
+    ``error`` is the validated copy from :func:`error_map` (modified in place and
+    returned).  The count is of pixels with a finite velocity whose error is 0 or below
+    ``ROUNDOFF_ERROR_FRACTION`` times the median positive error.
+    """
+    if error is None:
+        return None, 0
+    fin = np.isfinite(error)
+    pos = fin & (error > 0)
+    if pos.any():
+        tiny = pos & (error < ROUNDOFF_ERROR_FRACTION * np.median(error[pos]))
+        error[tiny] = 0.0
+    n_bad = int(np.sum(np.isfinite(velocity) & fin & (error == 0)))
+    return error, n_bad
+
+
 def enough_pixels(velocity, error, minimum=MIN_VALID_PIXELS):
     valid = np.isfinite(velocity)
     if error is not None:

@@ -85,14 +85,23 @@ class RingFitResult:
         v_rot_receding [km/s], beam_smeared, then with a distance radius_kpc [kpc] and
         mass_enclosed [solMass], then status and the geometry errors position_angle_err,
         inclination_err, v_sys_err, x_center_err, y_center_err.  ``meta`` holds
-        ring_width [arcsec], the error recipe and the settings.
+        ring_width [arcsec], the error recipes ('v_rot_err', 'geometry_err'), the reduced
+        chi^2 of the final refit ('chi2_reduced'; None if undefined; without an error map
+        the weights are 1, so it is the residual variance in (km/s)^2) and the settings.
+        The stage tables' ``meta`` hold their own 'chi2_reduced'.
     harmonics : Table
         Third-order harmonic expansion per ring with the final geometry.
     stages : mapping of str to Table
         'global' (stage 1), 'rings' (stage 2, when run) and 'final' (same as ``table``).
     global_geometry : mapping of str to Quantity
         Stage-1 shared geometry and its 1-sigma errors ('<name>' and '<name>_err');
-        for a parameter fixed to per-ring values, their median.
+        for a parameter fixed to per-ring values, their median.  When stage 2 ran, also
+        '<name>_ring_scatter' for each parameter in ``ring_free``: the standard deviation
+        of the cleanly fitted stage-2 ring values over sqrt(number of such rings), NaN for
+        fewer than 3.  It is a sanity check of '<name>_err' that does not depend on the
+        error map; much larger values mean a warp or systematics the formal error misses.
+        Stage 2 holds the other geometry (by default the centre and v_sys) at its stage-1
+        values, so for a flat disk it is typically about half of '<name>_err'.
     first_guess : FirstGuess
         Where the fit started.
     model, residual : Quantity [km/s], shape (ny, nx)
@@ -171,8 +180,12 @@ def fit_rings(
         Intensity map (any unit) for the first guesses of centre and inclination.
     velocity_error : array_like or Quantity, optional
         1-sigma velocity errors (km/s): points are weighted by 1/error^2 and the formal
-        errors are absolute; pixels with NaN or 0 error are skipped.  Without it, points
-        are weighted equally and errors are scaled by the scatter about the fit.
+        errors are absolute (inflated by sqrt(reduced chi^2) when that exceeds 1, see
+        Notes).  Pixels with a NaN error are skipped; so are pixels with error 0 or below
+        1e-6 of the median error (round-off zeros, e.g. of a moment-1 map whose mask keeps
+        a single channel), with a FitWarning, because they would get near-infinite weight
+        and pin the fit.  Without a map, points are weighted equally and errors are scaled
+        by the scatter about the fit.
     x_center, y_center : float or array, optional
         Centre in 0-based pixel coordinates (x = column, y = row; FITS CRPIX - 1).
     position_angle, inclination : Quantity or float or array, optional
@@ -253,6 +266,20 @@ def fit_rings(
     ring's geometry too.  With angular weights that are not inverse variances the
     formal covariance is the sandwich form A^-1 B A^-1.
 
+    Geometry errors: the covariance of the geometry comes from the Jacobian of the
+    residuals with v_rot, v_exp re-solved for each trial geometry, which for variable
+    projection is the geometry block of the full covariance (Golub & Pereyra 1973; from
+    memory).  With an error map it is absolute, (J^T W J)^-1; when the reduced chi^2 of
+    the fit exceeds 1 -- residuals larger than the errors, from moment-1 biases, beam
+    smearing, non-circular motions or underestimated errors -- every error of that fit
+    (geometry, and per ring v_rot, v_exp with that ring's chi^2) is multiplied by
+    sqrt(chi^2_red) (common practice); it is never scaled down.  Then the beam factor
+    sqrt(pixels per beam) applies: it is exact for the mean of noise whose spatial
+    correlation is the beam (interferometer maps; common practice) and somewhat
+    conservative for the position angle and inclination.  Errors describe the noise and
+    the misfit, not biases shared by every pixel (e.g. beam smearing lowering the
+    inclination): compare with ``global_geometry['<name>_ring_scatter']``.
+
     Raises
     ------
     KinemapError
@@ -265,6 +292,7 @@ def fit_rings(
     grid = as_grid(grid)
     inten = val.same_shape(intensity, shape, "intensity")
     err = val.error_map(velocity_error, shape)
+    err, n_zero_err = val.drop_roundoff_errors(err, vel)
     val.enough_pixels(vel, err)
     beam = val.positive_scalar(beam_fwhm, u.arcsec, "beam_fwhm")
     dist = None
@@ -307,6 +335,13 @@ def fit_rings(
                    min_side=max(3, int(min_points) // 4))
     jac = grid.jacobian
     pix = grid.pixel_scale.to_value(u.arcsec)
+
+    if n_zero_err:
+        # a zero error would give a pixel infinite weight and pin the whole fit to it
+        warnings.warn(
+            f"{n_zero_err} pixels with a velocity have 'velocity_error' 0 (or below "
+            f"{val.ROUNDOFF_ERROR_FRACTION:g} of the median error) and were skipped; such errors usually "
+            "come from a moment-1 map whose mask keeps one channel", FitWarning, stacklevel=2)
 
     # ---------------------------------------------------------------- first guesses
     timings = {}
@@ -356,6 +391,7 @@ def fit_rings(
     stage_tables["global"] = _stage_table(radii_v, s1.v_rot, s1.v_rot_err * err_scale, s1.v_exp,
                                           s1.v_exp_err * err_scale, glob, _scaled(glob_err, err_scale),
                                           s1.npoints, s1.status, width, "global")
+    stage_tables["global"].meta["chi2_reduced"] = _plain(s1.chi2_red)
 
     timings["stage1"], clock = time.perf_counter() - clock, time.perf_counter()
 
@@ -429,9 +465,16 @@ def fit_rings(
                          beam=beam, distance=dist)
     table.meta["v_rot_err"] = (
         "sqrt(random^2 + ((v_rot_receding - v_rot_approaching)/2)^2); random = "
-        + ("bootstrap" if n_bootstrap else "formal") + (f" x {err_scale:.3g} (pixels per beam)" if err_scale > 1 else "")
+        + ("bootstrap" if n_bootstrap else "formal" + (" (x sqrt(chi2_reduced of the ring) when that exceeds 1)"
+                                                      if err is not None else ""))
+        + (f" x {err_scale:.3g} (pixels per beam)" if err_scale > 1 else "")
     )
     table.meta["geometry"] = how
+    table.meta["chi2_reduced"] = _plain(s3.chi2_red)
+    table.meta["geometry_err"] = (
+        _GEOMETRY_ERR_RECIPE + (f"; x {err_scale:.3g} (pixels per beam)" if err_scale > 1 else "")
+        + ("; bootstrap for " + ", ".join(free_ring) if n_bootstrap and free_ring else "")
+        + f"; values and errors from {how!r} geometry")
     stage_tables["final"] = table
 
     nfail = int(np.sum(status != Status.OK))
@@ -464,6 +507,9 @@ def fit_rings(
         # one shared value; the median when the user fixed per-ring values
         gg[name] = float(np.median(glob[name])) * _UNITS[name]
         gg[name + "_err"] = float(np.median(glob_err[name])) * err_scale * _UNITS[name]
+    if 2 in stages_t:
+        for name in free_ring:
+            gg[name + "_ring_scatter"] = _ring_scatter(ring_geom[name], ring_status) * _UNITS[name]
     return RingFitResult(
         table=table,
         harmonics=harm,
@@ -480,6 +526,29 @@ def fit_rings(
 
 
 # ---------------------------------------------------------------------------- helpers
+_GEOMETRY_ERR_RECIPE = (
+    "formal (J^T W J)^-1 in sandwich form for the angular weights; absolute with an error map "
+    "(x sqrt(chi2_reduced of the fit) when that exceeds 1), scaled by the scatter about the fit without one"
+)
+
+
+def _plain(x) -> float | None:
+    """A float for a table's YAML header (None for NaN)."""
+    return float(x) if np.isfinite(x) else None
+
+
+def _ring_scatter(values, status):
+    """Standard deviation of the cleanly fitted stage-2 ring values over sqrt(their number).
+
+    An empirical error of a global value, to set beside the formal one: independent of
+    the error map and the noise model, larger when the disk warps.  NaN for < 3 rings.
+    """
+    v = np.asarray(values, float)[(np.asarray(status) == Status.OK) & np.isfinite(values)]
+    if v.size < 3:
+        return np.nan
+    return float(np.std(v, ddof=1) / np.sqrt(v.size))
+
+
 def _scaled(errs, factor):
     return {k: v * factor for k, v in errs.items()}
 

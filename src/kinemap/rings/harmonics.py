@@ -11,14 +11,17 @@ non-circular motions (bars, spiral arms, lopsidedness) or a geometry error.
 """
 from __future__ import annotations
 
+import warnings
+
 import astropy.units as u
 import numpy as np
 from astropy.table import Table
 
 from .._units import KMS
+from ..errors import FitWarning
 from ..status import Status
 from . import _validate as val
-from ._core import Points
+from ._core import Points, noise_scale
 from ._geometry import disk_coords
 from .grid import as_grid
 from .model import _plain
@@ -49,8 +52,10 @@ def harmonic_expansion(
         Sky geometry of the pixels.
     velocity_error : array_like or Quantity, optional
         1-sigma errors; points are weighted by 1/error^2 and the coefficient errors are
-        absolute.  Without it, points are weighted equally and the errors are scaled by
-        the scatter about the fit.
+        absolute, multiplied by sqrt(reduced chi^2) of the ring when that exceeds 1 (as in
+        :func:`fit_rings`).  Pixels with error 0 or below 1e-6 of the median error are
+        skipped with a FitWarning.  Without it, points are weighted equally and the errors
+        are scaled by the scatter about the fit.
     min_points : int, optional
         Fewer points in a ring, or no points on one side of the minor axis, give a row of
         NaNs with status NO_DATA.
@@ -64,6 +69,11 @@ def harmonic_expansion(
     """
     vel = val.velocity_map(velocity)
     err = val.error_map(velocity_error, vel.shape)
+    err, n_zero_err = val.drop_roundoff_errors(err, vel)
+    if n_zero_err:
+        warnings.warn(f"{n_zero_err} pixels with a velocity have 'velocity_error' 0 (or below "
+                      f"{val.ROUNDOFF_ERROR_FRACTION:g} of the median error) and were skipped", FitWarning,
+                      stacklevel=2)
     grid = as_grid(grid)
     radius = _plain(rings["radius"], u.arcsec)
     width = rings.meta.get("ring_width", float(np.min(np.diff(radius))) if radius.size > 1 else None)
@@ -110,8 +120,9 @@ def harmonics_table(pts: Points, jac, radius, edges, geom, min_points, progress=
             status[k] = int(Status.FAILED)
             continue
         dof = npoints[k] - 7
-        if not pts.absolute:
-            cov = cov * float(np.sum((aw @ sol - bw) ** 2)) / dof
+        chi2_red = float(np.sum((aw @ sol - bw) ** 2)) / dof
+        # absolute errors are inflated, never shrunk, by the misfit (see _core.noise_scale)
+        cov = cov * noise_scale(chi2_red, pts.absolute)
         coef[k] = sol
         errs[k] = np.sqrt(np.clip(np.diag(cov), 0, None))
         status[k] = int(Status.OK)
