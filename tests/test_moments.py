@@ -125,3 +125,19 @@ def test_nan_pixels_give_nan_and_zero_channels(tmp_path):
     m = compute_moments(cube.with_changes(data=da.from_array(data)))
     assert np.isnan(m.moment0[0, 0]) and np.isnan(m.moment1[0, 0]) and m.nchan[0, 0] == 0
     assert m.nchan[1, 1] == 30
+
+
+def test_single_channel_pixel_error_is_the_channel_quantisation(tmp_path):
+    """One signal channel: velocity known to dv/sqrt(12) (top-hat sigma, exact); no width."""
+    from kinemap.masks import SignalMask
+    from kinemap.noise import NoiseMap
+
+    cube = _mc_cube(tmp_path, nchan=30)
+    data = np.zeros((30, 1, 1))
+    data[12] = 5.0
+    nm = NoiseMap(np.full((1, 1), 1.0), np.ones((1, 1)), u.K, "given")
+    m = compute_moments(cube.with_changes(data=da.from_array(data)),
+                        mask=SignalMask("threshold", threshold=3.0), noise=nm)
+    assert m.nchan[0, 0] == 1
+    assert m.moment1_err[0, 0] == pytest.approx(5.0 / np.sqrt(12.0))
+    assert np.isnan(m.moment2[0, 0]) and np.isnan(m.moment2_err[0, 0])

@@ -123,6 +123,13 @@ def moments_kernel(data, velocity, dv, mode, threshold, sigma, mask, footprint, 
             b2 = b1
             b1 = w2
         out[4, p] = np.sqrt(s2 * v1)
+        if n == 1:
+            # one channel: the velocity is only known to within the channel (top-hat
+            # sigma dv/sqrt(12)), and there is no width to measure
+            out[4, p] = dv[ipk] / np.sqrt(12.0)
+            out[2, p] = nan
+            out[5, p] = nan
+            continue
         if M2 >= 0.0:
             m2 = np.sqrt(M2)
             out[2, p] = m2

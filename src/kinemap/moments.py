@@ -21,7 +21,9 @@ Var = sigma^2 sum_ij w_i w_j rho_|i-j| with rho the noise correlation between ch
 
 These are first-order (small-noise) errors: they become optimistic when S/N of S is below
 a few, and they do not include the bias a threshold mask imposes.  A pixel with no signal
-channels, or with S <= 0, gets NaN in moments 1 and 2.
+channels, or with S <= 0, gets NaN in moments 1 and 2.  A pixel with a single signal
+channel gets that channel's velocity with the error dv / sqrt(12) (a top-hat channel's
+sigma) and NaN for moment 2.
 """
 from __future__ import annotations
 
@@ -32,7 +34,7 @@ import astropy.units as u
 import numpy as np
 
 from ._units import KMS
-from .cube._blocks import DEFAULT_MAX_MEMORY, iter_blocks
+from .cube._blocks import DEFAULT_MAX_MEMORY, map_blocks
 from .products import Product
 from ._moments_kernel import USE_FINITE, USE_MASK, USE_THRESHOLD, moments_kernel
 from .response import check_response, noise_correlation
@@ -91,8 +93,27 @@ class MomentMaps:
         return out
 
 
+_KEYS = ("moment0", "moment1", "moment2", "moment0_err", "moment1_err", "moment2_err",
+         "peak", "velocity_at_peak", "nchan")
+
+
+def _moments_block(block, *, sigma, footprint, mask, velocity, dv, mode, threshold, rho):
+    """Moments of one block (nchan, rows, nx): runs in this process or on a worker."""
+    nchan, rows, nx = block.shape
+    flat = block.reshape(nchan, -1)
+    sig = np.ascontiguousarray(sigma.reshape(-1), dtype=np.float64)
+    fp = (np.ones(flat.shape[1], dtype=np.bool_) if footprint is None
+          else np.ascontiguousarray(footprint.reshape(-1)))
+    m = (np.zeros((1, 1), dtype=np.bool_) if mask is None
+         else np.ascontiguousarray(mask.reshape(nchan, -1)))
+    res = np.empty((len(_KEYS), flat.shape[1]))
+    moments_kernel(flat, velocity, dv, mode, threshold, sig, m, fp, rho, res)
+    return {k: res[i].reshape(rows, nx) for i, k in enumerate(_KEYS)}
+
+
 def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "tophat",
-                    max_memory: int = DEFAULT_MAX_MEMORY, progress: bool = False) -> MomentMaps:
+                    max_memory: int = DEFAULT_MAX_MEMORY, progress: bool = False,
+                    client=None) -> MomentMaps:
     """Moment maps of ``cube`` over the signal channels of ``mask``.
 
     Parameters
@@ -104,6 +125,8 @@ def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "top
         Needed for the error maps and for a 'threshold' mask; without it errors are NaN.
     channel_response : {'tophat', 'hanning', 'none'}
         Sets the channel-to-channel noise correlation in the errors.
+    client : distributed.Client, optional
+        Run the blocks on a dask.distributed cluster (identical results).
 
     Returns
     -------
@@ -116,31 +139,21 @@ def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "top
     v = np.ascontiguousarray(cube.velocity, dtype=np.float64)
     dv = np.ascontiguousarray(cube.channel_width, dtype=np.float64)
     sigma_map = noise.sigma if noise is not None else np.full((ny, nx), np.nan)
-    keys = ("moment0", "moment1", "moment2", "moment0_err", "moment1_err", "moment2_err",
-            "peak", "velocity_at_peak", "nchan")
-    out = {k: np.full((ny, nx), np.nan) for k in keys}
-    rho = np.ascontiguousarray(rho, dtype=np.float64)
     mode, threshold = USE_FINITE, 0.0
     if mask is not None and mask.method == "threshold":
         mode, threshold = USE_THRESHOLD, float(mask.threshold)
     elif mask is not None and mask.method == "smooth":
         mode = USE_MASK
-    no_mask = np.zeros((1, 1), dtype=np.bool_)
-    for ys, block in iter_blocks(cube, max_memory=max_memory, progress=progress and "moments",
-                                 dtype=None):
-        rows = block.shape[1]
-        flat = block.reshape(nchan, -1)
-        sig = np.ascontiguousarray(sigma_map[ys].reshape(-1), dtype=np.float64)
-        if cube.footprint is not None:
-            fp = np.ascontiguousarray(cube.footprint[ys].reshape(-1))
-        else:
-            fp = np.ones(flat.shape[1], dtype=np.bool_)
-        m = (np.ascontiguousarray(mask.mask[:, ys, :].reshape(nchan, -1))
-             if mode == USE_MASK else no_mask)
-        res = np.empty((len(keys), flat.shape[1]))
-        moments_kernel(flat, v, dv, mode, threshold, sig, m, fp, rho, res)
-        for i, k in enumerate(keys):
-            out[k][ys] = res[i].reshape(rows, nx)
+
+    def block_args(ys):
+        return {"sigma": sigma_map[ys],
+                "footprint": None if cube.footprint is None else cube.footprint[ys],
+                "mask": mask.mask[:, ys, :] if mode == USE_MASK else None}
+
+    out = map_blocks(cube, _moments_block, outputs={k: ((), np.float64, np.nan) for k in _KEYS},
+                     max_memory=max_memory, factor=2.5, block_args=block_args,
+                     progress=progress and "moments", client=client, velocity=v, dv=dv,
+                     mode=mode, threshold=threshold, rho=np.ascontiguousarray(rho, np.float64))
     footprint = out["nchan"] > 0
     return MomentMaps(**out, bunit=cube.meta.bunit, channel_response=response,
                       noise=noise.sigma if noise is not None else None,
