@@ -51,9 +51,15 @@ def _add_output_options(p):
     g.add_argument("--out", default="kinemap-out", metavar="DIR", help="output folder")
     g.add_argument("--overwrite", action="store_true", help="write into a non-empty folder")
     g.add_argument("--no-plots", action="store_true", help="skip PNG plots")
-    g.add_argument("--max-memory", default="1GB", metavar="SIZE",
-                   help="working-set bound for block-wise stages (default 1GB)")
     g.add_argument("--no-progress", action="store_true", help="no progress bars")
+    g = p.add_argument_group("execution")
+    g.add_argument("--max-memory", metavar="SIZE",
+                   help="working-set bound of the block-wise stages, e.g. 1GB (default: a "
+                        "quarter of the machine's memory)")
+    g.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run the blocks on a running dask.distributed scheduler (tcp://host:port)")
+    g.add_argument("--workers", type=int, metavar="N",
+                   help="start a local cluster of N worker processes for this run")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -153,7 +159,7 @@ def config_from_args(args) -> dict:
                          "final_geometry": args.final_geometry, "bootstrap": args.bootstrap,
                          "fix": [f.strip() for f in (args.fix or "").split(",") if f.strip()]}
         user["output"] = {"dir": args.out, "overwrite": args.overwrite, "plots": not args.no_plots}
-        user["run"] = {"max_memory": args.max_memory, "progress": not args.no_progress}
+        user["run"] = _run_options(args)
     if getattr(args, "command", None) == "maps":
         mask = {"method": "none" if args.no_mask else args.mask, "threshold": args.threshold,
                 "grow_threshold": args.grow_threshold, "smooth_channels": args.smooth_channels,
@@ -161,8 +167,17 @@ def config_from_args(args) -> dict:
         user["mask"] = mask
         user["maps"] = {"method": args.method, "channel_response": args.channel_response}
         user["output"] = {"dir": args.out, "overwrite": args.overwrite, "plots": not args.no_plots}
-        user["run"] = {"max_memory": args.max_memory, "progress": not args.no_progress}
+        user["run"] = _run_options(args)
     return validate_config(user)
+
+
+def _run_options(args) -> dict:
+    from .config import parse_size
+
+    if args.max_memory is not None:
+        parse_size(args.max_memory)  # fail early on a bad size
+    return {"max_memory": args.max_memory, "progress": not args.no_progress,
+            "scheduler": args.scheduler, "workers": args.workers}
 
 
 def _cmd_info(args) -> int:

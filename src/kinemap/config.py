@@ -21,7 +21,8 @@ Sections and keys (defaults in brackets)::
               "global", fix [[]], min_points [20], bootstrap [0], seed [0],
               expansion_in_geometry [false], pv_diagram [true]
     [output]  dir ["kinemap-out"], overwrite [false], plots [true]
-    [run]     max_memory ["1GB"], progress [true]
+    [run]     max_memory [a quarter of the machine's memory], progress [true],
+              scheduler ["tcp://host:port" of a dask scheduler], workers [N local processes]
 
 Velocities may be written as numbers (km/s) or strings with units ("1500 km/s").
 """
@@ -68,7 +69,8 @@ SCHEMA: dict[str, dict[str, tuple]] = {
     },
     "output": {"dir": ((str,), "kinemap-out"), "overwrite": ((bool,), False),
                "plots": ((bool,), True)},
-    "run": {"max_memory": ((str, int, float), "1GB"), "progress": ((bool,), True)},
+    "run": {"max_memory": ((str, int, float, type(None)), None), "progress": ((bool,), True),
+            "scheduler": ((str, type(None)), None), "workers": ((int, type(None)), None)},
 }
 
 
@@ -137,8 +139,20 @@ _SIZE_UNITS = (("TIB", 1 << 40), ("GIB", 1 << 30), ("MIB", 1 << 20), ("KIB", 1 <
                ("TB", 10 ** 12), ("GB", 10 ** 9), ("MB", 10 ** 6), ("KB", 10 ** 3), ("B", 1))
 
 
+def default_max_memory() -> int:
+    """A quarter of the machine's memory (psutil comes with dask.distributed)."""
+    try:
+        import psutil
+
+        return int(psutil.virtual_memory().total // 4)
+    except (ImportError, OSError):
+        return 2 * 10 ** 9
+
+
 def parse_size(value) -> int:
-    """'1GB', '512 MB', '2GiB' or a number of bytes -> bytes."""
+    """'1GB', '512 MB', '2GiB' or a number of bytes -> bytes; None -> the default."""
+    if value is None:
+        return default_max_memory()
     n = -1
     if isinstance(value, (int, float)) and not isinstance(value, bool):
         n = int(value)

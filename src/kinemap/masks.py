@@ -96,7 +96,8 @@ def _smoothing_noise_factor(filled, finite, sig, nbox, rho, nplanes=24):
 def make_mask(cube, noise, *, method: str = "smooth", threshold: float | None = None,
               grow_threshold: float = 2.0, smooth_beams: float = 1.5,
               smooth_pixels: float = 3.0, smooth_channels: int = 3, min_pixels: int | None = None,
-              min_channels: int = 2, channel_response: str = "tophat") -> SignalMask:
+              min_channels: int = 2, channel_response: str = "tophat",
+              max_memory: int | None = None) -> SignalMask:
     """Build a :class:`SignalMask` for ``cube`` with noise map ``noise``.
 
     Parameters
@@ -119,6 +120,9 @@ def make_mask(cube, noise, *, method: str = "smooth", threshold: float | None = 
         'smooth': smallest spectral extent of an island kept.
     channel_response : str
         Sets the channel noise correlation used for the spectral smoothing factor.
+    max_memory : int, optional
+        Bytes the run may use; 'smooth' needs about three float32 copies of the cube and
+        refuses with a clear message when they do not fit.
     """
     m = str(method).strip().lower()
     if m not in MASK_METHODS:
@@ -146,6 +150,11 @@ def make_mask(cube, noise, *, method: str = "smooth", threshold: float | None = 
         min_pixels = int(max(1, round(1.1331 * (beam_fwhm_pix ** 2 + fwhm_pix ** 2))))
     if noise is None:
         raise KinemapError("the smooth mask needs a noise map; estimate the noise first")
+    need = 3 * 4 * int(np.prod(cube.shape))
+    if max_memory is not None and need > max_memory:
+        raise KinemapError(
+            f"the smooth mask holds the whole cube in memory ({need / 1e9:.1f} GB) and "
+            f"--max-memory is {max_memory / 1e9:.1f} GB; use --mask threshold or raise --max-memory")
     from scipy import ndimage  # a tenth of a second to import: only for this method
 
     data = np.asarray(cube.data, dtype=np.float32)

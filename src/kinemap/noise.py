@@ -21,7 +21,7 @@ import astropy.units as u
 import numpy as np
 
 from ._units import KMS, to_value
-from .cube._blocks import DEFAULT_MAX_MEMORY, iter_blocks
+from .cube._blocks import DEFAULT_MAX_MEMORY, map_blocks
 from ._noise_kernel import channel_noise, second_difference_noise
 from .errors import KinemapError, NoiseWarning
 from .response import noise_correlation, variance_of_sum
@@ -91,9 +91,24 @@ def line_free_channels(velocity: np.ndarray, ranges) -> np.ndarray:
     return keep
 
 
+def _noise_block(block, *, fixed, factor_2nd, clip, correction):
+    """Noise of one block (nchan, rows, nx): runs in this process or on a worker."""
+    nchan, rows, nx = block.shape
+    flat = block.reshape(nchan, -1)
+    s = np.empty(flat.shape[1])
+    n = np.empty(flat.shape[1], dtype=np.int64)
+    if fixed is None:
+        second_difference_noise(flat, factor_2nd, clip, correction, s, n)
+    else:
+        channel_noise(flat, fixed, clip, correction, s, n)
+    finite = np.isfinite(flat).any(axis=0)
+    return {"sigma": s.reshape(rows, nx), "nused": n.reshape(rows, nx),
+            "finite": finite.reshape(rows, nx)}
+
+
 def estimate_noise(cube, *, line_free=None, channel_response: str = "tophat",
-                   max_memory: int = DEFAULT_MAX_MEMORY,
-                   progress: bool = False) -> NoiseMap:
+                   max_memory: int = DEFAULT_MAX_MEMORY, progress: bool = False,
+                   client=None) -> NoiseMap:
     """Estimate the noise of every spectrum of ``cube``.
 
     Parameters
@@ -103,28 +118,21 @@ def estimate_noise(cube, *, line_free=None, channel_response: str = "tophat",
         Channels to use.  ``None``/'auto' uses differences of neighbouring channels.
     channel_response : {'tophat', 'hanning', 'none'}
         Sets the neighbour correlation used by the automatic estimate.
+    client : distributed.Client, optional
+        Run the blocks on a dask.distributed cluster (identical results).
     """
-    nchan, ny, nx = cube.shape
     rho = noise_correlation(channel_response)
     auto = line_free is None or (isinstance(line_free, str) and line_free.lower() == "auto")
     fixed = None if auto else np.ascontiguousarray(line_free_channels(cube.velocity, line_free))
-    sigma = np.full((ny, nx), np.nan)
-    nused = np.zeros((ny, nx), np.int32)
-    any_finite = False
     factor = float(np.sqrt(variance_of_sum(_SECOND_DIFF[:, None], 1.0, rho))[0])
-    corr = clip_correction(CLIP)
-    for ys, block in iter_blocks(cube, max_memory=max_memory, progress=progress and "noise",
-                                 dtype=None):
-        flat = block.reshape(nchan, -1)
-        s = np.empty(flat.shape[1])
-        n = np.empty(flat.shape[1], dtype=np.int64)
-        if fixed is None:
-            second_difference_noise(flat, factor, CLIP, corr, s, n)
-        else:
-            channel_noise(flat, fixed, CLIP, corr, s, n)
-        any_finite |= bool(n.any()) or bool(np.isfinite(flat).any())
-        sigma[ys] = s.reshape(-1, nx)
-        nused[ys] = n.reshape(-1, nx)
+    out = map_blocks(cube, _noise_block, outputs={"sigma": ((), np.float64, np.nan),
+                                                  "nused": ((), np.int32, 0),
+                                                  "finite": ((), np.bool_, False)},
+                     max_memory=max_memory, factor=2.0, progress=progress and "noise",
+                     client=client, fixed=fixed, factor_2nd=factor, clip=CLIP,
+                     correction=clip_correction(CLIP))
+    sigma, nused = out["sigma"], out["nused"]
+    any_finite = bool(out["finite"].any())
     if not any_finite:
         raise KinemapError("the cube holds no finite values (all NaN); check the input file")
     bad = ~np.isfinite(sigma)

@@ -14,6 +14,7 @@ import astropy.units as u
 import numpy as np
 
 from .config import parse_size
+from .cluster import open_client
 from .cube import read_cube, read_map
 from .errors import KinemapError
 from .export.outdir import StagedOutput, check_output_dir
@@ -37,6 +38,8 @@ class RunState:
     mask: object = None
     results: dict = field(default_factory=dict)
     timings: dict = field(default_factory=dict)
+    client: object = None
+    execution: dict = field(default_factory=dict)
 
     @property
     def meta(self):
@@ -93,13 +96,14 @@ def prepare(cfg: dict, state: RunState | None = None) -> RunState:
     state.noise = _timed(state, "noise", estimate_noise, state.cube,
                          line_free=_line_free(cfg["noise"]["line_free"]),
                          channel_response=response, max_memory=state.max_memory,
-                         progress=state.progress)
+                         progress=state.progress, client=state.client)
     m = cfg["mask"]
     state.mask = _timed(state, "mask", make_mask, state.cube, state.noise, method=m["method"],
                         threshold=m["threshold"], grow_threshold=m["grow_threshold"],
                         smooth_beams=m["smooth_beams"], smooth_pixels=m["smooth_pixels"],
                         smooth_channels=m["smooth_channels"], min_pixels=m["min_pixels"],
-                        min_channels=m["min_channels"], channel_response=response)
+                        min_channels=m["min_channels"], channel_response=response,
+                        max_memory=state.max_memory)
     return state
 
 
@@ -110,7 +114,7 @@ def stage_maps(state: RunState):
         raise KinemapError(f"'maps method' must be 'moments', got {cfg['method']!r}")
     return _timed(state, "moments", compute_moments, state.cube, mask=state.mask,
                   noise=state.noise, channel_response=cfg["channel_response"],
-                  max_memory=state.max_memory, progress=state.progress)
+                  max_memory=state.max_memory, progress=state.progress, client=state.client)
 
 
 def _velocity_field(state):
@@ -154,18 +158,8 @@ def run_config(cfg: dict, *, stage_dir=None) -> RunState:
     out = cfg["output"]
     if stage_dir is None:
         check_output_dir(out["dir"], overwrite=out["overwrite"])
-    sections = set(cfg.get("_sections", ()))
-    if cfg["input"]["velocity_map"]:
-        state = RunState(config=cfg)
-        state.velocity_map = _timed(state, "read", read_map, cfg["input"]["velocity_map"],
-                                    unit="km/s", name="velocity map")
-        sections.discard("maps")
-    else:
-        state = prepare(cfg)
-        sections.add("maps")
-    for section, name, fn in STAGES:
-        if section in sections:
-            state.results[name] = fn(state)
+    with open_client(scheduler=cfg["run"]["scheduler"], workers=cfg["run"]["workers"]) as client:
+        state = _run_stages(cfg, client)
     products, figures, summary = [], {}, {}
     for name, res in state.results.items():
         products.extend(res.products())
@@ -178,14 +172,45 @@ def run_config(cfg: dict, *, stage_dir=None) -> RunState:
         state.manifest = write_products(stage_dir, state.meta, products,
                                         options=_options(cfg), timings=state.timings,
                                         figures=figures, plots=out["plots"], center=center,
-                                        summary=summary)
+                                        summary=summary, execution=state.execution)
         return state
     with StagedOutput(out["dir"], overwrite=out["overwrite"]) as staged:
         state.manifest = write_products(staged.path, state.meta, products,
                                         options=_options(cfg), timings=state.timings,
                                         figures=figures, plots=out["plots"], center=center,
-                                        summary=summary)
+                                        summary=summary, execution=state.execution)
     return state
+
+
+def _run_stages(cfg, client) -> RunState:
+    sections = set(cfg.get("_sections", ()))
+    if cfg["input"]["velocity_map"]:
+        state = RunState(config=cfg, client=client)
+        state.velocity_map = _timed(state, "read", read_map, cfg["input"]["velocity_map"],
+                                    unit="km/s", name="velocity map")
+        sections.discard("maps")
+    else:
+        state = prepare(cfg, RunState(config=cfg, client=client))
+        sections.add("maps")
+    for section, name, fn in STAGES:
+        if section in sections:
+            state.results[name] = fn(state)
+    state.execution = _execution(cfg, state)
+    return state
+
+
+def _execution(cfg, state) -> dict:
+    """How the run was executed, for the manifest."""
+    from .cube._blocks import block_rows
+
+    info = {"scheduler": cfg["run"]["scheduler"] or ("local cluster" if cfg["run"]["workers"]
+                                                      else "in-process threads"),
+            "workers": cfg["run"]["workers"], "max_memory_bytes": state.max_memory}
+    if state.cube is not None:
+        info["block_rows"] = block_rows(state.cube.shape, max_memory=state.max_memory,
+                                        factor=2.5)
+        info["cube_shape"] = list(state.cube.shape)
+    return info
 
 
 def _systemic(state) -> float | None:

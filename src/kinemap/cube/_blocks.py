@@ -1,9 +1,12 @@
 """Walk a cube in blocks of whole spectra so memory stays bounded.
 
-Every per-pixel stage (noise, moments, line fits) uses :func:`iter_blocks`: a block is all
-channels of a band of rows, ``(nchan, rows, nx)``, read as float64.  The band height is
-chosen so that one block, times a working factor for the temporaries a stage makes, fits
-in ``max_memory`` bytes.
+Every per-pixel stage (noise, moments, line fits) goes through :func:`map_blocks`: a block
+is all channels of a band of rows, ``(nchan, rows, nx)``.  The band height is chosen so
+that one block, times a working factor for the temporaries a stage makes, fits in
+``max_memory`` bytes.  The same block function runs in this process (the default: its
+compiled kernels use every core) or, given a dask.distributed client, as one task per
+block on the cluster's workers, which read their blocks from the file themselves.  Either
+way each pixel sees the same code and the same data, so the maps are identical.
 """
 from __future__ import annotations
 
@@ -12,7 +15,7 @@ from tqdm.auto import tqdm
 
 from ..errors import KinemapError
 
-__all__ = ["iter_blocks", "read_rows", "block_rows", "DEFAULT_MAX_MEMORY"]
+__all__ = ["read_rows", "block_rows", "map_blocks", "DEFAULT_MAX_MEMORY"]
 
 DEFAULT_MAX_MEMORY = 1 << 30  # 1 GiB working set unless the caller says otherwise
 
@@ -38,26 +41,71 @@ def read_rows(cube, ys: slice, *, dtype=None) -> np.ndarray:
     return np.ascontiguousarray(np.asarray(raw), dtype=dt)
 
 
-def iter_blocks(cube, *, max_memory: int = DEFAULT_MAX_MEMORY, factor: float = 6.0,
-                progress: bool | str = False, dtype=np.float64):
-    """Yield ``(rows, block)``: a row slice and the data of those rows, C-contiguous.
+def _row_slices(ny, rows):
+    return [slice(y0, min(ny, y0 + rows)) for y0 in range(0, ny, rows)]
 
-    ``dtype=None`` keeps float32 data as float32 (native byte order, for compiled kernels)
-    and turns anything else into float64.  ``progress`` is False, True or a bar label.
+
+def _run_block(source, data, ys, func, args, kwargs, threads):
+    """One block on a worker: read it (from the file when possible) and run ``func``."""
+    if threads:
+        import numba
+
+        numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
+    block = source.read(ys) if source is not None else data
+    return ys, func(block, **args, **kwargs)
+
+
+def map_blocks(cube, func, *, outputs: dict, max_memory: int = DEFAULT_MAX_MEMORY,
+               factor: float = 6.0, block_args=None, progress: bool | str = False,
+               client=None, **kwargs) -> dict:
+    """Run ``func(block, **block_args(ys), **kwargs)`` on every block and assemble the maps.
+
+    Parameters
+    ----------
+    func : callable
+        Module-level function (picklable) returning a dict of arrays whose last two axes
+        are (rows, nx).
+    outputs : dict name -> (leading shape tuple, dtype, fill value)
+        The full-size maps to assemble, shape ``leading + (ny, nx)``.
+    block_args : callable ys -> dict, optional
+        Per-block arguments (slices of noise maps, masks), evaluated here.
+    client : distributed.Client, optional
+        Run one task per block on the cluster.
     """
     nchan, ny, nx = cube.shape
     rows = block_rows(cube.shape, max_memory=max_memory, factor=factor)
-    starts = range(0, ny, rows)
+    out = {k: np.full(tuple(lead) + (ny, nx), fill, dtype=dt) for k, (lead, dt, fill) in outputs.items()}
     bar = None
     if progress:
         bar = tqdm(total=ny, unit="row", desc=progress if isinstance(progress, str) else None,
                    leave=False, disable=None)
+
+    def store(ys, res):
+        for k, arr in res.items():
+            out[k][..., ys, :] = arr
+        if bar is not None:
+            bar.update(ys.stop - ys.start)
+
     try:
-        for y0 in starts:
-            ys = slice(y0, min(ny, y0 + rows))
-            yield ys, read_rows(cube, ys, dtype=dtype)
-            if bar is not None:
-                bar.update(ys.stop - ys.start)
+        slices = _row_slices(ny, rows)
+        if client is None:
+            for ys in slices:
+                store(ys, func(read_rows(cube, ys), **(block_args(ys) if block_args else {}),
+                               **kwargs))
+        else:
+            from distributed import as_completed
+
+            threads = min(client.nthreads().values() or [1])
+            futures = []
+            for ys in slices:
+                data = None if cube.source is not None else read_rows(cube, ys)
+                futures.append(client.submit(_run_block, cube.source, data, ys, func,
+                                             block_args(ys) if block_args else {}, kwargs,
+                                             threads, pure=False))
+            for fut in as_completed(futures):
+                ys, res = fut.result()
+                store(ys, res)
     finally:
         if bar is not None:
             bar.close()
+    return out

@@ -94,7 +94,7 @@ class Cube:
     data : array-like
         Values, shape (nchan, ny, nx): a numpy memory-map view where the file allows
         (read from disk only when sliced), else an in-memory array; a dask array works
-        too.  NaN means no data.  Slice it in blocks (``cube._blocks.iter_blocks``).
+        too.  NaN means no data.  Walk it in blocks (``cube._blocks.map_blocks``).
     velocity : ndarray
         Channel-centre velocities, float64 km/s, in ``meta.convention`` and ``meta.frame``.
     spectral : Quantity

@@ -17,7 +17,8 @@ def _unit_str(unit) -> str:
 
 
 def build_manifest(meta, products: dict, *, timings: dict, options: dict,
-                   figures: dict | None = None, summary: dict | None = None) -> dict:
+                   figures: dict | None = None, summary: dict | None = None,
+                   execution: dict | None = None) -> dict:
     rest = None
     if meta is not None and meta.rest_value is not None:
         rest = {"value": float(meta.rest_value.value), "unit": meta.rest_value.unit.to_string(),
@@ -40,6 +41,7 @@ def build_manifest(meta, products: dict, *, timings: dict, options: dict,
                          "description": v["description"]} for k, v in products.items()},
         "figures": figures or {},
         "timings": {k: round(float(v), 4) for k, v in timings.items()},
+        "execution": execution or {},
     }
     if summary:
         doc["summary"] = summary

@@ -19,7 +19,7 @@ __all__ = ["write_products"]
 
 def write_products(folder, meta, products, *, options: dict, timings: dict,
                    figures: dict | None = None, plots: bool = True, center: float | None = None,
-                   summary: dict | None = None) -> dict:
+                   summary: dict | None = None, execution: dict | None = None) -> dict:
     """Write ``products`` into ``folder`` (normally a staging folder) and return the manifest.
 
     Parameters
@@ -32,6 +32,8 @@ def write_products(folder, meta, products, *, options: dict, timings: dict,
         Extra plots made by the stages (spectra panels, rotation curves, ...).
     center : float, optional
         Systemic velocity (km/s) at which velocity maps' colour scales are centred.
+    execution : dict, optional
+        Where and how the blocks ran (scheduler, workers, block size), for the manifest.
     """
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
@@ -66,6 +68,6 @@ def write_products(folder, meta, products, *, options: dict, timings: dict,
     timings = dict(timings)
     timings["export"] = time.perf_counter() - t0
     doc = build_manifest(meta, written, timings=timings, options=options, figures=figure_list,
-                         summary=summary)
+                         summary=summary, execution=execution)
     write_json(folder / "manifest.json", doc)
     return doc
