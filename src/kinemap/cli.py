@@ -74,10 +74,27 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("maps", help="intensity, velocity and dispersion maps")
     p.add_argument("cube")
-    p.add_argument("--method", choices=["moments"], default="moments",
-                   help="moments: moment maps with analytic errors")
+    p.add_argument("--method", choices=["moments", "gauss"], default="moments",
+                   help="moments: moment maps with analytic errors; gauss: also a Gaussian fit "
+                        "of every spectrum")
     p.add_argument("--channel-response", choices=["tophat", "hanning", "none"], default="tophat",
                    help="how channels sample the spectrum (sets noise correlation)")
+    g = p.add_argument_group("Gaussian fits (--method gauss)")
+    g.add_argument("--components", default="1", choices=["1", "2", "3", "auto"],
+                   help="Gaussian components per spectrum; auto chooses 1-3 by BIC")
+    g.add_argument("--baseline", choices=["none", "constant", "linear"], default="none",
+                   help="baseline fitted with the lines (default none: cubes are usually "
+                        "continuum-subtracted, and a free baseline trades off against the wings "
+                        "of lines that fill the band)")
+    g.add_argument("--instrument-sigma", metavar="VELOCITY",
+                   help="Gaussian instrumental sigma, e.g. '5 km/s'")
+    g.add_argument("--resolving-power", type=float, metavar="R",
+                   help="instrumental resolution R (FWHM = c/R)")
+    g.add_argument("--order", choices=["flux", "velocity"], default="flux",
+                   help="component order: brightest first (default) or by velocity")
+    g.add_argument("--snr-threshold", type=float, default=3.0,
+                   help="spectra with a lower peak S/N are not fitted (default 3)")
+    g.add_argument("--write-model", action="store_true", help="also write model and residual cubes")
     g = p.add_argument_group("signal mask")
     g.add_argument("--mask", choices=["smooth", "threshold"], default="smooth",
                    help="smooth-and-mask (default) or a plain S/N threshold")
@@ -110,6 +127,8 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--final-geometry", choices=["median", "polynomial", "rings", "global"],
                    default="median", help="stage 3: how the ring geometry is smoothed")
     g.add_argument("--bootstrap", type=int, default=0, metavar="N", help="bootstrap resamples")
+    g.add_argument("--method", choices=["gauss", "moments"], default="gauss",
+                   help="for a cube input: velocity field from Gaussian fits (default) or moment 1")
     g.add_argument("--velocity-error", metavar="FITS", help="error map for a velocity-map input")
     g.add_argument("--intensity", metavar="FITS", help="intensity map for a velocity-map input")
     _add_cube_options(p)
@@ -160,12 +179,19 @@ def config_from_args(args) -> dict:
                          "fix": [f.strip() for f in (args.fix or "").split(",") if f.strip()]}
         user["output"] = {"dir": args.out, "overwrite": args.overwrite, "plots": not args.no_plots}
         user["run"] = _run_options(args)
+        if cube is not None:
+            user["maps"] = {"method": args.method}
     if getattr(args, "command", None) == "maps":
         mask = {"method": "none" if args.no_mask else args.mask, "threshold": args.threshold,
                 "grow_threshold": args.grow_threshold, "smooth_channels": args.smooth_channels,
                 "min_pixels": args.min_pixels}
         user["mask"] = mask
-        user["maps"] = {"method": args.method, "channel_response": args.channel_response}
+        user["maps"] = {"method": args.method, "channel_response": args.channel_response,
+                        "components": args.components if args.components == "auto"
+                        else int(args.components), "baseline": args.baseline,
+                        "instrument_sigma": args.instrument_sigma,
+                        "resolving_power": args.resolving_power, "order": args.order,
+                        "snr_threshold": args.snr_threshold, "write_model": args.write_model}
         user["output"] = {"dir": args.out, "overwrite": args.overwrite, "plots": not args.no_plots}
         user["run"] = _run_options(args)
     return validate_config(user)
@@ -231,7 +257,7 @@ def _cmd_demo(args) -> int:
 
 def _report(state, out):
     n = len(state.manifest["products"])
-    total = sum(state.timings.values())
+    total = sum(state.manifest["timings"].values())
     print(f"kinemap: wrote {n} products to {out} in {total:.1f} s "
           f"(velocities: {state.meta.convention} convention, frame "
           f"{state.meta.frame or 'unknown'})")

@@ -14,7 +14,11 @@ Sections and keys (defaults in brackets)::
     [mask]    method ["smooth"] | "threshold" | "none", threshold, grow_threshold [2.0],
               smooth_beams [1.5], smooth_pixels [3.0], smooth_channels [3], min_pixels,
               min_channels [2]
-    [maps]    method ["moments"] | "gauss", channel_response ["tophat"]
+    [maps]    method ["moments"] | "gauss", channel_response ["tophat"] | "hanning" | "none";
+              for gauss: components [1] | 2 | 3 | "auto", baseline ["none"] | "constant" |
+              "linear", instrument_sigma (km/s) or resolving_power, order ["flux"] |
+              "velocity", snr_threshold [3], min_separation [1] (sigma),
+              min_component_snr [3], write_model [false]
     [rings]   center ("RA,DEC"), pa, inclination, vsys, ring_width (arcsec), distance
               (Mpc), weighting ["cos"] | "cos2" | "uniform", exclude_minor_axis [20] (deg),
               stages [[1, 2, 3]], final_geometry ["median"] | "polynomial" | "rings" |
@@ -55,7 +59,12 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "smooth_pixels": ((int, float), 3.0), "smooth_channels": ((int,), 3),
         "min_pixels": ((int, type(None)), None), "min_channels": ((int,), 2),
     },
-    "maps": {"method": ((str,), "moments"), "channel_response": ((str,), "tophat")},
+    "maps": {"method": ((str,), "moments"), "channel_response": ((str,), "tophat"),
+             "components": ((int, str), 1), "baseline": ((str,), "none"),
+             "instrument_sigma": ((int, float, str, type(None)), None),
+             "resolving_power": ((int, float, type(None)), None), "order": ((str,), "flux"),
+             "snr_threshold": ((int, float), 3.0), "min_separation": ((int, float), 1.0),
+             "min_component_snr": ((int, float), 3.0), "write_model": ((bool,), False)},
     "rings": {
         "center": ((str, type(None)), None), "pa": ((int, float, str, type(None)), None),
         "inclination": ((int, float, str, type(None)), None),

@@ -65,9 +65,13 @@ class MomentMaps:
     settings: dict = field(default_factory=dict)
     seconds: float = 0.0
 
-    def velocity_field(self):
-        """(velocity, velocity error, intensity) maps for a ring fit."""
-        return self.moment1, self.moment1_err, self.moment0
+    def velocity_field(self, *, min_snr: float = 5.0):
+        """(velocity, velocity error, intensity) maps for a ring fit; pixels whose moment 0
+        has S/N below ``min_snr`` are left out (NaN)."""
+        with np.errstate(invalid="ignore", divide="ignore"):
+            keep = self.moment0 / self.moment0_err >= min_snr
+        return (np.where(keep, self.moment1, np.nan), np.where(keep, self.moment1_err, np.nan),
+                self.moment0)
 
     def products(self) -> list[Product]:
         b = self.bunit

@@ -22,6 +22,7 @@ from .export.writer import write_products
 from .masks import make_mask
 from .moments import compute_moments
 from .noise import estimate_noise
+from .linefit.stage import fit_cube, instrument_sigma_from
 from .rings.stage import run_rings
 
 __all__ = ["RunState", "run_config", "prepare", "STAGES"]
@@ -107,14 +108,55 @@ def prepare(cfg: dict, state: RunState | None = None) -> RunState:
     return state
 
 
-def stage_maps(state: RunState):
+def stage_moments(state: RunState):
     cfg = state.config["maps"]
-    method = str(cfg["method"]).strip().lower()
-    if method not in ("moments",):
-        raise KinemapError(f"'maps method' must be 'moments', got {cfg['method']!r}")
     return _timed(state, "moments", compute_moments, state.cube, mask=state.mask,
                   noise=state.noise, channel_response=cfg["channel_response"],
                   max_memory=state.max_memory, progress=state.progress, client=state.client)
+
+
+def stage_fit(state: RunState):
+    cfg = state.config["maps"]
+    if cfg["method"] != "gauss":
+        return None
+    sigma_instr = instrument_sigma_from(instrument_sigma=cfg["instrument_sigma"],
+                                        resolving_power=cfg["resolving_power"])
+    return _timed(state, "fit", fit_cube, state.cube, state.noise, mask=state.mask,
+                  components=cfg["components"], baseline=cfg["baseline"],
+                  channel_response=cfg["channel_response"], instrument_sigma=sigma_instr,
+                  order=cfg["order"], snr_threshold=cfg["snr_threshold"],
+                  min_separation=cfg["min_separation"],
+                  min_component_snr=cfg["min_component_snr"], max_memory=state.max_memory,
+                  progress=state.progress, client=state.client)
+
+
+@dataclass(frozen=True)
+class ModelCubes:
+    """Model and residual cubes of the line fits (held in memory: --write-model only)."""
+
+    model: np.ndarray
+    residual: np.ndarray
+    bunit: object
+
+    def products(self):
+        from .products import Product
+
+        return [Product("model", self.model, self.bunit, "model cube of the Gaussian fits", "cube",
+                        plot=False),
+                Product("residual", self.residual, self.bunit, "data minus model cube", "cube",
+                        plot=False)]
+
+
+def stage_model(state: RunState):
+    fit = state.results.get("fit")
+    if fit is None or not state.config["maps"]["write_model"]:
+        return None
+    from .cube import read_rows
+
+    data = read_rows(state.cube, slice(0, state.cube.shape[1]))
+    model = fit.model_cube(state.cube)
+    return ModelCubes(model=model, residual=(data - model).astype(np.float32),
+                      bunit=state.cube.meta.bunit)
 
 
 def _velocity_field(state):
@@ -131,7 +173,8 @@ def _velocity_field(state):
         vmap = state.velocity_map
         v = vmap.data if vmap.unit == u.one else (vmap.data * vmap.unit).to_value(u.km / u.s)
         return v, err, inten
-    return state.results["maps"].velocity_field()
+    fit = state.results.get("fit")
+    return (fit or state.results["moments"]).velocity_field()
 
 
 def stage_rings(state: RunState):
@@ -142,7 +185,8 @@ def stage_rings(state: RunState):
 
 # (config section, result name, stage function).  A stage runs when its section is in the
 # config; later capabilities add their entry here.
-STAGES = [("maps", "maps", stage_maps), ("rings", "rings", stage_rings)]
+STAGES = [("maps", "moments", stage_moments), ("maps", "fit", stage_fit),
+          ("maps", "model", stage_model), ("rings", "rings", stage_rings)]
 
 
 def _options(cfg):
@@ -194,7 +238,9 @@ def _run_stages(cfg, client) -> RunState:
         sections.add("maps")
     for section, name, fn in STAGES:
         if section in sections:
-            state.results[name] = fn(state)
+            result = fn(state)
+            if result is not None:  # a stage may decline (e.g. no fit asked for)
+                state.results[name] = result
     state.execution = _execution(cfg, state)
     return state
 
@@ -218,7 +264,7 @@ def _systemic(state) -> float | None:
     rings = state.results.get("rings")
     if rings is not None:
         return rings.summary()["v_sys_kms"]
-    maps = state.results.get("maps")
+    maps = state.results.get("moments")
     v = getattr(maps, "moment1", None)
     if v is None or not np.isfinite(v).any():
         return None

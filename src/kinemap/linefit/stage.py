@@ -1,0 +1,252 @@
+"""The line-fit stage of a run: fit every spectrum of a cube, block by block.
+
+Which pixels are fitted: all pixels inside the user's region, except that a smooth-and-
+mask signal mask restricts the fits to pixels with signal (others get status MASKED);
+spectra whose peak S/N is below ``snr_threshold`` are not fitted (TOO_FAINT).  Each
+spectrum is fitted over all its finite channels.
+
+Products: the first component (in the chosen order: by flux, brightest first, or by
+velocity) gives ``velocity``, ``dispersion`` (intrinsic sigma), ``amplitude`` and their
+errors; ``integrated`` is the sum over components; with more than one component each
+also gets ``velocity_<k>``, ``dispersion_<k>``, ``amplitude_<k>``, ``integrated_<k>``.
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import astropy.constants as const
+import astropy.units as u
+import numpy as np
+
+from .._units import KMS, to_value
+from ..cube._blocks import DEFAULT_MAX_MEMORY, map_blocks, read_rows
+from ..errors import KinemapError
+from ..products import Product
+from ..status import STATUS_DESCRIPTIONS, Status
+from ._result import COMPONENT_QUANTITIES
+from .fit import fit_block, model_block, model_spectra
+
+__all__ = ["LineFitMaps", "fit_cube", "instrument_sigma_from"]
+
+FWHM_PER_SIGMA = 2.0 * np.sqrt(2.0 * np.log(2.0))
+RING_MIN_SNR = 5.0  # integrated S/N a pixel needs to enter a ring fit
+
+
+def instrument_sigma_from(*, instrument_sigma=None, resolving_power=None) -> float:
+    """Instrumental Gaussian sigma in km/s from a sigma or a resolving power R (FWHM = c/R)."""
+    if instrument_sigma is not None and resolving_power is not None:
+        raise KinemapError("give either --instrument-sigma or --resolving-power, not both")
+    if resolving_power is not None:
+        r = float(resolving_power)
+        if not r > 0:
+            raise KinemapError(f"'resolving_power' must be positive, got {resolving_power!r}")
+        return const.c.to_value(KMS) / r / FWHM_PER_SIGMA
+    if instrument_sigma is not None:
+        s = float(to_value(instrument_sigma, KMS, name="instrument_sigma"))
+        if not s >= 0:
+            raise KinemapError(f"'instrument_sigma' must be >= 0 km/s, got {instrument_sigma!r}")
+        return s
+    return 0.0
+
+
+def _fit_block_fn(block, *, noise, pixel_mask, velocity, options, ncomp_max, npar):
+    """Fit one block (nchan, rows, nx): runs in this process or on a worker."""
+    res = fit_block(block, noise, velocity, mask=pixel_mask, **options)
+    m = res.maps()
+    out = {k: m[k] for k in ("status", "ncomp", "chi2_reduced", "peak_snr", "params", "errors")}
+    for q in COMPONENT_QUANTITIES:
+        out[q] = m[q][:ncomp_max]
+        out[q + "_error"] = m[q + "_error"][:ncomp_max]
+    out["status"] = out["status"].astype(np.int16)
+    out["ncomp"] = out["ncomp"].astype(np.int16)
+    return out
+
+
+@dataclass(frozen=True)
+class LineFitMaps:
+    """Maps of a Gaussian fit of every spectrum (arrays (k, ny, nx) or (ny, nx))."""
+
+    velocity: np.ndarray
+    velocity_error: np.ndarray
+    dispersion: np.ndarray
+    dispersion_error: np.ndarray
+    observed_dispersion: np.ndarray
+    observed_dispersion_error: np.ndarray
+    amplitude: np.ndarray
+    amplitude_error: np.ndarray
+    integrated: np.ndarray
+    integrated_error: np.ndarray
+    status: np.ndarray
+    ncomp: np.ndarray
+    chi2_reduced: np.ndarray
+    peak_snr: np.ndarray
+    params: np.ndarray
+    errors: np.ndarray
+    param_names: tuple
+    bunit: u.UnitBase
+    settings: dict = field(default_factory=dict)
+    model_options: dict = field(default_factory=dict)
+    seconds: float = 0.0
+
+    @property
+    def ncomp_max(self) -> int:
+        return int(self.velocity.shape[0])
+
+    def velocity_field(self, *, min_snr: float = RING_MIN_SNR):
+        """(velocity, velocity error, intensity) of the first component, for a ring fit.
+
+        Pixels whose integrated intensity has S/N below ``min_snr`` are left out (NaN): a
+        noise spike fitted at the edge of the emission has a deceptively small velocity
+        error and would pull the rings.
+        """
+        tot, err = self.integrated_total()
+        with np.errstate(invalid="ignore", divide="ignore"):
+            keep = (self.status == Status.OK) & (tot / err >= min_snr)
+        return (np.where(keep, self.velocity[0], np.nan), np.where(keep, self.velocity_error[0], np.nan),
+                tot)
+
+    def integrated_total(self):
+        """Sum of the components' integrated intensities and its error (independent errors)."""
+        total = np.where(self.ncomp > 0, np.nansum(self.integrated, axis=0), np.nan)
+        err = np.where(self.ncomp > 0, np.sqrt(np.nansum(self.integrated_error ** 2, axis=0)), np.nan)
+        return total, err
+
+    def products(self) -> list[Product]:
+        b = self.bunit
+        tot, tot_err = self.integrated_total()
+        codes = "; ".join(f"{int(c)} {c.name.lower()}" for c in Status)
+        out = [
+            Product("velocity", self.velocity[0], KMS, "line-of-sight velocity (Gaussian fit)", "velocity"),
+            Product("velocity_err", self.velocity_error[0], KMS, "1-sigma error of the velocity", "error"),
+            Product("dispersion", self.dispersion[0], KMS,
+                    "intrinsic dispersion sigma (instrument and channel response removed)", "dispersion"),
+            Product("dispersion_err", self.dispersion_error[0], KMS, "1-sigma error of the dispersion", "error"),
+            Product("observed_dispersion", self.observed_dispersion[0], KMS,
+                    "dispersion with the instrument (before channel averaging)", "dispersion", plot=False),
+            Product("amplitude", self.amplitude[0], b, "peak of the fitted Gaussian", "intensity"),
+            Product("amplitude_err", self.amplitude_error[0], b, "1-sigma error of the amplitude", "error",
+                    plot=False),
+            Product("integrated", tot, b * KMS, "integrated intensity of the fitted components", "intensity"),
+            Product("integrated_err", tot_err, b * KMS, "1-sigma error of the integrated intensity",
+                    "error", plot=False),
+            Product("chi2_reduced", self.chi2_reduced, u.one, "reduced chi-square of the fit", "other"),
+            Product("snr", self.peak_snr, u.one, "peak signal-to-noise of the spectrum", "other"),
+            Product("fit_status", self.status.astype(np.int16), u.one,
+                    "fit status code (kinemap.status)", "status",
+                    extra_header={"STATCODE": codes[:68]}),
+            Product("ncomp", self.ncomp.astype(np.int16), u.one, "number of Gaussian components", "count"),
+        ]
+        if "baseline" in self.param_names:
+            i = self.param_names.index("baseline")
+            out.append(Product("baseline", self.params[i], b, "fitted baseline level (centre channel)",
+                               "intensity", plot=False))
+        else:  # the key is always there, so scripts need not branch on the option
+            fitted = np.isin(self.status, (Status.OK, Status.AT_BOUND))
+            out.append(Product("baseline", np.where(fitted, 0.0, np.nan), b,
+                               "baseline level: none fitted (zero by assumption)", "intensity",
+                               plot=False))
+        if self.ncomp_max > 1:
+            for k in range(self.ncomp_max):
+                n = k + 1
+                out += [
+                    Product(f"velocity_{n}", self.velocity[k], KMS, f"velocity of component {n}", "velocity"),
+                    Product(f"dispersion_{n}", self.dispersion[k], KMS, f"dispersion of component {n}",
+                            "dispersion"),
+                    Product(f"amplitude_{n}", self.amplitude[k], b, f"amplitude of component {n}",
+                            "intensity", plot=False),
+                    Product(f"integrated_{n}", self.integrated[k], b * KMS,
+                            f"integrated intensity of component {n}", "intensity", plot=False),
+                ]
+        return out
+
+    def summary(self) -> dict:
+        counts = {c.name.lower(): int((self.status == c).sum()) for c in Status
+                  if (self.status == c).any()}
+        ok = self.status == Status.OK
+        return {"status_counts": counts,
+                "median_dispersion_kms": float(np.nanmedian(self.dispersion[0][ok])) if ok.any() else None,
+                "components_used": {str(k): int((self.ncomp == k).sum()) for k in range(0, self.ncomp_max + 1)},
+                "seconds": self.seconds}
+
+    def figures(self, state) -> dict:
+        from ..export.plots_linefit import plot_example_spectra
+
+        fig = plot_example_spectra(state.cube, self)
+        return {} if fig is None else {
+            "example_spectra": (fig, "brightest, median and faintest fitted spectra with their "
+                                     "fits and residuals")}
+
+    def model_cube(self, cube, *, dtype=np.float32) -> np.ndarray:
+        """Model cube (nchan, ny, nx) of the fits (NaN where not fitted)."""
+        return model_block(self.params, cube.velocity, dtype=dtype, **self.model_options)
+
+    def model_spectrum(self, velocity, y, x) -> np.ndarray:
+        return model_spectra(self.params[:, y, x], velocity, **self.model_options)
+
+
+def fit_cube(cube, noise, *, mask=None, components=1, baseline: str = "none",
+             channel_response: str = "tophat", instrument_sigma: float = 0.0,
+             order: str = "flux", snr_threshold: float = 3.0, min_separation: float = 1.0,
+             min_component_snr: float = 3.0, max_memory: int = DEFAULT_MAX_MEMORY,
+             progress: bool = False, client=None) -> LineFitMaps:
+    """Gaussian fits of every spectrum of ``cube`` (see the module docstring).
+
+    Parameters
+    ----------
+    cube : kinemap.cube.Cube
+    noise : kinemap.noise.NoiseMap
+    mask : kinemap.masks.SignalMask, optional
+    components : 1, 2, 3 or 'auto'
+        'auto' compares 1-3 components by BIC (Schwarz 1978).
+    baseline : {'none', 'constant', 'linear'}
+    channel_response : {'tophat', 'hanning', 'none'}
+    instrument_sigma : float
+        Gaussian instrumental sigma in km/s (0: none).
+    order : {'flux', 'velocity'}
+        Order of components: brightest first (default) or by increasing velocity.
+    """
+    t0 = time.perf_counter()
+    comps = components if components == "auto" else int(components)
+    if comps not in (1, 2, 3, "auto"):
+        raise KinemapError(f"'components' must be 1, 2, 3 or auto, got {components!r}")
+    if order not in ("flux", "velocity"):
+        raise KinemapError(f"'order' must be 'flux' or 'velocity', got {order!r}")
+    ncomp_max = 3 if comps == "auto" else comps
+    options = dict(ncomp=comps, baseline=baseline, response=channel_response,
+                   instrument_sigma=float(instrument_sigma), order=order,
+                   snr_threshold=float(snr_threshold), min_separation=float(min_separation),
+                   min_component_snr=float(min_component_snr))
+    # parameter names of the reported model (probe one tiny fit, cheap)
+    probe = fit_block(np.zeros((cube.nchan, 1)), np.ones(1), cube.velocity,
+                      **{k: v for k, v in options.items()})
+    names = tuple(probe.param_names)
+    npar = len(names)
+    pixel_mask_full = None
+    if mask is not None and mask.method == "smooth":
+        pixel_mask_full = mask.mask.any(axis=0)
+    if cube.footprint is not None:
+        pixel_mask_full = cube.footprint if pixel_mask_full is None else pixel_mask_full & cube.footprint
+
+    def block_args(ys):
+        return {"noise": noise.sigma[ys],
+                "pixel_mask": None if pixel_mask_full is None else np.ascontiguousarray(pixel_mask_full[ys])}
+
+    lead = (ncomp_max,)
+    outputs = {"status": ((), np.int16, int(Status.NO_DATA)), "ncomp": ((), np.int16, 0),
+               "chi2_reduced": ((), np.float64, np.nan), "peak_snr": ((), np.float64, np.nan),
+               "params": ((npar,), np.float64, np.nan), "errors": ((npar,), np.float64, np.nan)}
+    for q in COMPONENT_QUANTITIES:
+        outputs[q] = (lead, np.float64, np.nan)
+        outputs[q + "_error"] = (lead, np.float64, np.nan)
+    velocity = np.ascontiguousarray(cube.velocity, dtype=np.float64)
+    out = map_blocks(cube, _fit_block_fn, outputs=outputs, max_memory=max_memory, factor=4.0,
+                     block_args=block_args, progress=progress and "fit", client=client,
+                     velocity=velocity, options=options, ncomp_max=ncomp_max, npar=npar)
+    model_options = {"model": probe.model, "instrument_sigma": probe.instrument_sigma,
+                     "response": probe.response}
+    settings = dict(options)
+    settings["descriptions"] = {int(k): v for k, v in STATUS_DESCRIPTIONS.items()}
+    return LineFitMaps(param_names=names, bunit=cube.meta.bunit, settings=settings,
+                       model_options=model_options, seconds=time.perf_counter() - t0,
+                       **{k: out[k] for k in outputs})
