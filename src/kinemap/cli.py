@@ -134,6 +134,30 @@ def build_parser() -> argparse.ArgumentParser:
     _add_cube_options(p)
     _add_output_options(p)
 
+    p = sub.add_parser("widths", help="line-width budget: instrumental, thermal, non-thermal")
+    p.add_argument("cube")
+    g = p.add_argument_group("lines and physics")
+    g.add_argument("--lines", required=True, metavar="NAME[,NAME...]",
+                   help="catalogue names, brightest first (e.g. Halpha,NII_6583,NII_6548)")
+    g.add_argument("--temperature", metavar="T", help="assumed temperature, e.g. '1e4 K'")
+    g.add_argument("--temperature-err", metavar="T", help="its 1-sigma error")
+    g.add_argument("--temperature-map", metavar="FITS", help="assumed temperature per pixel (K)")
+    g.add_argument("--mu", type=float, default=2.33,
+                   help="mean particle mass / m_H for the sound speed (2.33 molecular, 0.6 ionized)")
+    g.add_argument("--free-velocity", action="store_true", help="a velocity per line")
+    g.add_argument("--ratio", action="append", metavar="STRONG/WEAK=R",
+                   help="fixed flux ratio (default NII_6583/NII_6548=3.0); repeatable")
+    g.add_argument("--catalogue", metavar="TOML", help="extra lines (same schema as the built-in)")
+    g.add_argument("--instrument-sigma", metavar="VELOCITY", help="instrumental sigma, e.g. '5 km/s'")
+    g.add_argument("--resolving-power", type=float, metavar="R", help="FWHM = c/R")
+    g.add_argument("--channel-response", choices=["tophat", "hanning", "none"], default="tophat")
+    g.add_argument("--snr-threshold", type=float, default=3.0)
+    g = p.add_argument_group("signal mask")
+    g.add_argument("--mask", choices=["smooth", "threshold", "none"], default="none",
+                   help="which pixels to fit (default none: every pixel above the S/N threshold)")
+    _add_cube_options(p)
+    _add_output_options(p)
+
     p = sub.add_parser("run", help="run the stages described in a TOML config")
     p.add_argument("config")
     p.add_argument("--out", help="override [output] dir")
@@ -181,6 +205,18 @@ def config_from_args(args) -> dict:
         user["run"] = _run_options(args)
         if cube is not None:
             user["maps"] = {"method": args.method}
+    if getattr(args, "command", None) == "widths":
+        user["widths"] = {"lines": args.lines, "temperature": args.temperature,
+                          "temperature_err": args.temperature_err,
+                          "temperature_map": args.temperature_map, "mu": args.mu,
+                          "free_velocity": args.free_velocity, "ratios": args.ratio,
+                          "catalogue": args.catalogue, "snr_threshold": args.snr_threshold}
+        user["maps"] = {"instrument_sigma": args.instrument_sigma,
+                        "resolving_power": args.resolving_power,
+                        "channel_response": args.channel_response}
+        user["mask"] = {"method": args.mask}
+        user["output"] = {"dir": args.out, "overwrite": args.overwrite, "plots": not args.no_plots}
+        user["run"] = _run_options(args)
     if getattr(args, "command", None) == "maps":
         mask = {"method": "none" if args.no_mask else args.mask, "threshold": args.threshold,
                 "grow_threshold": args.grow_threshold, "smooth_channels": args.smooth_channels,
@@ -233,6 +269,20 @@ def _cmd_rings(args) -> int:
     return 0
 
 
+def _cmd_widths(args) -> int:
+    from .pipeline import run_config
+
+    state = run_config(config_from_args(args))
+    _report(state, args.out)
+    s = state.results["widths"].summary()
+    parts = [f"median non-thermal sigma {s['median_nonthermal_dispersion_kms']:.3g} km/s"
+             if s.get("median_nonthermal_dispersion_kms") is not None else "no valid pixel",
+             f"median Mach number {s['median_mach_number']:.3g}"
+             if s.get("median_mach_number") is not None else ""]
+    print("kinemap: " + ", ".join(p for p in parts if p))
+    return 0
+
+
 def _cmd_run(args) -> int:
     from .config import load_config
     from .pipeline import run_config
@@ -280,8 +330,8 @@ def main(argv=None) -> int:
         # Library chatter (spectral-cube, astropy) is not for the user of a command.
         warnings.filterwarnings("ignore", module="spectral_cube")
         warnings.filterwarnings("ignore", category=RuntimeWarning)
-    handler = {"info": _cmd_info, "maps": _cmd_maps, "rings": _cmd_rings, "run": _cmd_run,
-               "demo": _cmd_demo}
+    handler = {"info": _cmd_info, "maps": _cmd_maps, "rings": _cmd_rings, "widths": _cmd_widths,
+               "run": _cmd_run, "demo": _cmd_demo}
     try:
         return handler[args.command](args)
     except KinemapError as exc:

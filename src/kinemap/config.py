@@ -24,6 +24,11 @@ Sections and keys (defaults in brackets)::
               stages [[1, 2, 3]], final_geometry ["median"] | "polynomial" | "rings" |
               "global", fix [[]], min_points [20], bootstrap [0], seed [0],
               expansion_in_geometry [false], pv_diagram [true]
+    [widths]  lines (names from the catalogue, brightest first), temperature ("1e4 K") or
+              temperature_map (FITS, K), temperature_err, mu [2.33], free_velocity [false],
+              ratios [{"NII_6583/NII_6548" = 3.0}], catalogue (extra TOML file),
+              snr_threshold [3]; the instrument comes from [maps] instrument_sigma /
+              resolving_power, the channel response from [maps] channel_response
     [output]  dir ["kinemap-out"], overwrite [false], plots [true]
     [run]     max_memory [a quarter of the machine's memory], progress [true],
               scheduler ["tcp://host:port" of a dask scheduler], workers [N local processes]
@@ -76,6 +81,13 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "bootstrap": ((int,), 0), "seed": ((int,), 0), "expansion_in_geometry": ((bool,), False),
         "pv_diagram": ((bool,), True),
     },
+    "widths": {
+        "lines": ((list, str), []), "temperature": ((int, float, str, type(None)), None),
+        "temperature_map": ((str, type(None)), None),
+        "temperature_err": ((int, float, str, type(None)), None), "mu": ((int, float), 2.33),
+        "free_velocity": ((bool,), False), "ratios": ((dict, list, type(None)), None),
+        "catalogue": ((str, type(None)), None), "snr_threshold": ((int, float), 3.0),
+    },
     "output": {"dir": ((str,), "kinemap-out"), "overwrite": ((bool,), False),
                "plots": ((bool,), True)},
     "run": {"max_memory": ((str, int, float, type(None)), None), "progress": ((bool,), True),
@@ -123,7 +135,8 @@ def validate_config(user: dict, *, base_dir: str | None = None) -> dict:
     if base_dir:
         for sec, key in (("input", "cube"), ("input", "region"), ("output", "dir"),
                          ("input", "velocity_map"), ("input", "velocity_error"),
-                         ("input", "intensity")):
+                         ("input", "intensity"), ("widths", "temperature_map"),
+                         ("widths", "catalogue")):
             v = cfg[sec][key]
             if v and not os.path.isabs(v):
                 cfg[sec][key] = os.path.normpath(os.path.join(base_dir, v))

@@ -24,6 +24,7 @@ from .moments import compute_moments
 from .noise import estimate_noise
 from .linefit.stage import fit_cube, instrument_sigma_from
 from .rings.stage import run_rings
+from .widths.stage import run_widths
 
 __all__ = ["RunState", "run_config", "prepare", "STAGES"]
 
@@ -183,10 +184,32 @@ def stage_rings(state: RunState):
                   cube=state.cube, progress=state.progress)
 
 
+def stage_widths(state: RunState):
+    w = state.config["widths"]
+    maps = state.config["maps"]
+    tmap = None
+    if w["temperature_map"]:
+        tmap = read_map(w["temperature_map"], unit="K", name="temperature map")
+        if tmap.data.shape != state.cube.shape[1:]:
+            raise KinemapError(f"the temperature map has shape {tmap.data.shape}, the cube's "
+                               f"maps {state.cube.shape[1:]}; give a map on the cube's pixel grid")
+        if not tmap.unit.is_equivalent(u.K, equivalencies=u.temperature()):
+            raise KinemapError(f"the temperature map's BUNIT is {tmap.unit}, not a temperature; "
+                               "fix BUNIT (K)")
+        tmap = (tmap.data * tmap.unit).to_value(u.K, equivalencies=u.temperature())
+    sigma_instr = instrument_sigma_from(instrument_sigma=maps["instrument_sigma"],
+                                        resolving_power=maps["resolving_power"])
+    return _timed(state, "widths_fit", run_widths, state.cube, state.noise, state.mask, w,
+                  temperature_map=tmap, instrument_sigma=sigma_instr,
+                  channel_response=maps["channel_response"], max_memory=state.max_memory,
+                  progress=state.progress, client=state.client)
+
+
 # (config section, result name, stage function).  A stage runs when its section is in the
 # config; later capabilities add their entry here.
 STAGES = [("maps", "moments", stage_moments), ("maps", "fit", stage_fit),
-          ("maps", "model", stage_model), ("rings", "rings", stage_rings)]
+          ("maps", "model", stage_model), ("rings", "rings", stage_rings),
+          ("widths", "widths", stage_widths)]
 
 
 def _options(cfg):

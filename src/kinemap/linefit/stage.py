@@ -177,19 +177,25 @@ class LineFitMaps:
             "example_spectra": (fig, "brightest, median and faintest fitted spectra with their "
                                      "fits and residuals")}
 
+    def _axes(self, velocity):
+        axes = self.settings.get("velocity_axes")
+        return velocity if axes is None else axes
+
     def model_cube(self, cube, *, dtype=np.float32) -> np.ndarray:
         """Model cube (nchan, ny, nx) of the fits (NaN where not fitted)."""
-        return model_block(self.params, cube.velocity, dtype=dtype, **self.model_options)
+        return model_block(self.params, self._axes(cube.velocity), dtype=dtype,
+                           **self.model_options)
 
     def model_spectrum(self, velocity, y, x) -> np.ndarray:
-        return model_spectra(self.params[:, y, x], velocity, **self.model_options)
+        return model_spectra(self.params[:, y, x], self._axes(velocity), **self.model_options)
 
 
 def fit_cube(cube, noise, *, mask=None, components=1, baseline: str = "none",
              channel_response: str = "tophat", instrument_sigma: float = 0.0,
              order: str = "flux", snr_threshold: float = 3.0, min_separation: float = 1.0,
-             min_component_snr: float = 3.0, max_memory: int = DEFAULT_MAX_MEMORY,
-             progress: bool = False, client=None) -> LineFitMaps:
+             min_component_snr: float = 3.0, model=None, velocity_axes=None,
+             max_memory: int = DEFAULT_MAX_MEMORY, progress: bool = False,
+             client=None) -> LineFitMaps:
     """Gaussian fits of every spectrum of ``cube`` (see the module docstring).
 
     Parameters
@@ -205,6 +211,11 @@ def fit_cube(cube, noise, *, mask=None, components=1, baseline: str = "none",
         Gaussian instrumental sigma in km/s (0: none).
     order : {'flux', 'velocity'}
         Order of components: brightest first (default) or by increasing velocity.
+    model : kinemap.linefit.LineModel, optional
+        A tied multi-line model (then ``components`` is ignored and each component is one
+        line, in the model's order).
+    velocity_axes : ndarray (naxes, nchan), optional
+        One velocity axis per line of ``model`` (km/s); default the cube's velocity axis.
     """
     t0 = time.perf_counter()
     comps = components if components == "auto" else int(components)
@@ -217,9 +228,14 @@ def fit_cube(cube, noise, *, mask=None, components=1, baseline: str = "none",
                    instrument_sigma=float(instrument_sigma), order=order,
                    snr_threshold=float(snr_threshold), min_separation=float(min_separation),
                    min_component_snr=float(min_component_snr))
+    velocity = np.ascontiguousarray(cube.velocity if velocity_axes is None else velocity_axes,
+                                    dtype=np.float64)
+    if model is not None:
+        options = {k: v for k, v in options.items() if k not in ("ncomp", "baseline", "order")}
+        options["model"] = model
+        ncomp_max = len(model.components)
     # parameter names of the reported model (probe one tiny fit, cheap)
-    probe = fit_block(np.zeros((cube.nchan, 1)), np.ones(1), cube.velocity,
-                      **{k: v for k, v in options.items()})
+    probe = fit_block(np.zeros((cube.nchan, 1)), np.ones(1), velocity, **options)
     names = tuple(probe.param_names)
     npar = len(names)
     pixel_mask_full = None
@@ -239,13 +255,14 @@ def fit_cube(cube, noise, *, mask=None, components=1, baseline: str = "none",
     for q in COMPONENT_QUANTITIES:
         outputs[q] = (lead, np.float64, np.nan)
         outputs[q + "_error"] = (lead, np.float64, np.nan)
-    velocity = np.ascontiguousarray(cube.velocity, dtype=np.float64)
     out = map_blocks(cube, _fit_block_fn, outputs=outputs, max_memory=max_memory, factor=4.0,
                      block_args=block_args, progress=progress and "fit", client=client,
                      velocity=velocity, options=options, ncomp_max=ncomp_max, npar=npar)
     model_options = {"model": probe.model, "instrument_sigma": probe.instrument_sigma,
                      "response": probe.response}
-    settings = dict(options)
+    settings_extra = {"velocity_axes": velocity if velocity.ndim == 2 else None}
+    settings = {k: v for k, v in options.items() if k != "model"}
+    settings.update({k: v for k, v in settings_extra.items() if v is not None})
     settings["descriptions"] = {int(k): v for k, v in STATUS_DESCRIPTIONS.items()}
     return LineFitMaps(param_names=names, bunit=cube.meta.bunit, settings=settings,
                        model_options=model_options, seconds=time.perf_counter() - t0,
