@@ -18,7 +18,8 @@ Sections and keys (defaults in brackets)::
               for gauss: components [1] | 2 | 3 | "auto", baseline ["none"] | "constant" |
               "linear", instrument_sigma (km/s) or resolving_power, order ["flux"] |
               "velocity", snr_threshold [3], min_separation [1] (sigma),
-              min_component_snr [3], write_model [false]
+              min_component_snr [3], write_model [false], vrange (velocity window of the
+              moments and fits only; other stages see the whole cube)
     [rings]   center ("RA,DEC"), pa, inclination, vsys, ring_width (arcsec), distance
               (Mpc), weighting ["cos"] | "cos2" | "uniform", exclude_minor_axis [20] (deg),
               stages [[1, 2, 3]], final_geometry ["median"] | "polynomial" | "rings" |
@@ -69,7 +70,8 @@ SCHEMA: dict[str, dict[str, tuple]] = {
              "instrument_sigma": ((int, float, str, type(None)), None),
              "resolving_power": ((int, float, type(None)), None), "order": ((str,), "flux"),
              "snr_threshold": ((int, float), 3.0), "min_separation": ((int, float), 1.0),
-             "min_component_snr": ((int, float), 3.0), "write_model": ((bool,), False)},
+             "min_component_snr": ((int, float), 3.0), "write_model": ((bool,), False),
+             "vrange": ((list, tuple, str, type(None)), None)},
     "rings": {
         "center": ((str, type(None)), None), "pa": ((int, float, str, type(None)), None),
         "inclination": ((int, float, str, type(None)), None),

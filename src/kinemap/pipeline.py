@@ -8,7 +8,7 @@ only calls them in order and collects what they return.  No stage writes files.
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import astropy.units as u
 import numpy as np
@@ -16,6 +16,7 @@ import numpy as np
 from .config import parse_size
 from .cluster import open_client
 from .cube import read_cube, read_map
+from .cube.subset import channel_range, select_channels
 from .errors import KinemapError
 from .export.outdir import StagedOutput, check_output_dir
 from .export.writer import write_products
@@ -109,9 +110,23 @@ def prepare(cfg: dict, state: RunState | None = None) -> RunState:
     return state
 
 
+def _maps_window(state):
+    """The cube (and mask) the maps stages see: [maps] vrange cuts a velocity window."""
+    window = state.config["maps"]["vrange"]
+    if window is None:
+        return state.cube, state.mask
+    cube = select_channels(state.cube, _vrange(window))
+    mask = state.mask
+    if mask is not None and mask.mask is not None:
+        cs = channel_range(state.cube.velocity, _vrange(window))
+        mask = replace(mask, mask=mask.mask[cs])
+    return cube, mask
+
+
 def stage_moments(state: RunState):
     cfg = state.config["maps"]
-    return _timed(state, "moments", compute_moments, state.cube, mask=state.mask,
+    cube, mask = _maps_window(state)
+    return _timed(state, "moments", compute_moments, cube, mask=mask,
                   noise=state.noise, channel_response=cfg["channel_response"],
                   max_memory=state.max_memory, progress=state.progress, client=state.client)
 
@@ -122,7 +137,8 @@ def stage_fit(state: RunState):
         return None
     sigma_instr = instrument_sigma_from(instrument_sigma=cfg["instrument_sigma"],
                                         resolving_power=cfg["resolving_power"])
-    return _timed(state, "fit", fit_cube, state.cube, state.noise, mask=state.mask,
+    cube, mask = _maps_window(state)
+    return _timed(state, "fit", fit_cube, cube, state.noise, mask=mask,
                   components=cfg["components"], baseline=cfg["baseline"],
                   channel_response=cfg["channel_response"], instrument_sigma=sigma_instr,
                   order=cfg["order"], snr_threshold=cfg["snr_threshold"],
@@ -138,14 +154,16 @@ class ModelCubes:
     model: np.ndarray
     residual: np.ndarray
     bunit: object
+    meta: object = None
 
     def products(self):
         from .products import Product
 
+        wcs = None if self.meta is None else self.meta.wcs3d
         return [Product("model", self.model, self.bunit, "model cube of the Gaussian fits", "cube",
-                        plot=False),
+                        plot=False, wcs=wcs),
                 Product("residual", self.residual, self.bunit, "data minus model cube", "cube",
-                        plot=False)]
+                        plot=False, wcs=wcs)]
 
 
 def stage_model(state: RunState):
@@ -154,10 +172,11 @@ def stage_model(state: RunState):
         return None
     from .cube import read_rows
 
-    data = read_rows(state.cube, slice(0, state.cube.shape[1]))
-    model = fit.model_cube(state.cube)
+    cube, _ = _maps_window(state)
+    data = read_rows(cube, slice(0, cube.shape[1]))
+    model = fit.model_cube(cube)
     return ModelCubes(model=model, residual=(data - model).astype(np.float32),
-                      bunit=state.cube.meta.bunit)
+                      bunit=cube.meta.bunit, meta=cube.meta)
 
 
 def _velocity_field(state):

@@ -35,6 +35,8 @@ class Product:
         Make a PNG of it.
     extra_header : dict
         FITS keywords specific to this product (e.g. the status code table).
+    wcs : astropy.wcs.WCS, optional
+        For a cube that does not span the run's channels (a velocity window): its own WCS.
     """
 
     key: str
@@ -44,6 +46,7 @@ class Product:
     kind: str = "other"
     plot: bool = True
     extra_header: dict = field(default_factory=dict)
+    wcs: object = None
 
     @property
     def is_table(self) -> bool:

@@ -8,7 +8,7 @@ import numpy as np
 from .._units import KMS, to_value
 from ..errors import KinemapError
 
-__all__ = ["channel_range", "parse_box", "region_footprint"]
+__all__ = ["channel_range", "parse_box", "region_footprint", "select_channels"]
 
 
 def channel_range(velocity: np.ndarray, vrange) -> slice:
@@ -73,3 +73,21 @@ def region_footprint(path, wcs, shape_yx) -> np.ndarray:
     if not out.any():
         raise KinemapError(f"the regions in {path} do not overlap the cube")
     return out
+
+
+def select_channels(cube, vrange):
+    """A cube cut to the channels inside ``vrange`` (see :func:`channel_range`)."""
+    from dataclasses import replace
+
+    if vrange is None:
+        return cube
+    cs = channel_range(cube.velocity, vrange)
+    source = cube.source
+    if source is not None:
+        c0 = source.channels[0]
+        source = replace(source, channels=(c0 + cs.start, c0 + cs.stop))
+    meta = cube.meta
+    if meta.wcs3d is not None:
+        meta = replace(meta, wcs3d=meta.wcs3d.slice((cs, slice(None), slice(None))))
+    return replace(cube, data=cube.data[cs], velocity=cube.velocity[cs],
+                   spectral=cube.spectral[cs], meta=meta, source=source)

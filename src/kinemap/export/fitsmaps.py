@@ -21,8 +21,8 @@ __all__ = ["product_header", "write_fits"]
 
 
 def product_header(meta, *, unit, description: str, key: str, options: dict | None = None,
-                   ndim: int = 2, extra: dict | None = None) -> fits.Header:
-    wcs = meta.wcs if ndim == 2 else meta.wcs3d
+                   ndim: int = 2, extra: dict | None = None, wcs=None) -> fits.Header:
+    wcs = wcs if wcs is not None else (meta.wcs if ndim == 2 else meta.wcs3d)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         h = wcs.to_header()

@@ -51,7 +51,8 @@ def write_products(folder, meta, products, *, options: dict, timings: dict,
             arr = np.asarray(p.data)
             name = f"{p.key}.fits"
             header = product_header(meta, unit=p.unit, description=p.description, key=p.key,
-                                    options=options, ndim=arr.ndim, extra=p.extra_header)
+                                    options=options, ndim=arr.ndim, extra=p.extra_header,
+                                    wcs=p.wcs)
             write_fits(folder / name, arr, header)
             if plots and p.plot and arr.ndim == 2:
                 with warnings.catch_warnings():
