@@ -7,6 +7,8 @@ tests themselves.
 from __future__ import annotations
 
 import os
+import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -75,3 +77,11 @@ def tmp_cube(tmp_path):
 
 def pytest_configure(config):
     os.environ.setdefault("MPLBACKEND", "Agg")
+
+
+def run_cli(*args, timeout=300):
+    """Run the installed console script in a subprocess: (exit code, stdout, stderr) as users
+    see them (a bad input must give one line on stderr and exit code 2, no traceback)."""
+    exe = os.path.join(os.path.dirname(sys.executable), "kinemap")
+    p = subprocess.run([exe, *args], capture_output=True, text=True, timeout=timeout)
+    return p.returncode, p.stdout, p.stderr

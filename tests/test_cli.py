@@ -1,8 +1,5 @@
 """The kinemap command: products, manifest, provenance, refusal to overwrite, bad input."""
 import json
-import os
-import subprocess
-import sys
 import warnings
 
 import astropy.units as u
@@ -10,18 +7,11 @@ import numpy as np
 import pytest
 from astropy.io import fits
 
-from conftest import gaussian_cube, make_header, write_cube
+from conftest import gaussian_cube, make_header, run_cli, write_cube
 from kinemap.cli import main
 
 MOMENT_KEYS = {"moment0", "moment1", "moment2", "moment0_err", "moment1_err", "moment2_err",
                "peak", "velocity_at_peak", "nchan", "noise", "mask"}
-
-
-def run_cli(*args):
-    """Run the installed console script in a subprocess: exit code and stderr as users see them."""
-    exe = os.path.join(os.path.dirname(sys.executable), "kinemap")
-    p = subprocess.run([exe, *args], capture_output=True, text=True, timeout=300)
-    return p.returncode, p.stdout, p.stderr
 
 
 def test_maps_on_real_cube_equal_spectral_cube(real_cube_path, tmp_path):

@@ -1,6 +1,5 @@
 """`kinemap maps --method gauss`: products, real-cube widths, radio and optical axes."""
 import json
-import warnings
 
 import astropy.constants as const
 import astropy.units as u
@@ -65,7 +64,6 @@ def test_velocities_on_frequency_and_air_wavelength_axes(tmp_path, axis):
         lam = l0 + dl * np.arange(nchan)
         edges = np.concatenate([[l0 - dl / 2], lam + dl / 2])
         v_edges = C_KMS * (edges / rest_air - 1)  # optical convention
-        from kinemap.airvac import fits_vacuum_to_air  # noqa: F401  (RESTWAV is vacuum)
         h = make_header("AWAV", nchan=nchan, ny=ny, nx=nx, crval=l0, cdelt=dl, cunit="Angstrom",
                         extra={"RESTWAV": 6564.61289406447e-10})
     lo = np.minimum(v_edges[:-1], v_edges[1:])

@@ -1,8 +1,5 @@
 """`kinemap rings` from a velocity map or a cube: products, tables, bad input."""
 import json
-import os
-import subprocess
-import sys
 
 import astropy.units as u
 import numpy as np
@@ -11,6 +8,7 @@ from astropy.io import fits
 from astropy.table import Table
 from astropy.wcs import WCS
 
+from conftest import run_cli
 from kinemap.cli import main
 
 REQUIRED = ["radius", "v_rot", "v_rot_err", "v_exp", "v_exp_err", "position_angle", "inclination",
@@ -79,12 +77,6 @@ def test_rings_from_velocity_map(tmp_path):
     assert (out / "rotation_curve.png").exists() and (out / "velocity_fields.png").exists()
 
 
-def run_cli(*args):
-    exe = os.path.join(os.path.dirname(sys.executable), "kinemap")
-    p = subprocess.run([exe, *args], capture_output=True, text=True, timeout=300)
-    return p.returncode, p.stderr
-
-
 @pytest.mark.parametrize("extra,match", [
     (["--inclination", "95"], "inclination"),
     (["--center", "10.0,-60.0"], "cent"),
@@ -93,7 +85,7 @@ def run_cli(*args):
 def test_rings_bad_input(tmp_path, extra, match):
     vmap, _ = begeman_map(tmp_path)
     out = tmp_path / "o"
-    code, err = run_cli("rings", vmap, "--out", str(out), *extra)
+    code, _, err = run_cli("rings", vmap, "--out", str(out), *extra)
     assert code == 2, err
     assert match in err and "Traceback" not in err
     assert not out.exists()

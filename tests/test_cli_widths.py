@@ -1,13 +1,11 @@
 """`kinemap widths`: the budget on the invented nebula and the real cloud, and bad input."""
 import json
-import os
-import subprocess
-import sys
 
 import numpy as np
 import pytest
 from astropy.io import fits
 
+from conftest import run_cli
 from kinemap.cli import main
 from kinemap.status import Status
 
@@ -64,12 +62,6 @@ def test_real_cloud_is_supersonic(real_cube_path, tmp_path):
     assert 3.5 < np.median(mach[good]) < 8.0
 
 
-def run_cli(*args):
-    exe = os.path.join(os.path.dirname(sys.executable), "kinemap")
-    p = subprocess.run([exe, *args], capture_output=True, text=True, timeout=300)
-    return p.returncode, p.stderr
-
-
 @pytest.mark.parametrize("extra,match", [
     (["--lines", "Hgamma"], "known"),
     (["--lines", "OIII_5007", "--temperature", "1e4 K"], "outside"),
@@ -79,7 +71,7 @@ def run_cli(*args):
 def test_widths_bad_input(nebula, tmp_path, extra, match):
     path, _ = nebula
     out = tmp_path / "o"
-    code, err = run_cli("widths", path, "--out", str(out), *extra)
+    code, _, err = run_cli("widths", path, "--out", str(out), *extra)
     assert code == 2, err
     assert match in err and "Traceback" not in err
     assert not out.exists()

@@ -1,8 +1,6 @@
 """Noise estimates and signal masks on seeded synthetic cubes with known truth."""
 import warnings
 
-import astropy.units as u
-import dask.array as da
 import numpy as np
 import pytest
 from scipy import stats

@@ -4,7 +4,6 @@ import textwrap
 import astropy.units as u
 import numpy as np
 import pytest
-from astropy.constants import c
 
 from kinemap.errors import KinemapError
 from kinemap.widths import (

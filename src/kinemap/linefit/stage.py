@@ -20,7 +20,7 @@ import astropy.units as u
 import numpy as np
 
 from .._units import KMS, to_value
-from ..cube._blocks import DEFAULT_MAX_MEMORY, map_blocks, read_rows
+from ..cube._blocks import DEFAULT_MAX_MEMORY, map_blocks
 from ..errors import KinemapError
 from ..products import Product
 from ..status import STATUS_DESCRIPTIONS, Status

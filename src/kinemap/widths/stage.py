@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 import astropy.units as u
 import numpy as np
 
-from .._units import KMS, to_value
+from .._units import KMS
 from ..cube.spectral import to_velocity
 from ..errors import KinemapError
 from ..linefit import LineModel
