@@ -34,6 +34,8 @@ class FileSource:
         Length-1 axes squeezed out, then the transpose that gives (spectral, y, x).
     channels, rows, cols : tuple (start, stop)
         The subset of the (spectral, y, x) cube the reader kept.
+    bscale, bzero, blank
+        FITS scaling of integer data (value = bzero + bscale * stored; BLANK -> NaN).
     """
 
     path: str
@@ -45,6 +47,17 @@ class FileSource:
     channels: tuple
     rows: tuple
     cols: tuple
+    bscale: float = 1.0
+    bzero: float = 0.0
+    blank: int | None = None
+
+    def _scale(self, stored):
+        if np.dtype(self.dtype).kind == "f" and self.bscale == 1.0 and self.bzero == 0.0:
+            return stored
+        values = self.bzero + self.bscale * np.asarray(stored, dtype=np.float64)
+        if self.blank is not None:
+            values[np.asarray(stored) == self.blank] = np.nan
+        return values
 
     @property
     def standard(self) -> bool:
@@ -56,7 +69,8 @@ class FileSource:
         ``dtype=None`` gives float32 for 4-byte data and float64 otherwise, native order.
         """
         src = np.dtype(self.dtype)
-        out_dtype = dtype or (np.float32 if src.itemsize == 4 and src.kind == "f" else np.float64)
+        scaled = src.kind != "f" or self.bscale != 1.0 or self.bzero != 0.0
+        out_dtype = dtype or (np.float32 if src.itemsize == 4 and not scaled else np.float64)
         y0, y1 = self.rows[0] + ys.start, self.rows[0] + ys.stop
         c0, c1 = self.channels
         x0, x1 = self.cols
@@ -71,7 +85,7 @@ class FileSource:
                     start = self.offset + (c * nraw_y + y0) * rowbytes
                     buf = os.pread(fd, (y1 - y0) * rowbytes, start)
                     plane = np.frombuffer(buf, dtype=src).reshape(y1 - y0, nraw_x)
-                    out[k] = plane[:, x0:x1]
+                    out[k] = self._scale(plane[:, x0:x1])
             finally:
                 os.close(fd)
             return out
@@ -79,6 +93,6 @@ class FileSource:
         try:
             arr = mm.squeeze(axis=self.drop) if self.drop else mm
             arr = arr.transpose(self.order)[c0:c1, y0:y1, x0:x1]
-            return np.ascontiguousarray(arr, dtype=out_dtype)
+            return np.ascontiguousarray(self._scale(arr), dtype=out_dtype)
         finally:
             del mm

@@ -13,7 +13,7 @@ from astropy.wcs.utils import pixel_to_skycoord
 
 from .._units import parse_quantity
 from ..airvac import fits_vacuum_to_air
-from ..errors import KinemapError
+from ..errors import KinemapError, KinemapWarning
 from ._header import build_wcs, find_cube_hdu, open_fits, parse_bunit, sha256
 from .beams import check_policy, read_beam
 from ._source import FileSource
@@ -23,6 +23,31 @@ from .spectral import axis_kind, check_convention, check_rest_value, to_velocity
 from .subset import channel_range, parse_box, region_footprint
 
 __all__ = ["read_cube"]
+
+# FITS BITPIX -> big-endian numpy type of the stored values
+_BITPIX = {8: "u1", 16: ">i2", 32: ">i4", 64: ">i8", -32: ">f4", -64: ">f8"}
+_WARNED: set = set()
+
+
+class _SectionArray:
+    """An HDU's lazy ``section`` with the array attributes dask asks for."""
+
+    def __init__(self, section, shape):
+        self.section, self.shape, self.ndim = section, tuple(shape), len(shape)
+        self.dtype = np.asarray(section[(slice(0, 1),) * self.ndim]).dtype
+
+    def __getitem__(self, item):
+        return np.asarray(self.section[item])
+
+
+def _warn_not_memmapped(path, why):
+    """Once per file and session: this cube is read through astropy, not memory-mapped."""
+    if path in _WARNED:
+        return
+    _WARNED.add(path)
+    warnings.warn(f"{os.path.basename(path)} holds {why} data, which cannot be memory-mapped; "
+                  "blocks are decoded as they are read (slower than a plain float cube)",
+                  KinemapWarning, stacklevel=3)
 
 # hashlib releases the GIL, so the input's checksum is computed while the stages run.
 _CHECKSUMS = ThreadPoolExecutor(max_workers=1, thread_name_prefix="kinemap-sha256")
@@ -95,16 +120,29 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
             raise KinemapError(
                 f"{path} has a fourth axis {wcs.wcs.ctype[i]!r} of length {shape_wcs[i]}; "
                 "kinemap reads one Stokes plane: cut the cube to one plane first")
-    # Scaled integers and compressed images cannot be memory-mapped: astropy scales them
-    # into memory on access.  Check before touching .data, which drops BSCALE/BZERO.
-    memmapped = not (isinstance(hdu_obj, fits.CompImageHDU)
-                     or float(header.get("BSCALE", 1.0)) != 1.0
-                     or float(header.get("BZERO", 0.0)) != 0.0)
-    raw = hdu_obj.data  # memory-mapped when the file allows
-    if raw is None:
-        raise KinemapError(f"{path}: the cube HDU holds no data")
-    # A numpy memmap stays lazy through squeeze/transpose/slicing (views), so blocks of
-    # rows are read from disk only when a stage asks for them.
+    # Scaled integers and compressed images cannot be memory-mapped: astropy would scale
+    # the whole array into memory on access.  They are read lazily through the HDU's
+    # section instead (and scaled integers block by block straight from the file).
+    bscale = float(header.get("BSCALE", 1.0))
+    bzero = float(header.get("BZERO", 0.0))
+    blank = header.get("BLANK")
+    compressed = isinstance(hdu_obj, fits.CompImageHDU)
+    memmapped = not (compressed or bscale != 1.0 or bzero != 0.0)
+    raw_shape = tuple(int(header[f"NAXIS{naxis - i}"]) for i in range(naxis))
+    raw_dtype = _BITPIX.get(int(header.get("BITPIX", 0)))
+    if memmapped:
+        raw = hdu_obj.data  # a memory map: lazy through squeeze/transpose/slicing views
+        if raw is None:
+            raise KinemapError(f"{path}: the cube HDU holds no data")
+    else:
+        _warn_not_memmapped(path, "compressed" if compressed else "scaled integers (BSCALE/BZERO)")
+        import dask.array as da
+
+        # astropy refuses sections of scaled data from a memory-mapped file: reopen without
+        hdu_index = next(i for i, h in enumerate(hdul) if h is hdu_obj)
+        plain = fits.open(path, memmap=False, mode="readonly")[hdu_index]
+        raw = da.from_array(_SectionArray(plain.section, raw_shape),
+                            chunks=(-1,) * (naxis - 2) + (8, -1), asarray=True)
     arr = raw
     # numpy axis order is the reverse of the WCS order
     np_axis = {i: naxis - 1 - i for i in range(naxis)}
@@ -203,13 +241,15 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
         footprint = fp_full[ys, xs]
     arr = arr[cs, ys, xs]
     source = None
-    if beam_list is None and memmapped and raw.dtype.kind == "f":
+    if beam_list is None and not compressed and raw_dtype is not None:
         hdu_index = next(i for i, h in enumerate(hdul) if h is hdu_obj)
         source = FileSource(path=os.path.abspath(path),
                             offset=int(hdul.fileinfo(hdu_index)["datLoc"]),
-                            raw_shape=tuple(raw.shape), dtype=raw.dtype.str, drop=tuple(drop),
+                            raw_shape=raw_shape, dtype=raw_dtype, drop=tuple(drop),
                             order=tuple(order), channels=(cs.start, cs.stop),
-                            rows=(ys.start, ys.stop), cols=(xs.start, xs.stop))
+                            rows=(ys.start, ys.stop), cols=(xs.start, xs.stop),
+                            bscale=bscale, bzero=bzero,
+                            blank=None if blank is None or raw_dtype[1] == "f" else int(blank))
     wcs2d = wcs2d.slice((ys, xs))
     wcs3d = wcs.sub([lon + 1, lat + 1, spec + 1]).slice((cs, ys, xs))
     subset = {}
