@@ -23,9 +23,9 @@ from .export.writer import write_products
 from .masks import make_mask
 from .moments import compute_moments
 from .noise import estimate_noise
-from .linefit.stage import fit_cube, instrument_sigma_from
-from .rings.stage import run_rings
-from .widths.stage import run_widths
+
+# The fitting, ring and width stages import scipy.optimize, numba kernels and more; they
+# are imported inside their stage functions so a moments-only run starts faster.
 
 __all__ = ["RunState", "run_config", "prepare", "STAGES"]
 
@@ -135,6 +135,7 @@ def stage_fit(state: RunState):
     cfg = state.config["maps"]
     if cfg["method"] != "gauss":
         return None
+    from .linefit.stage import fit_cube, instrument_sigma_from
     sigma_instr = instrument_sigma_from(instrument_sigma=cfg["instrument_sigma"],
                                         resolving_power=cfg["resolving_power"])
     cube, mask = _maps_window(state)
@@ -198,12 +199,17 @@ def _velocity_field(state):
 
 
 def stage_rings(state: RunState):
+    from .rings.stage import run_rings
+
     v, err, inten = _velocity_field(state)
     return _timed(state, "rings", run_rings, v, err, inten, state.meta, state.config["rings"],
                   cube=state.cube, progress=state.progress)
 
 
 def stage_widths(state: RunState):
+    from .linefit.stage import instrument_sigma_from
+    from .widths.stage import run_widths
+
     w = state.config["widths"]
     maps = state.config["maps"]
     tmap = None
