@@ -97,6 +97,11 @@ def plot_width_maps(
         if projection is None:
             ax.set_xlabel("x [pixel]")
             ax.set_ylabel("y [pixel]")
+        else:
+            from .plots import _axis_label
+
+            ax.coords[0].set_axislabel(_axis_label(projection, 0))
+            ax.coords[1].set_axislabel(_axis_label(projection, 1) if i == 0 else " ")
     return fig
 
 
