@@ -340,3 +340,17 @@ def test_scaled_and_compressed_cubes_read_lazily_and_correctly(tmp_path, kind):
     # astropy scales into float32; kinemap into float64, hence the absolute tolerance
     np.testing.assert_allclose(read_rows(cube, slice(2, 7)), ref[:, 2:7, :], rtol=1e-6, atol=1e-6)
     np.testing.assert_allclose(np.asarray(cube.data[:, 3:5, :]), ref[:, 3:5, :], rtol=1e-6, atol=1e-6)
+
+
+def test_beam_area_matches_radio_beam(tmp_path):
+    """Gaussian beam solid angle pi/(4 ln 2) major minor, against radio-beam (reference)."""
+    from radio_beam import Beam as RBeam
+
+    from kinemap.cube.beams import Beam
+
+    h = make_header("VRAD", crval=-100, cdelt=5, cunit="km/s",
+                    extra={"BMAJ": 16 / 3600, "BMIN": 12 / 3600, "BPA": 30.0})
+    ours = Beam.from_header(h)
+    ref = RBeam.from_fits_header(h)
+    assert ours.sr.to_value(u.sr) == pytest.approx(ref.sr.to_value(u.sr), rel=1e-12)
+    assert ours.pa.to_value(u.deg) == pytest.approx(ref.pa.to_value(u.deg))

@@ -27,7 +27,7 @@ class CubeMeta:
         Rest frequency or wavelength used for velocities (in the cube's medium).
     frame : str
         Spectral reference frame of :attr:`Cube.velocity` (FITS SPECSYS value).
-    beam : radio_beam.Beam or None
+    beam : kinemap.cube.beams.Beam or None
     medium : 'air', 'vacuum' or None
     ctype_original : str
         Spectral CTYPE as written in the file, before any repair.

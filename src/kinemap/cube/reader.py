@@ -15,7 +15,7 @@ from .._units import parse_quantity
 from ..airvac import fits_vacuum_to_air
 from ..errors import KinemapError, KinemapWarning
 from ._header import build_wcs, find_cube_hdu, open_fits, parse_bunit, sha256
-from .beams import check_policy, read_beam
+from .beams import Beam, check_policy, read_beam
 from ._source import FileSource
 from .core import Cube, CubeMeta
 from .frames import change_frame, normalise_frame
@@ -286,4 +286,4 @@ def _convolve_to_common(hdul, hdu_obj, beam_list):
         vcube = VaryingResolutionSpectralCube.read(hdul)
         conv = vcube.convolve_to(common)
     data = np.asarray(conv.unmasked_data[:].value, dtype=np.float32)
-    return data, common
+    return data, Beam.from_radio_beam(common)
