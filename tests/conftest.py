@@ -15,7 +15,22 @@ import numpy as np
 import pytest
 from astropy.io import fits
 
-REAL_CUBE = Path(__file__).resolve().parents[1].parent / "shared" / "data" / "l1448_13co.fits"
+def _real_cube() -> Path:
+    """The shared real cube: $KINEMAP_TEST_DATA, else ../shared/data next to the checkout,
+    else the workplace's shared folder (a CI checkout may live elsewhere)."""
+    name = "l1448_13co.fits"
+    candidates = []
+    if os.environ.get("KINEMAP_TEST_DATA"):
+        candidates.append(Path(os.environ["KINEMAP_TEST_DATA"]) / name)
+    candidates += [Path(__file__).resolve().parents[1].parent / "shared" / "data" / name,
+                   Path("/work/shared/data") / name]
+    for path in candidates:
+        if path.exists():
+            return path
+    return candidates[0]
+
+
+REAL_CUBE = _real_cube()
 
 
 @pytest.fixture
