@@ -138,6 +138,217 @@ def test_analytic_jacobian_matches_finite_differences(resp):
         np.testing.assert_allclose(jac[k], num, rtol=1e-6, atol=1e-8 * np.abs(num).max(), err_msg=f"param {k}")
 
 
+# ----------------------------------------------------------------------------- compiled helpers
+def test_normal_cdf_and_exp_helpers_match_reference_libraries():
+    # Reference libraries: scipy.special.ndtr and math.erfc (glibc, a different algorithm)
+    # for the normal CDF; numpy.exp for the vectorised exponential.
+    z = np.linspace(-8.5, 8.5, 200_001)
+    e = np.exp(-0.5 * z * z)
+    got = np.empty_like(z)
+    K._vndtr(z, e, got, z.size)
+    ref = ndtr(z)
+    ref_libm = 0.5 * np.array([math.erfc(-q / math.sqrt(2.0)) for q in z[::97]])
+    assert np.max(np.abs(got - ref)) <= 2.3e-16
+    np.testing.assert_allclose(got[::97], ref_libm, rtol=0, atol=2.3e-16)
+    low = z < 0  # relative accuracy of the small lower tail
+    np.testing.assert_allclose(got[low], ref[low], rtol=2e-14, atol=0)
+    # the scalar version used by the generic model path (same formulae; the vectorised one may
+    # contract multiply-adds, so they agree to rounding)
+    scal = np.array([K._ndtr_e(q, w) for q, w in zip(z[::1013], e[::1013])])
+    np.testing.assert_allclose(scal, got[::1013], rtol=1e-15, atol=1e-17)
+    x = np.concatenate([-np.linspace(0.0, 700.0, 100_001), -np.geomspace(1e-300, 1.0, 1000)])
+    ex = x.copy()
+    K._vexp(ex, np.empty(x.size, dtype=np.int64), x.size)
+    np.testing.assert_allclose(ex, np.exp(x), rtol=1e-15, atol=0)  # a few ulp
+
+
+@pytest.mark.parametrize("n", [1, 2, 3, 8, 9, 31, 64, 127, 128])
+def test_median_helper_matches_numpy(n):
+    # Reference library: numpy.median; ties, constant data and a huge dynamic range included
+    rng = np.random.default_rng(n)
+    for trial in range(40):
+        a = rng.normal(size=n)
+        if trial % 4 == 1:
+            a = np.round(2 * a) / 2
+        elif trial % 4 == 2:
+            a[:] = 3.0
+        elif trial % 4 == 3:
+            a = np.exp(30 * rng.normal(size=n))
+        keep = a.copy()
+        assert K._median(a, n, np.empty(n)) == np.median(keep)
+        assert np.array_equal(a, keep)  # not reordered
+
+
+def _generic_system(p, y, noise, axes, model, s_instr, resp):
+    """chi2, A, g from the generic path (model + Jacobian arrays, then the normal equations)."""
+    mod, jac = _full_jacobian(p, axes, model, s_instr, resp)
+    good = np.isfinite(y)
+    r = np.where(good, y - mod, 0.0) / noise
+    J = np.where(good, jac, 0.0) / noise
+    return r @ r, J @ J.T, J @ r
+
+
+@pytest.mark.parametrize("resp", [K.RESP_TOPHAT, K.RESP_NONE])
+@pytest.mark.parametrize("baseline", ["none", "constant", "linear"])
+def test_single_component_evaluator_matches_generic_path_and_finite_differences(resp, baseline):
+    # The fused one-component evaluator (model, normal equations and Newton correction in one
+    # pass) against the generic model/Jacobian of the same package (checked above against
+    # quadrature and finite differences) and against central differences of its own gradient:
+    # g = J^T W r is minus the gradient of chi2/2, so dg/dp = -(A - S).
+    rng = np.random.default_rng(17)
+    v = np.linspace(60, -40, 70)  # decreasing axis
+    axes = prepare_axes(v)
+    # permuted parameter order and a scale: amplitude = 0.5 * params[2]
+    model = LineModel([(0, 2, 0.5, 0, 1)], baseline=baseline)
+    s_instr = 2.5
+    nb = model.npar - 3
+    p = np.array([12.0, 6.0, 30.0] + [0.7, 0.01][:nb])
+    y = tophat_gauss(v, 15.0, 11.0, math.hypot(5.5, s_instr), 100.0 / 69) + rng.normal(size=v.size) * 0.8
+    if resp == K.RESP_NONE:
+        y = 15.0 * np.exp(-0.5 * ((v - 11.0) / math.hypot(5.5, s_instr)) ** 2) + rng.normal(size=v.size) * 0.8
+    y[[5, 33, 34]] = np.nan
+    noise = 0.8
+    cax, cia, csc, civ, cis, roles, bkind = model.arrays()
+    good = np.isfinite(y)
+    t = np.arange(v.size) - 0.5 * (v.size - 1)
+    wsum = np.array([good.sum(), t[good].sum(), (t[good] ** 2).sum()], dtype=float)
+    yz = np.where(good, y, 0.0)
+    w = good.astype(float)
+
+    def single(q):
+        A, g, S = np.empty((model.npar,) * 2), np.empty(model.npar), np.empty((model.npar,) * 2)
+        c2 = K._eval_single(np.asarray(q, float), yz, w, wsum, axes.edges_ext[0], axes.centres[0],
+                            axes.inv_width_ext[0], cia[0], civ[0], cis[0], csc[0], model.n_line_params, bkind,
+                            s_instr**2, resp, 1.0 / noise**2, A, g, S, np.empty(v.size + 3), np.empty(v.size + 3),
+                            np.empty(v.size + 3), np.empty(v.size + 3, dtype=np.int64))
+        return c2, A, g, S
+
+    c2, A, g, S = single(p)
+    c2_ref, A_ref, g_ref = _generic_system(p, y, noise, axes, model, s_instr, resp)
+    assert c2 == pytest.approx(c2_ref, rel=1e-12)
+    np.testing.assert_allclose(A, A_ref, rtol=1e-11, atol=1e-12 * np.abs(A_ref).max())
+    np.testing.assert_allclose(g, g_ref, rtol=1e-10, atol=1e-11 * np.abs(g_ref).max())
+    H = A - S
+    for k in range(p.size):
+        h = 1e-5 * max(1.0, abs(p[k]))
+        pp, pm = p.copy(), p.copy()
+        pp[k] += h
+        pm[k] -= h
+        dg = (single(pp)[2] - single(pm)[2]) / (2 * h)
+        np.testing.assert_allclose(-dg, H[:, k], rtol=1e-6, atol=1e-7 * np.abs(H).max(), err_msg=f"param {k}")
+
+
+def test_correlated_noise_normal_equations_match_dense_linear_algebra():
+    # Generalised least squares with the banded channel correlation (Hanning, rho1 = 2/3,
+    # rho2 = 1/6, white floor) and missing channels: chi2 = r^T C^-1 r, A = J^T C^-1 J and
+    # g = J^T C^-1 r from the compiled banded whitening against numpy.linalg.solve with the
+    # dense covariance of the finite channels (reference library).
+    from kinemap.linefit._config import CORRELATION_FLOOR
+
+    rng = np.random.default_rng(23)
+    v = np.linspace(-60, 60, 50)
+    axes = prepare_axes(v)
+    model = LineModel.single(2, baseline="linear")
+    p = np.array([9.0, -12.0, 6.0, 5.0, 15.0, 4.0, 0.3, 0.01])
+    mod, jac = _full_jacobian(p, axes, model, 0.0, K.RESP_HANNING)
+    y = mod + rng.normal(size=v.size)
+    y[[0, 7, 8, 30]] = np.nan
+    noise, floor = 0.6, CORRELATION_FLOOR
+    rho1, rho2 = channel_noise_correlation()[1:3]
+    good = np.flatnonzero(np.isfinite(y))
+    m = good.size
+    lag = np.abs(good[:, None] - good[None, :])
+    R = np.where(lag == 0, 1.0, np.where(lag == 1, rho1, np.where(lag == 2, rho2, 0.0)))
+    C = noise**2 * ((1 - floor) * R + floor * np.eye(m))
+    r = (y - mod)[good]
+    J = jac[:, good]
+    chi2_ref = r @ np.linalg.solve(C, r)
+    A_ref = J @ np.linalg.solve(C, J.T)
+    g_ref = J @ np.linalg.solve(C, r)
+    # compiled path: banded Cholesky of the finite channels, then whitened normal equations
+    npar, nchan = model.npar, v.size
+    idx = np.zeros(nchan, dtype=np.int64)
+    idx[:m] = good
+    pos = np.searchsorted(good, np.arange(nchan + 1)).astype(np.int64)
+    L0, L1, L2 = np.empty(nchan), np.empty(nchan), np.empty(nchan)
+    assert K._band_chol(idx, m, rho1, rho2, floor, L0, L1, L2)
+    mod2 = np.empty(nchan)
+    jac2 = np.zeros((npar, nchan))
+    rlo, rhi = np.empty(npar, dtype=np.int64), np.empty(npar, dtype=np.int64)
+    cax, cia, csc, civ, cis, roles, bkind = model.arrays()
+    K._eval_model(p, axes.centres, axes.edges_ext, axes.inv_width_ext, cax, cia, csc, civ, cis, model.n_line_params,
+                  bkind, 0.0, K.RESP_HANNING, mod2, jac2, np.empty(nchan + 2), np.empty((npar, nchan + 2)),
+                  np.empty(nchan + 3), np.empty(nchan + 3), np.empty(nchan + 3), True,
+                  np.empty((model.ncomp, 2), dtype=np.int64), rlo, rhi)
+    A, g = np.empty((npar, npar)), np.empty(npar)
+    chi2 = K._residual_system(y, mod2, jac2, idx, pos, m, 1.0 / noise, True, L0, L1, L2, np.empty(nchan),
+                              np.empty(nchan), np.empty((npar, nchan)), A, g, rlo, rhi,
+                              np.empty(npar, dtype=np.int64), np.empty(npar, dtype=np.int64), True)
+    assert chi2 == pytest.approx(chi2_ref, rel=1e-9)
+    np.testing.assert_allclose(A, A_ref, rtol=1e-9, atol=1e-11 * np.abs(A_ref).max())
+    np.testing.assert_allclose(g, g_ref, rtol=1e-9, atol=1e-11 * np.abs(g_ref).max())
+
+
+def test_eight_sigma_window_moves_fits_far_less_than_the_error():
+    # The compiled model is exactly 0 more than 8 observed dispersions from the line centre
+    # (the Gaussian there is < 1.3e-14 of its peak).  Fitted to convergence, the truncated
+    # model's minimum must coincide with that of the untruncated model written in plain scipy
+    # (reference library: scipy.optimize.curve_fit, tight tolerances, started at our answer)
+    # to far better than the 1e-3 of an error bar used elsewhere.  Narrow lines on a wide
+    # band, so most channels lie beyond the cut.
+    rng = np.random.default_rng(99)
+    v = np.linspace(-200, 200, 201)
+    dv = v[1] - v[0]
+    n = 20
+    truth = np.stack([rng.uniform(5, 40, n), rng.uniform(-100, 100, n), rng.uniform(1.0, 6.0, n)], 1)
+    y = np.array([tophat_gauss(v, *q, dv) for q in truth]) + 0.3 + rng.normal(size=(n, v.size))
+    res = fit_spectra(y, 1.0, v, baseline="constant", tolerance=1e-16, max_iter=500)
+    assert np.all(res.status == Status.OK)
+    # channels beyond the cut dominate: the model is exactly the baseline there
+    mod = model_spectra(res.params, v, baseline="constant")
+    far = np.abs(v[None, :] - res.params[:, 1:2]) > 8 * res.params[:, 2:3] + dv
+    assert far.mean() > 0.8
+    np.testing.assert_array_equal(mod[far], np.broadcast_to(res.params[:, 3:4], far.shape)[far])
+
+    def f(x, a, c, s, b):
+        return tophat_gauss(x, a, c, s, dv) + b
+
+    worst = 0.0
+    for i in range(n):
+        p, cov = curve_fit(f, v, y[i], p0=res.params[i], sigma=np.ones(v.size), absolute_sigma=True,
+                           ftol=1e-15, xtol=1e-15, gtol=1e-15, maxfev=20000)
+        worst = max(worst, np.max(np.abs(res.params[i] - p) / np.sqrt(np.diag(cov))))
+    assert worst < 1e-5
+
+
+def test_sampled_response_linear_baseline_and_gaps_agree_with_curve_fit():
+    # One component with response='none', a linear baseline and missing channels (the fused
+    # one-component path with Newton steps) against scipy.optimize.curve_fit (reference
+    # library) with the same sampled Gaussian + line, finite channels only, same start.
+    rng = np.random.default_rng(314)
+    v = np.linspace(-50, 50, 80)
+    t = np.arange(v.size) - 0.5 * (v.size - 1)
+    n = 30
+    truth = np.stack([rng.uniform(6, 25, n), rng.uniform(-20, 20, n), rng.uniform(2, 10, n),
+                      rng.uniform(-1, 1, n), rng.uniform(-0.02, 0.02, n)], 1)
+    y = model_spectra(truth, v, baseline="linear", response="none") + rng.normal(size=(n, v.size)) * 0.7
+    y[:, [0, 17, 18, 19, 60]] = np.nan
+    res = fit_spectra(y, 0.7, v, baseline="linear", response="none")
+    assert np.all(res.status == Status.OK)
+    p0 = initial_guess(y, 0.7, v, baseline="linear", response="none")
+    good = np.isfinite(y[0])
+
+    def f(x, a, c, s, b0, b1):
+        return a * np.exp(-0.5 * ((x - c) / s) ** 2) + b0 + b1 * t[good]
+
+    for i in range(n):
+        p, cov = curve_fit(f, v[good], y[i, good], p0=p0[i], sigma=np.full(good.sum(), 0.7), absolute_sigma=True,
+                           ftol=1e-15, xtol=1e-15, gtol=1e-15, maxfev=20000)
+        err = np.sqrt(np.diag(cov))
+        np.testing.assert_array_less(np.abs(res.params[i] - p) / err, 1e-3)
+        np.testing.assert_allclose(res.errors[i], err, rtol=1e-3)
+
+
 # ----------------------------------------------------------------------------- against curve_fit
 def test_agreement_with_curve_fit():
     # Reference library: scipy.optimize.curve_fit (sigma=noise, absolute_sigma=True) with the

@@ -1,11 +1,31 @@
 """Compiled (numba) kernels: model + analytic Jacobian, initial guesses, Levenberg-Marquardt.
 
 Everything here works on plain float64 arrays in km/s; validation happens in ``fit.py``.
-The parallel loops run over spectra, so no Python code executes per spectrum.
+The parallel loops run over blocks of spectra, so no Python code executes per spectrum.
 
-fastmath: only the flags that cannot change NaN/Inf semantics are used
-(no 'nnan'/'ninf', no approximate functions 'afn'), and only in the model evaluation and
-the normal-equation sums, which contain no NaN tests; the optimiser logic runs IEEE-exact.
+Two evaluation paths share one optimiser (:func:`_fit_one`):
+
+* the common case -- one Gaussian component, white noise, top-hat or sampled channels --
+  goes through :func:`_eval_single`, which computes chi2, the normal equations and the
+  second-derivative (Newton) correction in one vectorised pass without storing the model
+  or the Jacobian, with the normal CDF and exp evaluated by branch-free vectorisable code
+  (:func:`_vndtr`, :func:`_vexp`); the optimiser then takes Newton steps near the minimum;
+* everything else (several or tied components, Hanning response, correlated noise) builds
+  the model and Jacobian arrays (:func:`_eval_model`) and solves Gauss-Newton normal
+  equations (:func:`_residual_system`).
+
+Both paths truncate each line at +-_ZCUT (8) observed dispersions, where it is below
+1.3e-14 of its peak, and agree with each other and with untruncated reference models to
+rounding (see the tests).
+
+Compilation notes.  Helpers that do not allocate are compiled with ``_nrt=False``: numba
+otherwise wraps every array passed to a call in atomic reference-count updates, which cost
+more than a model evaluation in these small per-spectrum calls.  ``error_model='numpy'``
+drops the zero-division checks (which block vectorisation) where every divisor is known
+to be non-zero.  fastmath: only flags that cannot change NaN/Inf semantics are used (no
+'nnan'/'ninf', no approximate functions 'afn'), and only in the model evaluation and the
+normal-equation sums, which contain no NaN tests (NaN channels are zero-weighted before);
+the optimiser logic runs IEEE-exact.
 """
 from __future__ import annotations
 
@@ -32,13 +52,55 @@ _INV_SQRT2 = 1.0 / math.sqrt(2.0)
 # 1.3e-14 of its peak: below double-precision resolution of the line, so those channels are
 # skipped (this saves most erfc/exp calls for narrow lines)
 _ZCUT = 8.0
+# Normal CDF from the exp(-z^2/2) the Jacobian needs anyway: the rational approximations of
+# the Cephes Math Library (S. L. Moshier, ndtr.c, as shipped in scipy.special; from memory of
+# that source) -- erf(t) = t T(t^2)/U(t^2) for |t| < 1 and erfc(x) = exp(-x^2) P(x)/Q(x) for
+# 1 <= x < 8, t = x = |z|/sqrt(2).  Relative accuracy ~1e-14 (tests compare with math.erfc
+# and scipy.special.ndtr); sharing the exponential makes Phi + phi ~2x cheaper than erfc + exp.
+_SQRTH = math.sqrt(0.5)
+_EP0, _EP1, _EP2, _EP3, _EP4, _EP5, _EP6, _EP7, _EP8 = (
+    2.46196981473530512524e-10, 5.64189564831068821977e-1, 7.46321056442269912687e0,
+    4.86371970985681366614e1, 1.96520832956077098242e2, 5.26445194995477358631e2,
+    9.34528527171957607540e2, 1.02755188689515710272e3, 5.57535335369399327526e2)
+_EQ0, _EQ1, _EQ2, _EQ3, _EQ4, _EQ5, _EQ6, _EQ7 = (
+    1.32281951154744992508e1, 8.67072140885989742329e1, 3.54937778887819891062e2,
+    9.75708501743205489753e2, 1.82390916687909736289e3, 2.24633760818710981792e3,
+    1.65666309194161350182e3, 5.57535340817727675546e2)
+_ET0, _ET1, _ET2, _ET3, _ET4 = (
+    9.60497373987051638749e0, 9.00260197203842689217e1, 2.23200534594684319226e3,
+    7.00332514112805075473e3, 5.55923013010394962768e4)
+_EU0, _EU1, _EU2, _EU3, _EU4 = (
+    3.35617141647503099647e1, 5.21357949780152679795e2, 4.59432382970980127987e3,
+    2.26290000613890934246e4, 4.92673942608635921086e4)
 _LAM0 = 1e-3
+# Newton steps (full Hessian) once the Gauss-Newton decrement is below this (chi2 units, i.e.
+# within ~1.7 error bars of the minimum): there they converge quadratically where
+# Gauss-Newton converges linearly (rate ~ 1 / (S/N sqrt(n)), a few per cent), while farther
+# out the Gauss-Newton step is the better one.  Measured on the benchmark cube: 3.46
+# iterations per fit (Gauss-Newton only: 4.76, Newton throughout: 3.82).
+_NEWTON_BELOW = 3.0
 _LAM_MAX = 1e14
-_BLOCK = 16  # spectra per parallel work item (work arrays are allocated once per block)
+_BLOCK = 64  # spectra per parallel work item (work arrays are allocated once per block)
 
 
 # ----------------------------------------------------------------------------- model
-@njit(cache=True)
+@njit(cache=True, inline="always", _nrt=False)
+def _ndtr_e(z, e):
+    """Normal CDF Phi(z) given ``e = exp(-z^2/2)`` (see the constants above for the source)."""
+    x = abs(z) * _SQRTH
+    if x < 1.0:
+        t = z * _SQRTH
+        w = t * t
+        num = (((_ET0 * w + _ET1) * w + _ET2) * w + _ET3) * w + _ET4
+        den = ((((w + _EU0) * w + _EU1) * w + _EU2) * w + _EU3) * w + _EU4
+        return 0.5 + 0.5 * t * num / den
+    num = (((((((_EP0 * x + _EP1) * x + _EP2) * x + _EP3) * x + _EP4) * x + _EP5) * x + _EP6) * x + _EP7) * x + _EP8
+    den = (((((((x + _EQ0) * x + _EQ1) * x + _EQ2) * x + _EQ3) * x + _EQ4) * x + _EQ5) * x + _EQ6) * x + _EQ7
+    y = 0.5 * e * num / den
+    return y if z < 0.0 else 1.0 - y
+
+
+@njit(cache=True, _nrt=False)
 def _first(row, lo, hi, thr, mode):
     """Smallest k in [lo, hi) where the (monotone false -> true) predicate holds, else hi.
 
@@ -61,7 +123,7 @@ def _first(row, lo, hi, thr, mode):
     return lo
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _window(row, lo, hi, v0, half):
     """Index range [k0, k1] of the monotonic ``row[lo:hi]`` inside v0 +- half (k0 > k1: none)."""
     if row[hi - 1] >= row[lo]:
@@ -73,7 +135,7 @@ def _window(row, lo, hi, v0, half):
     return k0, k1
 
 
-@njit(cache=True, fastmath=_FM)
+@njit(cache=True, _nrt=False, fastmath=_FM)
 def _eval_model(p, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_instr2, resp,
                 mod, jac, mext, jext, Phi, phi, zb, want_jac, crng, rlo, rhi):
     """Model (nchan) and Jacobian rows (npar, nchan) at parameters ``p``.
@@ -83,7 +145,6 @@ def _eval_model(p, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_instr2
     elsewhere by definition (entries outside are not written and must not be read).
     Work arrays use extended channel indices i = c + 1 (channels -1 .. nchan)."""
     nchan = mod.shape[0]
-    npar = p.shape[0]
     ncomp = cax.shape[0]
     if resp == RESP_HANNING:
         e0, e1 = 0, nchan + 2  # extended channels -1 .. nchan
@@ -168,8 +229,9 @@ def _eval_model(p, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_instr2
                     Phi[k] = 1.0
                     phi[k] = 0.0
                 else:
-                    Phi[k] = 0.5 * math.erfc(-z * _INV_SQRT2)
-                    phi[k] = _INV_SQRT2PI * math.exp(-0.5 * z * z)
+                    e = math.exp(-0.5 * z * z)
+                    Phi[k] = _ndtr_e(z, e)
+                    phi[k] = _INV_SQRT2PI * e
             for i in range(i0, i1):
                 dP = Phi[i + 1] - Phi[i]
                 c0 = cw[a, i]  # sqrt(2 pi) / signed channel width (the sign cancels)
@@ -222,6 +284,28 @@ def _eval_model(p, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_instr2
             rhi[nline + 1] = nchan
 
 
+@njit(cache=True, _nrt=False)
+def _model_range(s0, s1, params, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_instr2, resp, out,
+                 mod, jac, mext, jext, Phi, phi, zb, p, crng, rlo, rhi):
+    """Model spectra s0 .. s1-1 of :func:`model_kernel` with the caller's work arrays."""
+    nchan = out.shape[1]
+    npar = params.shape[1]
+    for s in range(s0, s1):
+        ok = True
+        for k in range(npar):
+            p[k] = params[s, k]
+            if not np.isfinite(p[k]):
+                ok = False
+        if not ok:
+            for c in range(nchan):
+                out[s, c] = np.nan
+            continue
+        _eval_model(p, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_instr2, resp,
+                    mod, jac, mext, jext, Phi, phi, zb, False, crng, rlo, rhi)
+        for c in range(nchan):
+            out[s, c] = mod[c]
+
+
 @njit(parallel=True, cache=True)
 def model_kernel(params, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_instr2, resp, out):
     """Model spectra (nspec, nchan) for parameters (nspec, npar); NaN parameters give NaN."""
@@ -229,37 +313,20 @@ def model_kernel(params, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_
     npar = params.shape[1]
     nblk = (nspec + _BLOCK - 1) // _BLOCK
     for b in prange(nblk):
-        mod = np.empty(nchan)
-        jac = np.empty((npar, nchan))
-        mext = np.empty(nchan + 2)
-        jext = np.empty((npar, nchan + 2))
-        Phi = np.empty(nchan + 3)
-        phi = np.empty(nchan + 3)
-        zb = np.empty(nchan + 3)
-        p = np.empty(npar)
-        crng = np.empty((cax.shape[0], 2), dtype=np.int64)
-        rlo = np.empty(npar, dtype=np.int64)
-        rhi = np.empty(npar, dtype=np.int64)
-        for s in range(b * _BLOCK, min(nspec, (b + 1) * _BLOCK)):
-            ok = True
-            for k in range(npar):
-                p[k] = params[s, k]
-                if not np.isfinite(p[k]):
-                    ok = False
-            if not ok:
-                for c in range(nchan):
-                    out[s, c] = np.nan
-                continue
-            _eval_model(p, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_instr2, resp,
-                        mod, jac, mext, jext, Phi, phi, zb, False, crng, rlo, rhi)
-            for c in range(nchan):
-                out[s, c] = mod[c]
+        _model_range(b * _BLOCK, min(nspec, (b + 1) * _BLOCK), params, cen, edg, cw, cax, cia, csc, civ, cis,
+                     nline, bkind, s_instr2, resp, out, np.empty(nchan), np.empty((npar, nchan)),
+                     np.empty(nchan + 2), np.empty((npar, nchan + 2)), np.empty(nchan + 3), np.empty(nchan + 3),
+                     np.empty(nchan + 3), np.empty(npar), np.empty((cax.shape[0], 2), dtype=np.int64),
+                     np.empty(npar, dtype=np.int64), np.empty(npar, dtype=np.int64))
 
 
 # ----------------------------------------------------------------------------- linear algebra
-@njit(cache=True)
+@njit(cache=True, _nrt=False, error_model="numpy")
 def _chol(M, n):
-    """In-place lower Cholesky factor of M[:n, :n]; False if not positive definite."""
+    """In-place lower Cholesky factor of M[:n, :n]; False if not positive definite.
+
+    (error_model='numpy' here and below: every divisor is a checked positive pivot, so the
+    zero-division tests numba would add are dead weight in these small, hot loops.)"""
     for j in range(n):
         d = M[j, j]
         for k in range(j):
@@ -268,15 +335,16 @@ def _chol(M, n):
             return False
         d = math.sqrt(d)
         M[j, j] = d
+        inv_d = 1.0 / d
         for i in range(j + 1, n):
             t = M[i, j]
             for k in range(j):
                 t -= M[i, k] * M[j, k]
-            M[i, j] = t / d
+            M[i, j] = t * inv_d
     return True
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False, error_model="numpy")
 def _chol_solve(M, n, x):
     """Solve (L L^T) x = b in place (x holds b on entry), L from :func:`_chol`."""
     for i in range(n):
@@ -291,9 +359,11 @@ def _chol_solve(M, n, x):
         x[i] = t / M[i, i]
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False, error_model="numpy")
 def _invert_subset(A, sel, nsel, W, x, cov):
-    """cov[sel, sel] = inverse of A[sel, sel] (others NaN); False if singular."""
+    """cov[sel, sel] = inverse of A[sel, sel] (others NaN); False if singular.
+
+    A = L L^T (Cholesky), L^-1 formed in place column by column, A^-1 = L^-T L^-1."""
     npar = A.shape[0]
     for i in range(npar):
         for k in range(npar):
@@ -303,18 +373,27 @@ def _invert_subset(A, sel, nsel, W, x, cov):
             W[i, k] = A[sel[i], sel[k]]
     if not _chol(W, nsel):
         return False
-    for col in range(nsel):
-        for i in range(nsel):
-            x[i] = 0.0
-        x[col] = 1.0
-        _chol_solve(W, nsel, x)
-        for i in range(nsel):
-            cov[sel[i], sel[col]] = x[i]
+    # column j of L^-1 overwrites column j of L: row i needs L[i, j..i] (not yet
+    # overwritten) and the entries of column j above it (already inverted)
+    for j in range(nsel):
+        W[j, j] = 1.0 / W[j, j]
+        for i in range(j + 1, nsel):
+            t = W[i, j] * W[j, j]
+            for k in range(j + 1, i):
+                t += W[i, k] * W[k, j]
+            W[i, j] = -t / W[i, i]
+    for a in range(nsel):
+        for b in range(a + 1):
+            t = 0.0
+            for k in range(a, nsel):
+                t += W[k, a] * W[k, b]
+            cov[sel[a], sel[b]] = t
+            cov[sel[b], sel[a]] = t
     return True
 
 
 # ----------------------------------------------------------------------------- whitening
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _band_chol(idx, m, rho1, rho2, floor, L0, L1, L2):
     """Banded Cholesky of the correlation matrix of the finite channels ``idx[:m]``.
 
@@ -344,7 +423,7 @@ def _band_chol(idx, m, rho1, rho2, floor, L0, L1, L2):
     return True
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _band_inv_trace(m, L0, L1, L2, Z0, Z1, Z2):
     """Trace of (L L^T)^-1 for the banded factor of :func:`_band_chol`, in O(m).
 
@@ -365,7 +444,7 @@ def _band_inv_trace(m, L0, L1, L2, Z0, Z1, Z2):
     return tr
 
 
-@njit(cache=True, fastmath=_FM)
+@njit(cache=True, _nrt=False, fastmath=_FM)
 def _whiten(src, idx, q0, q1, c1, inv_noise, corr, L0, L1, L2, out):
     """out[q0:q1] = (L^-1 src[idx] / noise)[q0:q1] for a source that is zero outside
     channels [idx[q0], c1) (plain scaling when the channels are uncorrelated)."""
@@ -382,7 +461,35 @@ def _whiten(src, idx, q0, q1, c1, inv_noise, corr, L0, L1, L2, out):
             out[i] = t / L0[i]
 
 
-@njit(cache=True, fastmath=_FM)
+@njit(cache=True, _nrt=False, fastmath=_FM, error_model="numpy")
+def _whiten_rows(r, jac, idx, m, rhi, qlo, qhi, inv_noise, L0, L1, L2, rw, Jw):
+    """Correlated channels: :func:`_whiten` of the residual and of every Jacobian row in one
+    pass.  The recurrences are serial in the channel index, so whitening the rows one after
+    the other is latency-bound; interleaved, the independent rows overlap (and the divisor
+    is inverted once per channel).  Row k is whitened on [qlo[k], qhi[k]) as by _whiten."""
+    npar = jac.shape[0]
+    for i in range(m):
+        ci = idx[i]
+        il = 1.0 / L0[i]
+        t = r[ci] * inv_noise
+        if i >= 1:
+            t -= L1[i] * rw[i - 1]
+        if i >= 2:
+            t -= L2[i] * rw[i - 2]
+        rw[i] = t * il
+        for k in range(npar):
+            q0 = qlo[k]
+            if i < q0 or i >= qhi[k]:
+                continue
+            t = jac[k, ci] * inv_noise if ci < rhi[k] else 0.0
+            if i - 1 >= q0:
+                t -= L1[i] * Jw[k, i - 1]
+            if i - 2 >= q0:
+                t -= L2[i] * Jw[k, i - 2]
+            Jw[k, i] = t * il
+
+
+@njit(cache=True, _nrt=False, fastmath=_FM)
 def _dot(a, b, lo, hi):
     """sum(a[lo:hi] * b[lo:hi]); written over 0-based slices so LLVM can vectorise it."""
     if hi <= lo:
@@ -395,7 +502,7 @@ def _dot(a, b, lo, hi):
     return t
 
 
-@njit(cache=True, fastmath=_FM)
+@njit(cache=True, _nrt=False, fastmath=_FM)
 def _residual_system(y, mod, jac, idx, pos, m, inv_noise, corr, L0, L1, L2, r, rw, Jw, A, g,
                      rlo, rhi, qlo, qhi, want_jac):
     """Whitened residual and (if asked) normal matrix A = Jw Jw^T and gradient g = Jw rw.
@@ -423,18 +530,24 @@ def _residual_system(y, mod, jac, idx, pos, m, inv_noise, corr, L0, L1, L2, r, r
         return chi2 * w2
     for c in range(nchan):
         r[c] = y[c] - mod[c]
-    _whiten(r, idx, 0, m, nchan, inv_noise, corr, L0, L1, L2, rw)
-    chi2 = 0.0
-    for i in range(m):
-        chi2 += rw[i] * rw[i]
+    npar = jac.shape[0]
     if want_jac:
-        npar = jac.shape[0]
         for k in range(npar):
             qlo[k] = pos[rlo[k]]
             qhi[k] = m if corr else pos[rhi[k]]
             if rhi[k] <= rlo[k]:
                 qhi[k] = qlo[k]
-            _whiten(jac[k], idx, qlo[k], qhi[k], rhi[k], inv_noise, corr, L0, L1, L2, Jw[k])
+    if corr and want_jac:
+        _whiten_rows(r, jac, idx, m, rhi, qlo, qhi, inv_noise, L0, L1, L2, rw, Jw)
+    else:
+        _whiten(r, idx, 0, m, nchan, inv_noise, corr, L0, L1, L2, rw)
+        if want_jac:
+            for k in range(npar):
+                _whiten(jac[k], idx, qlo[k], qhi[k], rhi[k], inv_noise, corr, L0, L1, L2, Jw[k])
+    chi2 = 0.0
+    for i in range(m):
+        chi2 += rw[i] * rw[i]
+    if want_jac:
         for k in range(npar):
             t = 0.0
             for i in range(qlo[k], qhi[k]):
@@ -449,30 +562,330 @@ def _residual_system(y, mod, jac, idx, pos, m, inv_noise, corr, L0, L1, L2, r, r
     return chi2
 
 
+# ----------------------------------------------------------------------------- one component, white noise
+# The fused single-component path below is written as short branch-free loops over plain
+# arrays so that LLVM vectorises them (error_model='numpy' drops the zero-division checks
+# that would otherwise block vectorisation; every division here has a non-zero divisor).
+_LOG2E = 1.4426950408889634
+_LN2_HI = 6.93147180369123816490e-01  # ln 2 split in two parts (Cody & Waite 1980; fdlibm constants)
+_LN2_LO = 1.90821492927058770002e-10
+_X0, _X1, _X2, _X3, _X4, _X5, _X6, _X7, _X8, _X9, _X10, _X11, _X12, _X13 = (
+    1.0 / math.factorial(_i) for _i in range(14))
+
+
+@njit(cache=True, _nrt=False, fastmath={"nsz", "arcp", "contract"}, error_model="numpy")
+def _vexp(x, bits, n):
+    """x[:n] = exp(x[:n]) in place, vectorisable; arguments below -700 give exp(-700) ~ 1e-304
+    (only edges beyond the cut get there, and those are set to 0 afterwards).
+
+    exp(x) = 2^k exp(r), k = round(x / ln 2), r = x - k ln 2 (two-part ln 2), |r| <= 0.347,
+    exp(r) by its Taylor polynomial of degree 13 (truncation < 5e-18 relative); 2^k is
+    assembled from its IEEE-754 exponent bits.  Error a few ulp (tests compare with numpy).
+    No 'reassoc' flag: it could undo the two-part reduction."""
+    fb = bits.view(np.float64)
+    for i in range(n):
+        xi = max(x[i], -700.0)
+        kf = math.floor(xi * _LOG2E + 0.5)
+        r = (xi - kf * _LN2_HI) - kf * _LN2_LO
+        x[i] = ((((((((((((_X13 * r + _X12) * r + _X11) * r + _X10) * r + _X9) * r + _X8) * r + _X7) * r
+                       + _X6) * r + _X5) * r + _X4) * r + _X3) * r + _X2) * r + _X1) * r + _X0
+        bits[i] = (np.int64(kf) + 1023) << 52
+    for i in range(n):
+        x[i] *= fb[i]
+
+
+@njit(cache=True, _nrt=False, fastmath=_FM, error_model="numpy")
+def _vndtr(z, e, out, n):
+    """out[:n] = Phi(z[:n]) given e = exp(-z^2/2): :func:`_ndtr_e` written branch-free (both
+    rational approximations evaluated, one division) so that the loop vectorises."""
+    for i in range(n):
+        zi = z[i]
+        x = abs(zi) * _SQRTH
+        w = x * x
+        ns = (((_ET0 * w + _ET1) * w + _ET2) * w + _ET3) * w + _ET4
+        ds = ((((w + _EU0) * w + _EU1) * w + _EU2) * w + _EU3) * w + _EU4
+        nl = (((((((_EP0 * x + _EP1) * x + _EP2) * x + _EP3) * x + _EP4) * x + _EP5) * x + _EP6) * x + _EP7) * x + _EP8
+        dl = (((((((x + _EQ0) * x + _EQ1) * x + _EQ2) * x + _EQ3) * x + _EQ4) * x + _EQ5) * x + _EQ6) * x + _EQ7
+        small = x < 1.0
+        q = 0.5 * (x * ns if small else e[i] * nl) / (ds if small else dl)  # erf(x) / 2 or erfc(x) / 2
+        neg = zi < 0.0
+        out[i] = (0.5 - q if neg else 0.5 + q) if small else (q if neg else 1.0 - q)
+
+
+@njit(cache=True, _nrt=False, fastmath=_FM, error_model="numpy")
+def _single_points(xs, npt, v0, inv_s, tophat, Z, E, P, bits):
+    """z = (x - v0) / s, exp(-z^2/2) and (top-hat) Phi(z) at the npt points ``xs`` (channel
+    edges for top-hat, centres for 'none'); the outer two edges are set to exactly 0 / 1
+    beyond the cut, as in :func:`_eval_model`."""
+    for i in range(npt):
+        z = (xs[i] - v0) * inv_s
+        Z[i] = z
+        E[i] = -0.5 * z * z
+    _vexp(E, bits, npt)
+    if tophat:
+        _vndtr(Z, E, P, npt)
+        for i in (0, npt - 1):
+            if Z[i] < -_ZCUT:
+                P[i] = 0.0
+                E[i] = 0.0
+            elif Z[i] > _ZCUT:
+                P[i] = 1.0
+                E[i] = 0.0
+
+
+@njit(cache=True, _nrt=False, fastmath=_FM, error_model="numpy")
+def _eval_single(p, y, w, wsum, edg, cen, cw, ka, kv, ks, sc, nline, bkind, s_instr2, resp, inv_noise2,
+                 A, g, S, Z, E, P, bits):
+    """Model, normal equations and Newton correction of a one-component model with white noise,
+    fused (no model or Jacobian arrays): the cheap path of the common case.
+
+    ``y`` holds the data with NaN channels set to 0 and ``w`` their weights (1 finite, 0 NaN);
+    ``wsum`` = (sum w, sum w t, sum w t^2) with t = c - (nchan - 1) / 2.  Fills ``A = J^T W J``,
+    ``g = J^T W r`` and ``S = sum_c w_c r_c d2m_c / dp dp`` (the Hessian of chi2 / 2 is
+    ``A - S``), in the model's parameter order; returns chi2.  The line is exactly 0 on
+    channels more than _ZCUT observed dispersions from its centre (as in :func:`_eval_model`).
+    Derivatives of F = s [Phi(z1) - Phi(z0)] (top-hat), z = (v - v0) / s, [f] = f(z1) - f(z0):
+    F_v = -[phi], F_s = [Phi] - [z phi], F_vv = -[z phi] / s, F_vs = -[z^2 phi] / s,
+    F_ss = -[z^3 phi] / s; for 'none' F = exp(-z^2/2), F_v = F z / s, F_s = F z^2 / s,
+    F_vv = F (z^2 - 1) / s^2, F_vs = F z (z^2 - 2) / s^2, F_ss = F z^2 (z^2 - 3) / s^2.
+    (With instrument s = sqrt(sigma^2 + s_instr^2): ds/dsigma = sigma / s and
+    d2s/dsigma2 = s_instr^2 / s^3.)  ``Z``, ``E``, ``P`` (float) and ``bits`` (int64), at least
+    nchan + 3 long, are work arrays."""
+    nchan = y.shape[0]
+    npar = p.shape[0]
+    amp = sc * p[ka]
+    v0 = p[kv]
+    sig = p[ks]
+    s = math.sqrt(sig * sig + s_instr2)
+    inv_s = 1.0 / s
+    dsds = sig * inv_s  # d s_obs / d sigma
+    d2s = s_instr2 * inv_s * inv_s * inv_s  # d2 s_obs / d sigma2
+    b0 = p[nline] if bkind >= 1 else 0.0
+    b1 = p[nline + 1] if bkind == 2 else 0.0
+    mid = 0.5 * (nchan - 1)
+    half = _ZCUT * s
+    if resp == RESP_NONE:
+        k0, k1 = _window(cen, 0, nchan, v0, half)
+        c0 = k0
+        c1 = k1 + 1
+    else:
+        # real edges are edg[1 .. nchan+1]; channel c spans edg[c+1], edg[c+2], so channels
+        # k0-2 .. k1-1 touch an edge inside the window (one channel if the line is narrower)
+        k0, k1 = _window(edg, 1, nchan + 2, v0, half)
+        c0 = max(k0 - 2, 0)
+        c1 = min(k1, nchan)
+    if c1 < c0:
+        c1 = c0
+    nw = c1 - c0
+    c2 = 0.0
+    gb0 = 0.0
+    gb1 = 0.0
+    # baseline-only channels (the line is exactly zero there)
+    for c in range(0, c0):
+        t = c - mid
+        r = w[c] * (y[c] - b0 - b1 * t)
+        c2 += r * r
+        gb0 += r
+        gb1 += t * r
+    yw = y[c1:]
+    ww = w[c1:]
+    for i in range(nchan - c1):
+        t = c1 + i - mid
+        r = ww[i] * (yw[i] - b0 - b1 * t)
+        c2 += r * r
+        gb0 += r
+        gb1 += t * r
+    gA = gv = gs = 0.0
+    aAA = aAv = aAs = avv = avs = ass = 0.0
+    aAb0 = aAb1 = avb0 = avb1 = asb0 = asb1 = 0.0
+    svv = svs = sss = 0.0
+    if nw > 0:
+        tophat = resp != RESP_NONE
+        if tophat:
+            # channel c0 + i spans edges edg[c0 + 1 + i], edg[c0 + 2 + i]
+            _single_points(edg[c0 + 1:], nw + 1, v0, inv_s, True, Z, E, P, bits)
+        else:
+            _single_points(cen[c0:], nw, v0, inv_s, False, Z, E, P, bits)
+        # loops index from 0 (views start at the window) so that LLVM sees unit-stride access
+        # (an offset index could be negative for all it knows, and wraparound blocks vectorising)
+        ws = cw[c0 + 1:]
+        yw = y[c0:]
+        ww = w[c0:]
+        is2 = inv_s * inv_s
+        for i in range(nw):
+            # unit-amplitude F and its derivatives (times sqrt(2 pi) / width for top-hat)
+            za = Z[i]
+            if tophat:
+                zb = Z[i + 1]
+                qa1 = _INV_SQRT2PI * E[i]
+                qb1 = _INV_SQRT2PI * E[i + 1]
+                qa2 = za * qa1
+                qb2 = zb * qb1
+                qa3 = za * qa2
+                qb3 = zb * qb2
+                cc = ws[i]  # sqrt(2 pi) / signed channel width (the sign cancels)
+                ccs = cc * inv_s
+                dP = P[i + 1] - P[i]
+                dq2 = qb2 - qa2
+                f0 = cc * s * dP
+                fv = -cc * (qb1 - qa1)
+                fs = cc * (dP - dq2)
+                fvv = -ccs * dq2
+                fvs = -ccs * (qb3 - qa3)
+                fss = -ccs * (zb * qb3 - za * qa3)
+            else:
+                e = E[i]
+                zz = za * za
+                ei2 = e * is2
+                f0 = e
+                fv = e * za * inv_s
+                fs = fv * za
+                fvv = ei2 * (zz - 1.0)
+                fvs = ei2 * za * (zz - 2.0)
+                fss = ei2 * zz * (zz - 3.0)
+            t = c0 + i - mid
+            wc = ww[i]
+            r = wc * (yw[i] - amp * f0 - b0 - b1 * t)
+            c2 += r * r
+            gb0 += r
+            gb1 += t * r
+            gA += f0 * r
+            gv += fv * r
+            gs += fs * r
+            wf0 = wc * f0
+            wfv = wc * fv
+            wfs = wc * fs
+            aAA += wf0 * f0
+            aAv += wf0 * fv
+            aAs += wf0 * fs
+            avv += wfv * fv
+            avs += wfv * fs
+            ass += wfs * fs
+            aAb0 += wf0
+            aAb1 += wf0 * t
+            avb0 += wfv
+            avb1 += wfv * t
+            asb0 += wfs
+            asb1 += wfs * t
+            svv += fvv * r
+            svs += fvs * r
+            sss += fss * r
+    # scale to parameters and noise, scatter into the model's parameter order
+    ad = amp * dsds
+    for k in range(npar):
+        for l in range(npar):
+            A[k, l] = 0.0
+            S[k, l] = 0.0
+    g[ka] = sc * gA * inv_noise2
+    g[kv] = amp * gv * inv_noise2
+    g[ks] = ad * gs * inv_noise2
+    A[ka, ka] = sc * sc * aAA * inv_noise2
+    A[kv, kv] = amp * amp * avv * inv_noise2
+    A[ks, ks] = ad * ad * ass * inv_noise2
+    A[ka, kv] = A[kv, ka] = sc * amp * aAv * inv_noise2
+    A[ka, ks] = A[ks, ka] = sc * ad * aAs * inv_noise2
+    A[kv, ks] = A[ks, kv] = amp * ad * avs * inv_noise2
+    S[ka, kv] = S[kv, ka] = sc * gv * inv_noise2
+    S[ka, ks] = S[ks, ka] = sc * dsds * gs * inv_noise2
+    S[kv, kv] = amp * svv * inv_noise2
+    S[kv, ks] = S[ks, kv] = ad * svs * inv_noise2
+    S[ks, ks] = amp * (dsds * dsds * sss + d2s * gs) * inv_noise2
+    if bkind >= 1:
+        kb = nline
+        g[kb] = gb0 * inv_noise2
+        A[kb, kb] = wsum[0] * inv_noise2
+        A[ka, kb] = A[kb, ka] = sc * aAb0 * inv_noise2
+        A[kv, kb] = A[kb, kv] = amp * avb0 * inv_noise2
+        A[ks, kb] = A[kb, ks] = ad * asb0 * inv_noise2
+    if bkind == 2:
+        kb = nline
+        kt = nline + 1
+        g[kt] = gb1 * inv_noise2
+        A[kt, kt] = wsum[2] * inv_noise2
+        A[kb, kt] = A[kt, kb] = wsum[1] * inv_noise2
+        A[ka, kt] = A[kt, ka] = sc * aAb1 * inv_noise2
+        A[kv, kt] = A[kt, kv] = amp * avb1 * inv_noise2
+        A[ks, kt] = A[kt, ks] = ad * asb1 * inv_noise2
+    return c2 * inv_noise2
+
+
 # ----------------------------------------------------------------------------- optimiser
-@njit(cache=True)
-def _fit_one(y, m, neff, idx, pos, noise, p, lo, hi, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind,
-             s_instr2, resp, corr, L0, L1, L2, max_iter, tol, cov,
-             mod, jac, mext, jext, Phi, phi, zb, r, rw, Jw, A, g,
-             pt, modt, jact, rwt, Jwt, At, gt, D, M, x, dl, sel,
-             crng, rlo, rhi, rlot, rhit, qlo, qhi):
+@njit(cache=True, _nrt=False, error_model="numpy")
+def _evaluate(p, y, idx, pos, m, inv_noise, corr, L0, L1, L2, cen, edg, cw, cax, cia, csc, civ, cis,
+              nline, bkind, s_instr2, resp, mod, jac, mext, jext, Phi, phi, zb, r, rw, Jw, A, g,
+              crng, rlo, rhi, qlo, qhi):
+    """Generic path: model + Jacobian arrays, then chi2, normal matrix A and gradient g."""
+    _eval_model(p, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_instr2, resp,
+                mod, jac, mext, jext, Phi, phi, zb, True, crng, rlo, rhi)
+    return _residual_system(y, mod, jac, idx, pos, m, inv_noise, corr, L0, L1, L2, r, rw, Jw, A, g,
+                            rlo, rhi, qlo, qhi, True)
+
+
+@njit(cache=True, _nrt=False, error_model="numpy")
+def _decrement(A, g, sel, nf, M, x):
+    """Gauss-Newton decrement g^T A^-1 g over the free parameters (NaN if A is singular)."""
+    for i in range(nf):
+        for l in range(nf):
+            M[i, l] = A[sel[i], sel[l]]
+        x[i] = g[sel[i]]
+    if not _chol(M, nf):
+        return np.nan
+    _chol_solve(M, nf, x)
+    dec = 0.0
+    for i in range(nf):
+        dec += g[sel[i]] * x[i]
+    return dec
+
+
+@njit(cache=True, _nrt=False, error_model="numpy")
+def _fit_one(single, y, yz, wts, wsum, m, neff, idx, pos, noise, p, lo, hi, cen, edg, cw, cax, cia, csc, civ,
+             cis, nline, bkind, s_instr2, resp, corr, L0, L1, L2, max_iter, tol, cov,
+             mod, jac, mext, jext, Phi, phi, zb, r, rw, Jw, A, g, S,
+             pt, modt, jact, rwt, Jwt, At, gt, St, D, M, x, dl, sel,
+             crng, rlo, rhi, rlot, rhit, qlo, qhi, W, bits):
     """Levenberg-Marquardt with box bounds for one spectrum.
 
     Bounds are handled by projection: trial points are clipped onto the box, and a parameter
     sitting on a bound whose gradient points outward is frozen for that iteration (a simple
     active set), so the remaining parameters still take Gauss-Newton-like steps.
+    With ``single`` (one component, white noise; evaluated by :func:`_eval_single`) the step
+    uses the full Hessian of chi2, ``A - S``, once the Gauss-Newton decrement is below
+    _NEWTON_BELOW (Newton: quadratic instead of linear convergence near the minimum) and
+    while that matrix plus the damping is positive definite, else the Gauss-Newton matrix
+    ``A``; the generic path (:func:`_evaluate`) always uses ``A`` (S = 0).
     Convergence: the Gauss-Newton decrement g^T A^-1 g (the chi2 the next full step would
     gain, i.e. the squared distance to the minimum in units of the error ellipse) falls
-    below ``tol * max(1, chi2_reduced)``.
+    below ``tol * max(1, chi2_reduced)``.  The covariance is (J^T W J)^-1 = A^-1 at the final
+    point in both cases.
 
     Returns (status, n_iter, chi2); ``p`` is updated in place, ``cov`` filled.
     """
     npar = p.shape[0]
     inv_noise = 1.0 / noise
-    _eval_model(p, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_instr2, resp,
-                mod, jac, mext, jext, Phi, phi, zb, True, crng, rlo, rhi)
-    chi2 = _residual_system(y, mod, jac, idx, pos, m, inv_noise, corr, L0, L1, L2, r, rw, Jw, A, g,
-                            rlo, rhi, qlo, qhi, True)
+    for k in range(npar):
+        for l in range(npar):
+            S[k, l] = 0.0
+            St[k, l] = 0.0
+    # single path: its arguments once (calls with few arguments are cheaper)
+    a0 = cax[0]
+    erow = edg[a0]
+    crow = cen[a0]
+    wrow = cw[a0]
+    ka = cia[0]
+    kv = civ[0]
+    ks = cis[0]
+    sc0 = csc[0]
+    inv_noise2 = inv_noise * inv_noise
+    Z = W[0]
+    E = W[1]
+    P = W[2]
+    if single:
+        chi2 = _eval_single(p, yz, wts, wsum, erow, crow, wrow, ka, kv, ks, sc0, nline, bkind, s_instr2, resp,
+                            inv_noise2, A, g, S, Z, E, P, bits)
+    else:
+        chi2 = _evaluate(p, y, idx, pos, m, inv_noise, corr, L0, L1, L2, cen, edg, cw, cax, cia, csc, civ, cis,
+                         nline, bkind, s_instr2, resp, mod, jac, mext, jext, Phi, phi, zb, r, rw, Jw, A, g,
+                         crng, rlo, rhi, qlo, qhi)
     if not np.isfinite(chi2):
         return _FAILED, 0, chi2
     dof = max(neff - npar, 1.0)
@@ -497,28 +910,27 @@ def _fit_one(y, m, neff, idx, pos, noise, p, lo, hi, cen, edg, cw, cax, cia, csc
             status = _OK
             break
         # Gauss-Newton decrement for the convergence test
-        for i in range(nf):
-            for l in range(nf):
-                M[i, l] = A[sel[i], sel[l]]
-            x[i] = g[sel[i]]
-        dec = np.nan
-        if _chol(M, nf):
-            _chol_solve(M, nf, x)
-            dec = 0.0
-            for i in range(nf):
-                dec += g[sel[i]] * x[i]
-            if dec < tol * max(1.0, chi2 / dof):
-                status = _OK
-                break
+        dec = _decrement(A, g, sel, nf, M, x)
+        if dec < tol * max(1.0, chi2 / dof):
+            status = _OK
+            break
         # damped steps until chi2 decreases
         accepted = False
         while lam < _LAM_MAX:
-            for i in range(nf):
-                for l in range(nf):
-                    M[i, l] = A[sel[i], sel[l]]
-                M[i, i] += lam * max(D[sel[i]], 1e-300)
-                x[i] = g[sel[i]]
-            if not _chol(M, nf):
+            # Newton matrix A - S close to the minimum (S = 0 on the generic path), else, or if
+            # not positive definite, Gauss-Newton
+            newton = single and dec < _NEWTON_BELOW
+            while True:
+                for i in range(nf):
+                    for l in range(nf):
+                        M[i, l] = A[sel[i], sel[l]] - (S[sel[i], sel[l]] if newton else 0.0)
+                    M[i, i] += lam * max(D[sel[i]], 1e-300)
+                    x[i] = g[sel[i]]
+                factored = _chol(M, nf)
+                if factored or not newton:
+                    break
+                newton = False
+            if not factored:
                 lam *= nu
                 nu *= 2.0
                 continue
@@ -534,10 +946,13 @@ def _fit_one(y, m, neff, idx, pos, noise, p, lo, hi, cen, edg, cw, cax, cia, csc
                 elif t > hi[k]:
                     t = hi[k]
                 pt[k] = t
-            _eval_model(pt, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_instr2, resp,
-                        modt, jact, mext, jext, Phi, phi, zb, True, crng, rlot, rhit)
-            chi2t = _residual_system(y, modt, jact, idx, pos, m, inv_noise, corr, L0, L1, L2,
-                                     r, rwt, Jwt, At, gt, rlot, rhit, qlo, qhi, True)
+            if single:
+                chi2t = _eval_single(pt, yz, wts, wsum, erow, crow, wrow, ka, kv, ks, sc0, nline, bkind, s_instr2,
+                                     resp, inv_noise2, At, gt, St, Z, E, P, bits)
+            else:
+                chi2t = _evaluate(pt, y, idx, pos, m, inv_noise, corr, L0, L1, L2, cen, edg, cw, cax, cia, csc,
+                                  civ, cis, nline, bkind, s_instr2, resp, modt, jact, mext, jext, Phi, phi, zb, r,
+                                  rwt, Jwt, At, gt, crng, rlot, rhit, qlo, qhi)
             if np.isfinite(chi2t) and chi2t < chi2:
                 # gain ratio: actual / predicted (quadratic-model) decrease of the step taken
                 pred = 0.0
@@ -545,7 +960,7 @@ def _fit_one(y, m, neff, idx, pos, noise, p, lo, hi, cen, edg, cw, cax, cia, csc
                     dk = pt[k] - p[k]
                     t = 2.0 * g[k]
                     for l in range(npar):
-                        t -= A[k, l] * (pt[l] - p[l])
+                        t -= (A[k, l] - (S[k, l] if newton else 0.0)) * (pt[l] - p[l])
                     pred += dk * t
                 rho = (chi2 - chi2t) / pred if pred > 0 else 1.0
                 # Nielsen (1999) damping update: shrink lambda after good steps, grow it
@@ -564,6 +979,7 @@ def _fit_one(y, m, neff, idx, pos, noise, p, lo, hi, cen, edg, cw, cax, cia, csc
                 Jw, Jwt = Jwt, Jw
                 A, At = At, A
                 g, gt = gt, g
+                S, St = St, S
                 rlo, rlot = rlot, rlo
                 rhi, rhit = rhit, rhi
                 break
@@ -573,17 +989,9 @@ def _fit_one(y, m, neff, idx, pos, noise, p, lo, hi, cen, edg, cw, cax, cia, csc
             # no decrease possible at any damping: we sit at the minimum to rounding
             # precision if the Gauss-Newton decrement is tiny anyway, otherwise give up
             status = _NOT_CONVERGED
-            for i in range(nf):
-                for l in range(nf):
-                    M[i, l] = A[sel[i], sel[l]]
-                x[i] = g[sel[i]]
-            if _chol(M, nf):
-                _chol_solve(M, nf, x)
-                dec = 0.0
-                for i in range(nf):
-                    dec += g[sel[i]] * x[i]
-                if dec < 1e3 * tol * max(1.0, chi2 / dof):
-                    status = _OK
+            dec = _decrement(A, g, sel, nf, M, x)
+            if dec < 1e3 * tol * max(1.0, chi2 / dof):
+                status = _OK
             break
     if status == _OK:
         for k in range(npar):
@@ -605,110 +1013,178 @@ def _fit_one(y, m, neff, idx, pos, noise, p, lo, hi, cen, edg, cw, cax, cia, csc
     return status, it, chi2
 
 
+@njit(cache=True, _nrt=False, error_model="numpy")
+def _load_spectrum(row, y, yz, wts, wsum, mid):
+    """Copy one spectrum; yz = data with NaN channels set to 0, wts = 1 (finite) or 0 (NaN),
+    wsum = (sum w, sum w t, sum w t^2), t = c - mid.  Returns the number of finite channels.
+
+    Branch-free and IEEE-exact (no fastmath next to the NaN test).  With every channel
+    finite the sums are the closed forms n, 0, n (n^2 - 1) / 12 -- exactly what summing the
+    (half-)integers t would give, since all partial sums are exact in double precision."""
+    n = row.shape[0]
+    m = 0
+    for c in range(n):
+        yc = row[c]
+        y[c] = yc
+        fin = np.isfinite(yc)
+        yz[c] = yc if fin else 0.0
+        wts[c] = 1.0 if fin else 0.0
+        m += 1 if fin else 0
+    if m == n:
+        wsum[0] = n
+        wsum[1] = 0.0
+        wsum[2] = n * (n * n - 1) / 12.0
+    else:
+        s1 = 0.0
+        s2 = 0.0
+        for c in range(n):
+            t = (c - mid) * wts[c]
+            s1 += t
+            s2 += t * t
+        wsum[0] = m
+        wsum[1] = s1
+        wsum[2] = s2
+    return m
+
+
+@njit(cache=True, _nrt=False)
+def _work_size(nchan, npar, ncomp):
+    """Sizes (float, int64) of the work buffers one block of fits carves its arrays from
+    (layout in :func:`_fit_range`)."""
+    nf = (17 * nchan + (nchan + 2) + 6 * (nchan + 3) + 4 * npar * nchan + npar * (nchan + 2) + 6 * npar * npar
+          + 7 * npar + 3)
+    ni = 2 * nchan + 1 + (nchan + 3) + 2 * ncomp + 7 * npar
+    return nf, ni
+
+
+@njit(cache=True, _nrt=False, error_model="numpy")
+def _fit_range(s0, s1, single, data, noise, p0, lo, hi, prestat, cen, edg, cw, cax, cia, csc, civ, cis, nline,
+               bkind, s_instr2, resp, corr, rho1, rho2, floor, max_iter, tol,
+               params, cov, chi2, nfit, neff, status, niter, wf, wi):
+    """Fit spectra s0 .. s1-1; the work arrays are views of the caller's buffers ``wf`` /
+    ``wi`` (sizes from :func:`_work_size`), carved once per block."""
+    nchan = data.shape[1]
+    npar = p0.shape[1]
+    ncomp = cax.shape[0]
+    mid = 0.5 * (nchan - 1)
+    n1 = nchan + 3
+    nj = npar * nchan
+    n2 = npar * npar
+    vecs = wf[:17 * nchan].reshape((17, nchan))
+    y, yz, wts, L0, L1, L2, Z0, Z1, Z2 = vecs[0], vecs[1], vecs[2], vecs[3], vecs[4], vecs[5], vecs[6], vecs[7], vecs[8]
+    mod, modt, r, rw, rwt = vecs[9], vecs[10], vecs[11], vecs[12], vecs[13]
+    o = 17 * nchan
+    mext = wf[o:o + nchan + 2]
+    o += nchan + 2
+    edges = wf[o:o + 6 * n1].reshape((6, n1))
+    Phi, phi, zb = edges[0], edges[1], edges[2]
+    W = edges[3:6]
+    o += 6 * n1
+    jacs = wf[o:o + 4 * nj].reshape((4, npar, nchan))
+    jac, jact, Jw, Jwt = jacs[0], jacs[1], jacs[2], jacs[3]
+    o += 4 * nj
+    jext = wf[o:o + npar * (nchan + 2)].reshape((npar, nchan + 2))
+    o += npar * (nchan + 2)
+    mats = wf[o:o + 6 * n2].reshape((6, npar, npar))
+    A, At, S, St, M, cv = mats[0], mats[1], mats[2], mats[3], mats[4], mats[5]
+    o += 6 * n2
+    pv = wf[o:o + 7 * npar].reshape((7, npar))
+    g, gt, pt, D, x, dl, p = pv[0], pv[1], pv[2], pv[3], pv[4], pv[5], pv[6]
+    o += 7 * npar
+    wsum = wf[o:o + 3]
+    o += 3
+    idx = wi[0:nchan]
+    pos = wi[nchan:2 * nchan + 1]
+    q = 2 * nchan + 1
+    bits = wi[q:q + n1]
+    q += n1
+    crng = wi[q:q + 2 * ncomp].reshape((ncomp, 2))
+    q += 2 * ncomp
+    iv = wi[q:q + 7 * npar].reshape((7, npar))
+    sel, rlo, rhi, rlot, rhit, qlo, qhi = iv[0], iv[1], iv[2], iv[3], iv[4], iv[5], iv[6]
+    q += 7 * npar
+    if o > wf.shape[0] or q > wi.shape[0]:
+        raise ValueError("linefit internal error: work buffers too small")
+    for s in range(s0, s1):
+        for k in range(npar):
+            params[s, k] = np.nan
+            for l in range(npar):
+                cov[s, k, l] = np.nan
+        chi2[s] = np.nan
+        niter[s] = 0
+        m = _load_spectrum(data[s], y, yz, wts, wsum, mid)
+        if not single:
+            # compressed (finite-channel) indices for the generic path
+            m = 0
+            for c in range(nchan):
+                pos[c] = m  # compressed index of the first finite channel >= c
+                idx[m] = c
+                m += 1 if wts[c] > 0.0 else 0
+            pos[nchan] = m
+        nfit[s] = m
+        neff[s] = m
+        if prestat[s] != 0:
+            status[s] = prestat[s]
+            continue
+        okp = True
+        for k in range(npar):
+            p[k] = min(max(p0[s, k], lo[s, k]), hi[s, k])
+            if not np.isfinite(p[k]):
+                okp = False
+        if not okp:
+            status[s] = _FAILED
+            continue
+        if corr:
+            if not _band_chol(idx, m, rho1, rho2, floor, L0, L1, L2):
+                status[s] = _FAILED
+                continue
+            # E[chi2] of pure noise under the floored correlation model is
+            # tr(R'^-1 R) = (m - floor tr(R'^-1)) / (1 - floor), slightly below m
+            if floor > 0.0:
+                neff[s] = (m - floor * _band_inv_trace(m, L0, L1, L2, Z0, Z1, Z2)) / (1.0 - floor)
+        st, it, c2 = _fit_one(single, y, yz, wts, wsum, m, neff[s], idx, pos, noise[s], p, lo[s], hi[s],
+                              cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_instr2, resp, corr,
+                              L0, L1, L2, max_iter, tol, cv,
+                              mod, jac, mext, jext, Phi, phi, zb, r, rw, Jw, A, g, S,
+                              pt, modt, jact, rwt, Jwt, At, gt, St, D, M, x, dl, sel,
+                              crng, rlo, rhi, rlot, rhit, qlo, qhi, W, bits)
+        status[s] = st
+        niter[s] = it
+        chi2[s] = c2
+        for k in range(npar):
+            params[s, k] = p[k]
+            for l in range(npar):
+                cov[s, k, l] = cv[k, l]
+
+
+
 @njit(parallel=True, cache=True)
 def fit_kernel(data, noise, p0, lo, hi, prestat, cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind,
                s_instr2, resp, rho1, rho2, floor, max_iter, tol,
                params, cov, chi2, nfit, neff, status, niter):
-    """Fit every spectrum whose ``prestat`` is 0; others keep ``prestat`` and NaN outputs."""
+    """Fit every spectrum whose ``prestat`` is 0; others keep ``prestat`` and NaN outputs.
+
+    The parallel loop runs over blocks of _BLOCK spectra; each block allocates two zeroed
+    work buffers and hands them to :func:`_fit_range`, which carves its arrays from them and
+    is compiled without reference counting (the atomic increments numba otherwise emits
+    around every array passed to a call cost more than a model evaluation)."""
     nspec, nchan = data.shape
     npar = p0.shape[1]
     corr = rho1 != 0.0 or rho2 != 0.0
+    # one component with white noise and top-hat or sampled channels: fused evaluation +
+    # Newton steps (_eval_single); everything else takes the generic path
+    single = cax.shape[0] == 1 and not corr and resp != RESP_HANNING
     nblk = (nspec + _BLOCK - 1) // _BLOCK
+    nf, ni = _work_size(nchan, npar, cax.shape[0])
     for b in prange(nblk):
-        y = np.empty(nchan)
-        idx = np.empty(nchan, dtype=np.int64)
-        L0 = np.empty(nchan)
-        L1 = np.empty(nchan)
-        L2 = np.empty(nchan)
-        mod = np.empty(nchan)
-        modt = np.empty(nchan)
-        jac = np.zeros((npar, nchan))
-        jact = np.zeros((npar, nchan))
-        mext = np.empty(nchan + 2)
-        jext = np.empty((npar, nchan + 2))
-        Phi = np.empty(nchan + 3)
-        phi = np.empty(nchan + 3)
-        zb = np.empty(nchan + 3)
-        r = np.empty(nchan)
-        rw = np.empty(nchan)
-        rwt = np.empty(nchan)
-        Jw = np.empty((npar, nchan))
-        Jwt = np.empty((npar, nchan))
-        A = np.empty((npar, npar))
-        At = np.empty((npar, npar))
-        g = np.empty(npar)
-        gt = np.empty(npar)
-        p = np.empty(npar)
-        pt = np.empty(npar)
-        D = np.empty(npar)
-        M = np.empty((npar, npar))
-        x = np.empty(npar)
-        dl = np.empty(npar)
-        sel = np.empty(npar, dtype=np.int64)
-        cv = np.empty((npar, npar))
-        Z0 = np.empty(nchan)
-        Z1 = np.empty(nchan)
-        Z2 = np.empty(nchan)
-        pos = np.empty(nchan + 1, dtype=np.int64)
-        crng = np.empty((cax.shape[0], 2), dtype=np.int64)
-        rlo = np.empty(npar, dtype=np.int64)
-        rhi = np.empty(npar, dtype=np.int64)
-        rlot = np.empty(npar, dtype=np.int64)
-        rhit = np.empty(npar, dtype=np.int64)
-        qlo = np.empty(npar, dtype=np.int64)
-        qhi = np.empty(npar, dtype=np.int64)
-        for s in range(b * _BLOCK, min(nspec, (b + 1) * _BLOCK)):
-            for k in range(npar):
-                params[s, k] = np.nan
-                for l in range(npar):
-                    cov[s, k, l] = np.nan
-            chi2[s] = np.nan
-            niter[s] = 0
-            m = 0
-            for c in range(nchan):
-                y[c] = data[s, c]
-                pos[c] = m  # compressed index of the first finite channel >= c
-                if np.isfinite(y[c]):
-                    idx[m] = c
-                    m += 1
-            pos[nchan] = m
-            nfit[s] = m
-            neff[s] = m
-            if prestat[s] != 0:
-                status[s] = prestat[s]
-                continue
-            okp = True
-            for k in range(npar):
-                p[k] = min(max(p0[s, k], lo[s, k]), hi[s, k])
-                if not np.isfinite(p[k]):
-                    okp = False
-            if not okp:
-                status[s] = _FAILED
-                continue
-            if corr:
-                if not _band_chol(idx, m, rho1, rho2, floor, L0, L1, L2):
-                    status[s] = _FAILED
-                    continue
-                # E[chi2] of pure noise under the floored correlation model is
-                # tr(R'^-1 R) = (m - floor tr(R'^-1)) / (1 - floor), slightly below m
-                if floor > 0.0:
-                    neff[s] = (m - floor * _band_inv_trace(m, L0, L1, L2, Z0, Z1, Z2)) / (1.0 - floor)
-            st, it, c2 = _fit_one(y, m, neff[s], idx, pos, noise[s], p, lo[s], hi[s], cen, edg, cw, cax, cia, csc,
-                                  civ, cis, nline, bkind, s_instr2, resp, corr, L0, L1, L2, max_iter, tol, cv,
-                                  mod, jac, mext, jext, Phi, phi, zb, r, rw, Jw, A, g,
-                                  pt, modt, jact, rwt, Jwt, At, gt, D, M, x, dl, sel,
-                                  crng, rlo, rhi, rlot, rhit, qlo, qhi)
-            status[s] = st
-            niter[s] = it
-            chi2[s] = c2
-            for k in range(npar):
-                params[s, k] = p[k]
-                for l in range(npar):
-                    cov[s, k, l] = cv[k, l]
+        _fit_range(b * _BLOCK, min(nspec, (b + 1) * _BLOCK), single, data, noise, p0, lo, hi, prestat,
+                   cen, edg, cw, cax, cia, csc, civ, cis, nline, bkind, s_instr2, resp, corr, rho1, rho2, floor,
+                   max_iter, tol, params, cov, chi2, nfit, neff, status, niter,
+                   np.zeros(nf), np.zeros(ni, dtype=np.int64))
 
 
 # ----------------------------------------------------------------------------- initial guesses
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _nearest_channel(row, v):
     """Index of the channel centre nearest to v on a monotonic axis; -1 if outside the band."""
     n = row.shape[0]
@@ -729,7 +1205,7 @@ def _nearest_channel(row, v):
     return a if abs(row[a] - v) <= abs(row[b] - v) else b
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _window_sigma(res, row, c0, thr, peak):
     """Truncation-corrected second moment (km/s^2) of the contiguous run of channels around
     c0 above ``thr``; NaN channels are stepped over.  Returns -1 if fewer than 2 channels."""
@@ -766,43 +1242,64 @@ def _window_sigma(res, row, c0, thr, peak):
     return m2, m1
 
 
-@njit(cache=True)
-def _median_inplace(a, n):
-    """Median of a[:n], reordering a[:n] (Wirth's selection algorithm; O(n) on average)."""
-    k = n // 2
-    lo = 0
-    hi = n - 1
-    while lo < hi:
-        x = a[k]
-        i = lo
-        j = hi
-        while True:
-            while a[i] < x:
-                i += 1
-            while x < a[j]:
-                j -= 1
-            if i <= j:
-                a[i], a[j] = a[j], a[i]
-                i += 1
-                j -= 1
-            if i > j:
-                break
-        if j < k:
-            lo = i
-        if k < i:
-            hi = j
-    med = a[k]
-    if n % 2 == 0:
-        # the lower middle value is the largest of the elements left of k
-        lower = a[0]
-        for t in range(1, k):
-            if a[t] > lower:
-                lower = a[t]
-        med = 0.5 * (med + lower)
-    return med
+@njit(cache=True, _nrt=False, fastmath={"nsz", "contract"}, error_model="numpy")
+def _count_below(a, n, t):
+    """Number of a[:n] below t (a vectorised loop)."""
+    c = 0
+    for i in range(n):
+        c += 1 if a[i] < t else 0
+    return c
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False, fastmath={"nsz", "contract"}, error_model="numpy")
+def _median(a, n, buf):
+    """Exact median of the finite values a[:n] (``a`` is not modified; ``buf`` is scratch, >= n).
+
+    Bisection on the value: [lo, hi] is narrowed, with branch-free counts of the values below
+    the midpoint, until it holds at most 8 values but still both middle ranks; those are
+    then sorted.  About 3x faster than a selection algorithm for ~100 values, whose
+    data-dependent branches mispredict."""
+    klo = (n - 1) // 2
+    khi = n // 2
+    lo = a[0]
+    hi = a[0]
+    for i in range(n):
+        lo = min(lo, a[i])
+        hi = max(hi, a[i])
+    nlo = 0  # values below lo
+    nin = n  # values in [lo, hi]
+    for _ in range(80):
+        if nin <= 8:
+            break
+        t = 0.5 * (lo + hi)
+        if not (lo < t and t < hi):
+            break  # lo and hi are neighbouring doubles
+        c = _count_below(a, n, t)
+        if c > khi:
+            nin = c - nlo
+            hi = np.nextafter(t, -np.inf)  # [lo, hi] = [lo, t)
+        elif c <= klo:
+            nin -= c - nlo
+            nlo = c
+            lo = t
+        else:
+            break  # t separates the two middle ranks: both are in [lo, hi]
+    m = 0
+    for i in range(n):
+        x = a[i]
+        buf[m] = x
+        m += 1 if (x >= lo and x <= hi) else 0
+    for i in range(1, m):
+        x = buf[i]
+        j = i - 1
+        while j >= 0 and buf[j] > x:
+            buf[j + 1] = buf[j]
+            j -= 1
+        buf[j + 1] = x
+    return 0.5 * (buf[klo - nlo] + buf[khi - nlo])
+
+
+@njit(cache=True, _nrt=False)
 def _log_parabola(res, row, c0, thr):
     """Gaussian through the contiguous run of channels around c0 above ``thr`` by a weighted
     least-squares parabola fitted to ln(data), weights data^2 (Guo 2011, IEEE Signal
@@ -858,11 +1355,14 @@ def _log_parabola(res, row, c0, thr):
     return np.isfinite(peak) and np.isfinite(var), peak, x0 + xc * sc, var
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _smooth3(x, out):
-    """[1/4, 1/2, 1/4] smoothing that skips NaN channels (weights renormalised)."""
+    """[1/4, 1/2, 1/4] smoothing that skips NaN channels (weights renormalised).
+
+    Written with selects instead of branches (same sums in the same order) so that the
+    interior loop vectorises."""
     n = x.shape[0]
-    for c in range(n):
+    for c in (0, n - 1):
         s = 0.0
         w = 0.0
         if np.isfinite(x[c]):
@@ -875,6 +1375,35 @@ def _smooth3(x, out):
             s += 0.25 * x[c + 1]
             w += 0.25
         out[c] = s / w if w > 0 else np.nan
+    xl = x[:n - 2]
+    xc = x[1:n - 1]
+    xr = x[2:]
+    oc = out[1:n - 1]
+    for i in range(n - 2):
+        a = xl[i]
+        b = xc[i]
+        d = xr[i]
+        fa = np.isfinite(a)
+        fb = np.isfinite(b)
+        fd = np.isfinite(d)
+        s = (0.5 * b if fb else 0.0) + (0.25 * a if fa else 0.0) + (0.25 * d if fd else 0.0)
+        w = (0.5 if fb else 0.0) + (0.25 if fa else 0.0) + (0.25 if fd else 0.0)
+        oc[i] = s / w if w > 0 else np.nan
+
+
+@njit(cache=True, _nrt=False)
+def _count_groups(civ):
+    """Number of distinct velocity parameters (a function, so that numba types the count as
+    int64 rather than compiling the guess code a second time for a literal 0)."""
+    n = 0
+    for j in range(civ.shape[0]):
+        first = True
+        for jj in range(j):
+            if civ[jj] == civ[j]:
+                first = False
+        if first:
+            n += 1
+    return n
 
 
 @njit(parallel=True, cache=True)
@@ -883,32 +1412,29 @@ def guess_kernel(data, noise, cen, cwidth, cax, cia, csc, civ, cis, roles, nline
     """Initial parameters from peaks and windowed moments (see ``initial_guess``)."""
     nspec, nchan = data.shape
     npar = p0.shape[1]
-    ncomp = cax.shape[0]
-    ngroups = 0  # number of distinct velocity parameters
-    for j in range(ncomp):
-        first = True
-        for jj in range(j):
-            if civ[jj] == civ[j]:
-                first = False
-        if first:
-            ngroups += 1
+    ngroups = _count_groups(civ)
     nblk = (nspec + _BLOCK - 1) // _BLOCK
     for b in prange(nblk):
-        y = np.empty(nchan)
-        res = np.empty(nchan)
-        sm = np.empty(nchan)
-        fin = np.empty(nchan)
-        tfin = np.empty(nchan)
-        done_v = np.zeros(npar, dtype=np.bool_)
-        amp_scale = np.zeros(npar)  # scale of the component that set each amplitude guess
-        sig_src = np.zeros(npar)  # brightness of the component that set each sigma guess
-        for s in range(b * _BLOCK, min(nspec, (b + 1) * _BLOCK)):
-            _guess_one(s, data, noise, cen, cwidth, cax, cia, csc, civ, cis, roles, nline, bkind, s_instr2,
-                       resp_var, lo, hi, split_below, p0, peak_snr, nfinite, ngroups,
-                       y, res, sm, fin, tfin, done_v, amp_scale, sig_src)
+        # work arrays once per block; the per-spectrum loop runs without reference counting
+        _guess_range(b * _BLOCK, min(nspec, (b + 1) * _BLOCK), data, noise, cen, cwidth, cax, cia, csc, civ,
+                     cis, roles, nline, bkind, s_instr2, resp_var, lo, hi, split_below, p0, peak_snr, nfinite,
+                     ngroups, np.empty(nchan), np.empty(nchan), np.empty(nchan), np.empty(nchan),
+                     np.empty(nchan), np.zeros(npar, dtype=np.bool_), np.zeros(npar), np.zeros(npar))
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
+def _guess_range(s0, s1, data, noise, cen, cwidth, cax, cia, csc, civ, cis, roles, nline, bkind, s_instr2,
+                 resp_var, lo, hi, split_below, p0, peak_snr, nfinite, ngroups,
+                 y, res, sm, fin, tfin, done_v, amp_scale, sig_src):
+    """Initial guesses of spectra s0 .. s1-1 (``amp_scale``: scale of the component that set
+    each amplitude guess; ``sig_src``: brightness of the component that set each sigma guess)."""
+    for s in range(s0, s1):
+        _guess_one(s, data, noise, cen, cwidth, cax, cia, csc, civ, cis, roles, nline, bkind, s_instr2,
+                   resp_var, lo, hi, split_below, p0, peak_snr, nfinite, ngroups,
+                   y, res, sm, fin, tfin, done_v, amp_scale, sig_src)
+
+
+@njit(cache=True, _nrt=False)
 def _guess_one(s, data, noise, cen, cwidth, cax, cia, csc, civ, cis, roles, nline, bkind, s_instr2,
                resp_var, lo, hi, split_below, p0, peak_snr, nfinite, ngroups,
                y, res, sm, fin, tfin, done_v, amp_scale, sig_src):
@@ -921,12 +1447,12 @@ def _guess_one(s, data, noise, cen, cwidth, cax, cia, csc, civ, cis, roles, nlin
         amp_scale[k] = 0.0
         sig_src[k] = 0.0
     m = 0
-    for c in range(nchan):
-        y[c] = data[s, c]
-        if np.isfinite(y[c]):
-            fin[m] = y[c]
-            tfin[m] = c - 0.5 * (nchan - 1)
-            m += 1
+    for c in range(nchan):  # branch-free compaction of the finite channels
+        yc = data[s, c]
+        y[c] = yc
+        fin[m] = yc
+        tfin[m] = c - 0.5 * (nchan - 1)
+        m += 1 if np.isfinite(yc) else 0
     nfinite[s] = m
     for k in range(npar):
         p0[s, k] = np.nan
@@ -938,13 +1464,13 @@ def _guess_one(s, data, noise, cen, cwidth, cax, cia, csc, civ, cis, roles, nlin
     b0 = 0.0
     b1 = 0.0
     if bkind == 1:
-        b0 = _median_inplace(fin, m)  # fin is scratch: reordering it is fine
+        b0 = _median(fin, m, res)  # res is filled only after the baseline
     elif bkind == 2:
         q = max(1, m // 4)
         tl = 0.5 * (tfin[0] + tfin[q - 1])
         tr = 0.5 * (tfin[m - q] + tfin[m - 1])
-        right = _median_inplace(fin[m - q:m], q)
-        left = _median_inplace(fin[:q], q)
+        right = _median(fin[m - q:m], q, res)
+        left = _median(fin[:q], q, res)
         if tr > tl:
             b1 = (right - left) / (tr - tl)
         b0 = left - b1 * tl
@@ -954,9 +1480,9 @@ def _guess_one(s, data, noise, cen, cwidth, cax, cia, csc, civ, cis, roles, nlin
         p0[s, nline + 1] = b1
     pk = -np.inf
     for c in range(nchan):
-        res[c] = y[c] - b0 - b1 * (c - 0.5 * (nchan - 1))
-        if np.isfinite(res[c]) and res[c] > pk:
-            pk = res[c]
+        rc = y[c] - b0 - b1 * (c - 0.5 * (nchan - 1))
+        res[c] = rc
+        pk = max(pk, rc if np.isfinite(rc) else -np.inf)
     peak_snr[s] = pk / nz
     first_v = -1
     group = 0
@@ -975,7 +1501,16 @@ def _guess_one(s, data, noise, cen, cwidth, cax, cia, csc, civ, cis, roles, nlin
         # have the largest summed residual (for one line simply its peak channel)
         best = -np.inf
         cbest = nchan // 2
-        for c in range(nchan):
+        nshare = 0
+        for jj in range(ncomp):
+            nshare += 1 if civ[jj] == kv else 0
+        if nshare == 1:
+            for c in range(nchan):
+                sc = sm[c] if np.isfinite(sm[c]) else 0.0
+                if sc > best:
+                    best = sc
+                    cbest = c
+        for c in range(nchan if nshare > 1 else 0):
             v = row[c]
             sc = 0.0
             for jj in range(ncomp):
