@@ -18,6 +18,7 @@ from ..errors import KinemapError
 __all__ = ["read_rows", "block_rows", "map_blocks", "DEFAULT_MAX_MEMORY"]
 
 DEFAULT_MAX_MEMORY = 1 << 30  # 1 GiB working set unless the caller says otherwise
+TASKS_PER_WORKER = 4  # on a cluster, blocks are cut so each worker gets at least this many
 
 
 def block_rows(shape, *, max_memory: int = DEFAULT_MAX_MEMORY, factor: float = 6.0) -> int:
@@ -74,6 +75,10 @@ def map_blocks(cube, func, *, outputs: dict, max_memory: int = DEFAULT_MAX_MEMOR
     """
     nchan, ny, nx = cube.shape
     rows = block_rows(cube.shape, max_memory=max_memory, factor=factor)
+    if client is not None:
+        # at least a few tasks per worker, or one big block would keep the others idle
+        nworkers = max(1, len(client.nthreads()))
+        rows = max(1, min(rows, -(-ny // (TASKS_PER_WORKER * nworkers))))
     out = {k: np.full(tuple(lead) + (ny, nx), fill, dtype=dt) for k, (lead, dt, fill) in outputs.items()}
     bar = None
     if progress:
