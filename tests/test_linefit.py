@@ -11,7 +11,6 @@ Outside references used (named again beside each check):
 from __future__ import annotations
 
 import math
-from pathlib import Path
 
 import astropy.units as u
 import numpy as np
@@ -34,8 +33,9 @@ from kinemap.linefit import (
 from kinemap.linefit import _kernels as K
 from kinemap.linefit._axes import prepare_axes
 from kinemap.status import Status
+from conftest import REAL_CUBE
 
-CUBE = Path(__file__).resolve().parents[1] / ".." / "shared" / "data" / "l1448_13co.fits"
+CUBE = REAL_CUBE  # located by conftest (KINEMAP_TEST_DATA or the shared folder)
 
 
 # ----------------------------------------------------------------------------- helpers

@@ -1,12 +1,12 @@
 """Line-width budget on the real 13CO cube of a molecular cloud (shared/data/l1448_13co.fits)."""
 import warnings
-from pathlib import Path
 
 import astropy.units as u
 import numpy as np
 import pytest
 
 from kinemap.errors import KinemapError
+from conftest import REAL_CUBE
 from kinemap.status import Status
 from kinemap.widths import (
     channel_dispersion,
@@ -17,7 +17,7 @@ from kinemap.widths import (
     width_budget,
 )
 
-CUBE = Path(__file__).resolve().parents[2] / "shared" / "data" / "l1448_13co.fits"
+CUBE = REAL_CUBE  # located by conftest (KINEMAP_TEST_DATA or the shared folder)
 pytestmark = pytest.mark.skipif(not CUBE.exists(), reason=f"real test cube not found at {CUBE}")
 KMS = u.km / u.s
 
