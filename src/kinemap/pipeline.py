@@ -295,14 +295,14 @@ def _run_stages(cfg, client) -> RunState:
 
 def _execution(cfg, state) -> dict:
     """How the run was executed, for the manifest."""
-    from .cube._blocks import block_rows
+    from .cube._blocks import task_rows
 
     info = {"scheduler": cfg["run"]["scheduler"] or ("local cluster" if cfg["run"]["workers"]
                                                       else "in-process threads"),
             "workers": cfg["run"]["workers"], "max_memory_bytes": state.max_memory}
     if state.cube is not None:
-        info["block_rows"] = block_rows(state.cube.shape, max_memory=state.max_memory,
-                                        factor=2.5)
+        info["block_rows"] = task_rows(state.cube.shape, max_memory=state.max_memory,
+                                       factor=2.5, client=state.client)
         info["cube_shape"] = list(state.cube.shape)
     return info
 

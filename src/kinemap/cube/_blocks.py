@@ -15,7 +15,7 @@ from tqdm.auto import tqdm
 
 from ..errors import KinemapError
 
-__all__ = ["read_rows", "block_rows", "map_blocks", "DEFAULT_MAX_MEMORY"]
+__all__ = ["read_rows", "block_rows", "task_rows", "map_blocks", "DEFAULT_MAX_MEMORY"]
 
 DEFAULT_MAX_MEMORY = 1 << 30  # 1 GiB working set unless the caller says otherwise
 TASKS_PER_WORKER = 4  # on a cluster, blocks are cut so each worker gets at least this many
@@ -40,6 +40,16 @@ def read_rows(cube, ys: slice, *, dtype=None) -> np.ndarray:
     single = raw.dtype.kind == "f" and raw.dtype.itemsize == 4  # any byte order
     dt = dtype or (np.float32 if single else np.float64)
     return np.ascontiguousarray(np.asarray(raw), dtype=dt)
+
+
+def task_rows(shape, *, max_memory: int, factor: float, client=None) -> int:
+    """Rows per block as :func:`map_blocks` cuts them (capped on a cluster so each worker
+    gets at least ``TASKS_PER_WORKER`` blocks; one big block would keep the others idle)."""
+    rows = block_rows(shape, max_memory=max_memory, factor=factor)
+    if client is not None:
+        nworkers = max(1, len(client.nthreads()))
+        rows = max(1, min(rows, -(-shape[1] // (TASKS_PER_WORKER * nworkers))))
+    return rows
 
 
 def _row_slices(ny, rows):
@@ -74,11 +84,7 @@ def map_blocks(cube, func, *, outputs: dict, max_memory: int = DEFAULT_MAX_MEMOR
         Run one task per block on the cluster.
     """
     nchan, ny, nx = cube.shape
-    rows = block_rows(cube.shape, max_memory=max_memory, factor=factor)
-    if client is not None:
-        # at least a few tasks per worker, or one big block would keep the others idle
-        nworkers = max(1, len(client.nthreads()))
-        rows = max(1, min(rows, -(-ny // (TASKS_PER_WORKER * nworkers))))
+    rows = task_rows(cube.shape, max_memory=max_memory, factor=factor, client=client)
     out = {k: np.full(tuple(lead) + (ny, nx), fill, dtype=dt) for k, (lead, dt, fill) in outputs.items()}
     bar = None
     if progress:
