@@ -25,12 +25,17 @@ __all__ = ["run_demo", "SCENARIOS", "demo_cube_dir"]
 
 
 def demo_cube_dir() -> Path:
-    """Where the generated demo cubes are cached (``KINEMAP_CACHE`` or ~/.cache/kinemap)."""
-    from . import __version__
+    """Where the generated demo cubes are cached (``KINEMAP_CACHE`` or ~/.cache/kinemap),
+    one folder per version of the generator's code."""
+    import hashlib
+
+    from . import demo_data
 
     base = os.environ.get("KINEMAP_CACHE") or os.path.join(
         os.environ.get("XDG_CACHE_HOME") or os.path.join(Path.home(), ".cache"), "kinemap")
-    path = Path(base) / f"demo-cubes-{__version__}"
+    # keyed on the generator's source, so a changed generator never reuses stale cubes
+    key = hashlib.sha256(Path(demo_data.__file__).read_bytes()).hexdigest()[:12]
+    path = Path(base) / f"demo-cubes-{key}"
     try:
         path.mkdir(parents=True, exist_ok=True)
         probe = path / ".write-test"
