@@ -49,8 +49,9 @@ def _clipped_sigma(x, n, clip, correction):
 
 
 @numba.njit(parallel=True, cache=True, nogil=True)
-def second_difference_noise(data, factor, clip, correction, out, nused):
-    """out[p] = clipped sigma of x[i-1] - 2 x[i] + x[i+1] over finite triples, / factor."""
+def second_difference_noise(data, factor, clip, correction, out, nused, nfinite):
+    """out[p] = clipped sigma of x[i-1] - 2 x[i] + x[i+1] over finite triples, / factor;
+    nfinite[p] = finite channels of the spectrum."""
     nchan, npix = data.shape
     ntile = (npix + TILE - 1) // TILE
     for t in numba.prange(ntile):
@@ -63,6 +64,11 @@ def second_difference_noise(data, factor, clip, correction, out, nused):
         buf = np.empty(max(nchan - 2, 1))
         for q in range(p1 - p0):
             x = tile[q]
+            nf = 0
+            for c in range(nchan):
+                if np.isfinite(x[c]):
+                    nf += 1
+            nfinite[p0 + q] = nf
             n = 0
             for c in range(1, nchan - 1):
                 d = x[c - 1] - 2.0 * x[c] + x[c + 1]
@@ -75,8 +81,9 @@ def second_difference_noise(data, factor, clip, correction, out, nused):
 
 
 @numba.njit(parallel=True, cache=True, nogil=True)
-def channel_noise(data, keep, clip, correction, out, nused):
-    """out[p] = clipped sigma of the finite values in channels where keep is True."""
+def channel_noise(data, keep, clip, correction, out, nused, nfinite):
+    """out[p] = clipped sigma of the finite values in channels where keep is True;
+    nfinite[p] = finite channels of the spectrum (all channels, kept or not)."""
     nchan, npix = data.shape
     idx = np.flatnonzero(keep)
     nk = idx.shape[0]
@@ -90,6 +97,11 @@ def channel_noise(data, keep, clip, correction, out, nused):
                 tile[q, j] = data[idx[j], p0 + q]
         buf = np.empty(max(nk, 1))
         for q in range(p1 - p0):
+            nf = 0
+            for c in range(nchan):
+                if np.isfinite(data[c, p0 + q]):
+                    nf += 1
+            nfinite[p0 + q] = nf
             n = 0
             for j in range(nk):
                 x = tile[q, j]

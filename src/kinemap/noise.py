@@ -97,13 +97,13 @@ def _noise_block(block, *, fixed, factor_2nd, clip, correction):
     flat = block.reshape(nchan, -1)
     s = np.empty(flat.shape[1])
     n = np.empty(flat.shape[1], dtype=np.int64)
+    nf = np.empty(flat.shape[1], dtype=np.int64)
     if fixed is None:
-        second_difference_noise(flat, factor_2nd, clip, correction, s, n)
+        second_difference_noise(flat, factor_2nd, clip, correction, s, n, nf)
     else:
-        channel_noise(flat, fixed, clip, correction, s, n)
-    finite = np.isfinite(flat).any(axis=0)
+        channel_noise(flat, fixed, clip, correction, s, n, nf)
     return {"sigma": s.reshape(rows, nx), "nused": n.reshape(rows, nx),
-            "finite": finite.reshape(rows, nx)}
+            "finite": (nf > 0).reshape(rows, nx)}
 
 
 def estimate_noise(cube, *, line_free=None, channel_response: str = "tophat",

@@ -16,6 +16,8 @@ import numpy as np
 
 __all__ = ["FileSource"]
 
+_NATIVE = "<" if np.little_endian else ">"
+
 
 @dataclass(frozen=True)
 class FileSource:
@@ -80,7 +82,21 @@ class FileSource:
             rowbytes = nraw_x * src.itemsize
             out = np.empty((c1 - c0, y1 - y0, x1 - x0), dtype=out_dtype)
             fd = os.open(self.path, os.O_RDONLY)
+            direct = (not scaled and (x0, x1) == (0, nraw_x)
+                      and np.dtype(out_dtype).itemsize == src.itemsize and hasattr(os, "preadv"))
             try:
+                if direct:
+                    # read each channel's rows straight into the output and swap the bytes
+                    # in place: no temporary buffer, no second copy
+                    for k, c in enumerate(range(c0, c1)):
+                        start = self.offset + (c * nraw_y + y0) * rowbytes
+                        view = memoryview(out[k]).cast("B")
+                        got = os.preadv(fd, [view], start)
+                        if got != view.nbytes:
+                            raise OSError(f"short read from {self.path}")
+                    if src.byteorder not in ("=", "|") and src.byteorder != _NATIVE:
+                        out.view(out.dtype.newbyteorder()).byteswap(inplace=True)
+                    return out
                 for k, c in enumerate(range(c0, c1)):
                     start = self.offset + (c * nraw_y + y0) * rowbytes
                     buf = os.pread(fd, (y1 - y0) * rowbytes, start)
