@@ -49,9 +49,11 @@ def _clipped_sigma(x, n, clip, correction):
 
 
 @numba.njit(parallel=True, cache=True, nogil=True)
-def second_difference_noise(data, factor, clip, correction, out, nused, nfinite):
-    """out[p] = clipped sigma of x[i-1] - 2 x[i] + x[i+1] over finite triples, / factor;
-    nfinite[p] = finite channels of the spectrum."""
+def noise_kernel(data, second_differences, keep, factor, clip, correction, out, nused, nfinite):
+    """Per spectrum (column of ``data``): the clipped sigma of its second differences
+    x[i-1] - 2 x[i] + x[i+1] over finite triples (``second_differences``), or of its finite
+    values in the channels where ``keep`` is True, divided by ``factor``; nfinite[p] counts
+    the finite channels of the spectrum."""
     nchan, npix = data.shape
     ntile = (npix + TILE - 1) // TILE
     for t in numba.prange(ntile):
@@ -61,7 +63,7 @@ def second_difference_noise(data, factor, clip, correction, out, nused, nfinite)
         for c in range(nchan):
             for q in range(p1 - p0):
                 tile[q, c] = data[c, p0 + q]
-        buf = np.empty(max(nchan - 2, 1))
+        buf = np.empty(max(nchan, 1))
         for q in range(p1 - p0):
             x = tile[q]
             nf = 0
@@ -70,44 +72,17 @@ def second_difference_noise(data, factor, clip, correction, out, nused, nfinite)
                     nf += 1
             nfinite[p0 + q] = nf
             n = 0
-            for c in range(1, nchan - 1):
-                d = x[c - 1] - 2.0 * x[c] + x[c + 1]
-                if np.isfinite(d):
-                    buf[n] = d
-                    n += 1
+            if second_differences:
+                for c in range(1, nchan - 1):
+                    d = x[c - 1] - 2.0 * x[c] + x[c + 1]
+                    if np.isfinite(d):
+                        buf[n] = d
+                        n += 1
+            else:
+                for c in range(nchan):
+                    if keep[c] and np.isfinite(x[c]):
+                        buf[n] = x[c]
+                        n += 1
             s, kept = _clipped_sigma(buf, n, clip, correction)
             out[p0 + q] = s / factor if s > 0 else np.nan
-            nused[p0 + q] = kept
-
-
-@numba.njit(parallel=True, cache=True, nogil=True)
-def channel_noise(data, keep, clip, correction, out, nused, nfinite):
-    """out[p] = clipped sigma of the finite values in channels where keep is True;
-    nfinite[p] = finite channels of the spectrum (all channels, kept or not)."""
-    nchan, npix = data.shape
-    idx = np.flatnonzero(keep)
-    nk = idx.shape[0]
-    ntile = (npix + TILE - 1) // TILE
-    for t in numba.prange(ntile):
-        p0 = t * TILE
-        p1 = min(npix, p0 + TILE)
-        tile = np.empty((p1 - p0, nk))
-        for j in range(nk):
-            for q in range(p1 - p0):
-                tile[q, j] = data[idx[j], p0 + q]
-        buf = np.empty(max(nk, 1))
-        for q in range(p1 - p0):
-            nf = 0
-            for c in range(nchan):
-                if np.isfinite(data[c, p0 + q]):
-                    nf += 1
-            nfinite[p0 + q] = nf
-            n = 0
-            for j in range(nk):
-                x = tile[q, j]
-                if np.isfinite(x):
-                    buf[n] = x
-                    n += 1
-            s, kept = _clipped_sigma(buf, n, clip, correction)
-            out[p0 + q] = s if s > 0 else np.nan
             nused[p0 + q] = kept

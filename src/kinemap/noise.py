@@ -22,7 +22,7 @@ import numpy as np
 
 from ._units import KMS, to_value
 from .cube._blocks import DEFAULT_MAX_MEMORY, map_blocks
-from ._noise_kernel import channel_noise, second_difference_noise
+from ._noise_kernel import noise_kernel
 from .errors import KinemapError, NoiseWarning
 from .response import noise_correlation, variance_of_sum
 
@@ -98,10 +98,9 @@ def _noise_block(block, *, fixed, factor_2nd, clip, correction):
     s = np.empty(flat.shape[1])
     n = np.empty(flat.shape[1], dtype=np.int64)
     nf = np.empty(flat.shape[1], dtype=np.int64)
-    if fixed is None:
-        second_difference_noise(flat, factor_2nd, clip, correction, s, n, nf)
-    else:
-        channel_noise(flat, fixed, clip, correction, s, n, nf)
+    keep = np.ones(nchan, dtype=np.bool_) if fixed is None else fixed
+    noise_kernel(flat, fixed is None, keep, factor_2nd if fixed is None else 1.0, clip,
+                 correction, s, n, nf)
     return {"sigma": s.reshape(rows, nx), "nused": n.reshape(rows, nx),
             "finite": (nf > 0).reshape(rows, nx)}
 
