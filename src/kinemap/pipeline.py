@@ -16,7 +16,7 @@ import numpy as np
 from .config import parse_size
 from .cluster import open_client
 from .cube import read_cube, read_map
-from .cube.subset import channel_range, select_channels
+from .cube.subset import select_channels
 from .errors import KinemapError
 from .export.outdir import StagedOutput, check_output_dir
 from .export.writer import write_products
@@ -43,6 +43,7 @@ class RunState:
     timings: dict = field(default_factory=dict)
     client: object = None
     execution: dict = field(default_factory=dict)
+    window: tuple | None = None
 
     @property
     def meta(self):
@@ -111,16 +112,19 @@ def prepare(cfg: dict, state: RunState | None = None) -> RunState:
 
 
 def _maps_window(state):
-    """The cube (and mask) the maps stages see: [maps] vrange cuts a velocity window."""
-    window = state.config["maps"]["vrange"]
-    if window is None:
-        return state.cube, state.mask
-    cube = select_channels(state.cube, _vrange(window))
-    mask = state.mask
-    if mask is not None and mask.mask is not None:
-        cs = channel_range(state.cube.velocity, _vrange(window))
-        mask = replace(mask, mask=mask.mask[cs])
-    return cube, mask
+    """The cube (and mask) the maps stages see: [maps] vrange cuts a velocity window.
+    Cut once per run and kept on the state."""
+    if state.window is None:
+        window = state.config["maps"]["vrange"]
+        if window is None:
+            state.window = (state.cube, state.mask)
+        else:
+            cube, cs = select_channels(state.cube, _vrange(window))
+            mask = state.mask
+            if mask is not None and mask.mask is not None:
+                mask = replace(mask, mask=mask.mask[cs])
+            state.window = (cube, mask)
+    return state.window
 
 
 def stage_moments(state: RunState):

@@ -76,11 +76,10 @@ def region_footprint(path, wcs, shape_yx) -> np.ndarray:
 
 
 def select_channels(cube, vrange):
-    """A cube cut to the channels inside ``vrange`` (see :func:`channel_range`)."""
+    """``(cube, channels)``: the cube cut to the channels inside ``vrange`` (see
+    :func:`channel_range`) and the slice of the original channels it keeps."""
     from dataclasses import replace
 
-    if vrange is None:
-        return cube
     cs = channel_range(cube.velocity, vrange)
     source = cube.source
     if source is not None:
@@ -90,4 +89,4 @@ def select_channels(cube, vrange):
     if meta.wcs3d is not None:
         meta = replace(meta, wcs3d=meta.wcs3d.slice((cs, slice(None), slice(None))))
     return replace(cube, data=cube.data[cs], velocity=cube.velocity[cs],
-                   spectral=cube.spectral[cs], meta=meta, source=source)
+                   spectral=cube.spectral[cs], meta=meta, source=source), cs
