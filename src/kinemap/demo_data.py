@@ -218,6 +218,18 @@ def _surface_profile(radius, scale_length, hole_radius, hole_depth, outer_radius
     return np.exp(-r / scale_length) * hole * edge
 
 
+def _celestial_cards(projection, ra0, dec0, x_ref, y_ref, pix):
+    """RA/Dec header cards: north up, east left, pixel (x_ref, y_ref) 0-based at (ra0, dec0)."""
+    return [
+        ("CTYPE1", f"RA---{projection}", ""), ("CUNIT1", "deg", ""),
+        ("CRVAL1", ra0, "[deg]"), ("CRPIX1", float(x_ref + 1), ""),
+        ("CDELT1", -pix / 3600.0, "[deg] east is left"),
+        ("CTYPE2", f"DEC--{projection}", ""), ("CUNIT2", "deg", ""),
+        ("CRVAL2", dec0, "[deg]"), ("CRPIX2", float(y_ref + 1), ""),
+        ("CDELT2", pix / 3600.0, "[deg] north is up"),
+    ]
+
+
 def make_disk_galaxy(
     *,
     seed: int = 1,
@@ -450,12 +462,7 @@ def make_disk_galaxy(
         ("BMAJ", bmaj / 3600.0, "[deg] beam major axis FWHM"),
         ("BMIN", bmin / 3600.0, "[deg] beam minor axis FWHM"),
         ("BPA", bpa, "[deg] beam position angle, east of north"),
-        ("CTYPE1", "RA---SIN", ""), ("CUNIT1", "deg", ""),
-        ("CRVAL1", ra0, "[deg]"), ("CRPIX1", float(x_ref + 1), ""),
-        ("CDELT1", -pix / 3600.0, "[deg] east is left"),
-        ("CTYPE2", "DEC--SIN", ""), ("CUNIT2", "deg", ""),
-        ("CRVAL2", dec0, "[deg]"), ("CRPIX2", float(y_ref + 1), ""),
-        ("CDELT2", pix / 3600.0, "[deg] north is up"),
+        *_celestial_cards("SIN", ra0, dec0, x_ref, y_ref, pix),
         ("CTYPE3", "FREQ", ""), ("CUNIT3", "Hz", ""),
         ("CRVAL3", float(freq[0]), "[Hz] frequency of the first channel"),
         ("CRPIX3", 1.0, ""),
@@ -748,12 +755,7 @@ def make_nebula(
     cards = [
         ("OBJECT", "demo nebula", "invented demo source, not a real object"),
         ("BUNIT", "10**(-20) erg/(s cm2 Angstrom)", "flux density per pixel"),
-        ("CTYPE1", "RA---TAN", ""), ("CUNIT1", "deg", ""),
-        ("CRVAL1", ra0, "[deg]"), ("CRPIX1", float(x_ref + 1), ""),
-        ("CDELT1", -pix / 3600.0, "[deg] east is left"),
-        ("CTYPE2", "DEC--TAN", ""), ("CUNIT2", "deg", ""),
-        ("CRVAL2", dec0, "[deg]"), ("CRPIX2", float(y_ref + 1), ""),
-        ("CDELT2", pix / 3600.0, "[deg] north is up"),
+        *_celestial_cards("TAN", ra0, dec0, x_ref, y_ref, pix),
         ("CTYPE3", "AWAV", "air wavelength"), ("CUNIT3", "Angstrom", ""),
         ("CRVAL3", float(lam[0]), "[Angstrom] air wavelength of the first channel"),
         ("CRPIX3", 1.0, ""),
