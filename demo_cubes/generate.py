@@ -3,7 +3,7 @@
 
     python demo_cubes/generate.py [--out DIR] [--seed N] [--overwrite] [--full-arrays]
 
-A thin wrapper around :func:`kinemap.demo_data.write_demo_cubes`; see demo_cubes/README.md.
+A thin wrapper around :func:`kinemap.datasets.generate.write_demo_cubes`; see demo_cubes/README.md.
 """
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from kinemap.demo_data import write_demo_cubes
+from kinemap.datasets.generate import write_demo_cubes
 from kinemap.errors import KinemapError
 
 

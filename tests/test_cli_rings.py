@@ -94,7 +94,7 @@ def test_rings_bad_input(tmp_path, extra, match):
 def test_rings_from_demo_galaxy_cube_recover_truth(tmp_path):
     """Acceptance: the invented demo disk (truth known by construction) with no geometry
     given; v_rot within 5 km/s outside two beams, PA within 2 deg, inclination within 4 deg."""
-    from kinemap.demo_data import make_disk_galaxy
+    from kinemap.datasets.generate import make_disk_galaxy
 
     demo = make_disk_galaxy()
     path = tmp_path / "galaxy.fits"

@@ -12,7 +12,7 @@ from kinemap.status import Status
 
 @pytest.fixture(scope="module")
 def nebula(tmp_path_factory):
-    from kinemap.demo_data import make_nebula
+    from kinemap.datasets.generate import make_nebula
 
     demo = make_nebula()
     path = tmp_path_factory.mktemp("neb") / "nebula.fits"

@@ -9,10 +9,10 @@ import numpy as np
 import pytest
 
 from conftest import gaussian_cube, make_header, write_cube
-from kinemap.cube import read_cube
-from kinemap.masks import make_mask
-from kinemap.moments import compute_moments
-from kinemap.noise import estimate_noise
+from kinemap.io.reader import read_cube
+from kinemap.maps.masks import make_mask
+from kinemap.maps.moments import compute_moments
+from kinemap.maps.noise import estimate_noise
 
 
 @pytest.fixture(scope="module")

@@ -4,7 +4,7 @@ from pathlib import Path
 import pytest
 
 from kinemap.cli import main
-from kinemap.config import load_config
+from kinemap.pipeline.config import load_config
 
 CONFIGS = sorted((Path(__file__).resolve().parents[1] / "configs").glob("*.toml"))
 
@@ -23,7 +23,7 @@ def test_config_is_valid(path):
 @pytest.mark.parametrize("name,maker", [("disk_galaxy_hi", "make_disk_galaxy"),
                                         ("nebula_halpha_nii", "make_nebula")])
 def test_demo_configs_run(tmp_path, name, maker):
-    import kinemap.demo_data as dd
+    import kinemap.datasets.generate as dd
 
     cube = tmp_path / "cube.fits"
     getattr(dd, maker)().hdu.writeto(cube)

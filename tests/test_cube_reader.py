@@ -11,7 +11,7 @@ import pytest
 from astropy.io import fits
 
 from conftest import gaussian_cube, make_header, write_cube
-from kinemap.cube import read_cube
+from kinemap.io.reader import read_cube
 from kinemap.errors import (BeamWarning, HeaderRepairWarning, KinemapError,
                             MissingUnitWarning)
 
@@ -70,7 +70,7 @@ def test_restwav_vacuum_to_air_as_wcslib(air):
     """Our air <-> vacuum step inverts wcslib's AWAV translation (astropy.wcs, 'WAVE-A2W')."""
     from astropy.wcs import WCS
 
-    from kinemap.airvac import fits_vacuum_to_air
+    from kinemap.spectral.airvac import fits_vacuum_to_air
 
     h = fits.Header({"NAXIS": 1, "NAXIS1": 4, "CTYPE1": "AWAV", "CUNIT1": "Angstrom",
                      "CRVAL1": air, "CDELT1": 1.0, "CRPIX1": 1})
@@ -293,7 +293,7 @@ def test_real_cube_reads_as_documented(real_cube_path):
 @pytest.mark.parametrize("layout", ["standard", "stokes", "spectral-first"])
 def test_block_reads_equal_the_array_view(tmp_path, layout):
     """Rows read straight from the file equal the memory-mapped view, subsets included."""
-    from kinemap.cube import read_rows
+    from kinemap.parallel.blocks import read_rows
 
     data = gaussian_cube(40, 12, 10, centre_chan=20, sigma_chan=3, noise=0.1, seed=5)
     if layout == "spectral-first":
@@ -319,7 +319,7 @@ def test_block_reads_equal_the_array_view(tmp_path, layout):
 def test_scaled_and_compressed_cubes_read_lazily_and_correctly(tmp_path, kind):
     """Scaled 16-bit integers (BSCALE/BZERO, BLANK) and tile-compressed cubes: values as
     astropy.io.fits decodes them (reference library), a one-time warning, block reads."""
-    from kinemap.cube import read_rows
+    from kinemap.parallel.blocks import read_rows
     from kinemap.errors import KinemapWarning
 
     data = gaussian_cube(40, 12, 10, centre_chan=20, sigma_chan=3, noise=0.1, seed=6)
@@ -346,7 +346,7 @@ def test_beam_area_matches_radio_beam(tmp_path):
     """Gaussian beam solid angle pi/(4 ln 2) major minor, against radio-beam (reference)."""
     from radio_beam import Beam as RBeam
 
-    from kinemap.cube.beams import Beam
+    from kinemap.io.beams import Beam
 
     h = make_header("VRAD", crval=-100, cdelt=5, cunit="km/s",
                     extra={"BMAJ": 16 / 3600, "BMIN": 12 / 3600, "BPA": 30.0})

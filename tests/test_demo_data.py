@@ -1,4 +1,4 @@
-"""Tests of the invented demo cubes (kinemap.demo_data).
+"""Tests of the invented demo cubes (kinemap.datasets.generate).
 
 The cubes are checked against things outside the generator: astropy's WCS (wcslib),
 spectral-cube, astropy's Doppler equivalencies, SkyCoord position angles, radio_beam's
@@ -24,12 +24,7 @@ from astropy.io import fits
 from astropy.wcs import WCS
 from scipy.optimize import curve_fit
 
-from kinemap.demo_data import (
-    DemoCube,
-    make_disk_galaxy,
-    make_nebula,
-    write_demo_cubes,
-)
+from kinemap.datasets.generate import DemoCube, make_disk_galaxy, make_nebula, write_demo_cubes
 from kinemap.errors import KinemapError
 
 REPO = Path(__file__).resolve().parents[1]
@@ -282,7 +277,7 @@ def test_galaxy_flux_per_channel_is_symmetric_about_systemic(galaxy, galaxy_clea
 
 def test_galaxy_total_flux_and_beam_kernel_match_radio_beam(galaxy_clean):
     radio_beam = pytest.importorskip("radio_beam")
-    from kinemap.demo_data import _beam_kernel
+    from kinemap.datasets.generate import _beam_kernel
 
     t = galaxy_clean.truth
     hdr = galaxy_clean.hdu.header

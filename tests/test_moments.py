@@ -7,10 +7,10 @@ import numpy as np
 import pytest
 
 from conftest import make_header, write_cube
-from kinemap.cube import read_cube
-from kinemap.masks import make_mask
-from kinemap.moments import compute_moments
-from kinemap.noise import estimate_noise
+from kinemap.io.reader import read_cube
+from kinemap.maps.masks import make_mask
+from kinemap.maps.moments import compute_moments
+from kinemap.maps.noise import estimate_noise
 
 
 def _spectral_cube(path, mask=None):
@@ -87,11 +87,11 @@ def test_analytic_errors_match_monte_carlo(tmp_path, response):
     spectra = (line[None] + noise).T.reshape(v.size, 1, nreal)
     mc = cube.with_changes(data=da.from_array(spectra))
     # fixed channel window (no data-dependent mask) so the estimator is a fixed function
-    from kinemap.masks import SignalMask
+    from kinemap.maps.masks import SignalMask
     window = SignalMask("none")
     vsel = np.abs(v - 3.0) < 60
     mc = mc.with_changes(data=da.from_array(spectra[vsel]), velocity=v[vsel])
-    from kinemap.noise import NoiseMap
+    from kinemap.maps.noise import NoiseMap
     nm = NoiseMap(np.full((1, nreal), sigma_noise), np.ones((1, nreal)), u.K, "given")
     m = compute_moments(mc, mask=window, noise=nm, channel_response=response)
     for key in ("moment0", "moment1", "moment2"):
@@ -129,8 +129,8 @@ def test_nan_pixels_give_nan_and_zero_channels(tmp_path):
 
 def test_single_channel_pixel_error_is_the_channel_quantisation(tmp_path):
     """One signal channel: velocity known to dv/sqrt(12) (top-hat sigma, exact); no width."""
-    from kinemap.masks import SignalMask
-    from kinemap.noise import NoiseMap
+    from kinemap.maps.masks import SignalMask
+    from kinemap.maps.noise import NoiseMap
 
     cube = _mc_cube(tmp_path, nchan=30)
     data = np.zeros((30, 1, 1))

@@ -6,10 +6,10 @@ import pytest
 from scipy import stats
 
 from conftest import make_header, write_cube
-from kinemap.cube import read_cube
+from kinemap.io.reader import read_cube
 from kinemap.errors import KinemapError
-from kinemap.masks import make_mask
-from kinemap.noise import CLIP, clip_correction, estimate_noise
+from kinemap.maps.masks import make_mask
+from kinemap.maps.noise import CLIP, clip_correction, estimate_noise
 
 
 def test_clip_correction_is_truncated_normal_sigma():

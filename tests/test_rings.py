@@ -531,7 +531,7 @@ def test_plots_return_figures(flat_field, flat_fit):
     from matplotlib.colors import TwoSlopeNorm
     from matplotlib.figure import Figure
 
-    from kinemap.export import plots_rings as pr
+    from kinemap.plotting import rings as pr
 
     v, r = flat_field
     figs = [pr.plot_rotation_curve(flat_fit), pr.plot_ring_geometry(flat_fit), pr.plot_harmonics(flat_fit)]

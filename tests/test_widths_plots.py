@@ -8,10 +8,8 @@ from astropy.wcs import WCS
 from matplotlib.figure import Figure
 
 from kinemap.errors import KinemapError
-from kinemap.export.plots_widths import (
-    plot_dispersion_vs_intensity,
-    plot_width_histograms,
-    plot_width_maps,
+from kinemap.plotting.widths import (
+    plot_dispersion_vs_intensity, plot_width_histograms, plot_width_maps
 )
 from kinemap.widths import width_budget
 

@@ -10,6 +10,6 @@ try:
 except PackageNotFoundError:  # running from a source tree that is not installed
     __version__ = "0.0.0+unknown"
 
-from .errors import KinemapError, KinemapWarning  # noqa: E402
+from kinemap.errors import KinemapError, KinemapWarning  # noqa: E402
 
 __all__ = ["__version__", "KinemapError", "KinemapWarning"]

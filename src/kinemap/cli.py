@@ -1,7 +1,7 @@
 """The ``kinemap`` command.
 
 Every subcommand builds the same configuration dict a TOML file would give
-(:mod:`kinemap.config`) and hands it to :mod:`kinemap.pipeline`.  User mistakes end with
+(:mod:`kinemap.pipeline.config`) and hands it to :mod:`kinemap.pipeline.runner`.  User mistakes end with
 one line on stderr and exit code 2 (``--debug`` shows the traceback).
 """
 from __future__ import annotations
@@ -10,8 +10,8 @@ import argparse
 import sys
 import warnings
 
-from . import __version__
-from .errors import KinemapError, KinemapWarning
+from kinemap import __version__
+from kinemap.errors import KinemapError, KinemapWarning
 
 __all__ = ["main", "build_parser"]
 
@@ -171,12 +171,12 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def config_from_args(args) -> dict:
-    from .config import validate_config
+    from kinemap.pipeline.config import validate_config
 
     cube = getattr(args, "cube", None)
     velocity_map = None
     if getattr(args, "command", None) == "rings":
-        from .cube import is_2d_image
+        from kinemap.io.maps import is_2d_image
 
         if is_2d_image(args.input):
             velocity_map = args.input
@@ -234,7 +234,7 @@ def config_from_args(args) -> dict:
 
 
 def _run_options(args) -> dict:
-    from .config import parse_size
+    from kinemap.pipeline.config import parse_size
 
     if args.max_memory is not None:
         parse_size(args.max_memory)  # fail early on a bad size
@@ -243,14 +243,14 @@ def _run_options(args) -> dict:
 
 
 def _cmd_info(args) -> int:
-    from .info import describe
+    from kinemap.pipeline.info import describe
 
     print(describe(config_from_args(args)))
     return 0
 
 
 def _cmd_maps(args) -> int:
-    from .pipeline import run_config
+    from kinemap.pipeline.runner import run_config
 
     state = run_config(config_from_args(args))
     _report(state, args.out)
@@ -258,7 +258,7 @@ def _cmd_maps(args) -> int:
 
 
 def _cmd_rings(args) -> int:
-    from .pipeline import run_config
+    from kinemap.pipeline.runner import run_config
 
     state = run_config(config_from_args(args))
     _report(state, args.out)
@@ -270,7 +270,7 @@ def _cmd_rings(args) -> int:
 
 
 def _cmd_widths(args) -> int:
-    from .pipeline import run_config
+    from kinemap.pipeline.runner import run_config
 
     state = run_config(config_from_args(args))
     _report(state, args.out)
@@ -284,8 +284,8 @@ def _cmd_widths(args) -> int:
 
 
 def _cmd_run(args) -> int:
-    from .config import load_config
-    from .pipeline import run_config
+    from kinemap.pipeline.config import load_config
+    from kinemap.pipeline.runner import run_config
 
     cfg = load_config(args.config)
     if args.out:
@@ -298,7 +298,7 @@ def _cmd_run(args) -> int:
 
 
 def _cmd_demo(args) -> int:
-    from .demo import run_demo
+    from kinemap.datasets.demo import run_demo
 
     index = run_demo(args.out, overwrite=args.overwrite, progress=not args.no_progress)
     print(f"kinemap demo: wrote {index}")

@@ -13,10 +13,12 @@ Public entry points:
 See :mod:`kinemap.linefit.fit` for the model definition (amplitude, channel response,
 instrument) and the fitting method.
 """
-from ._config import RESPONSES, channel_noise_correlation
-from ._model import BASELINES, LineModel
-from ._result import COMPONENT_QUANTITIES, LineFitResult
-from .fit import fit_block, fit_spectra, initial_guess, model_block, model_spectra, parameter_bounds
+from kinemap.linefit._config import RESPONSES, channel_noise_correlation
+from kinemap.linefit._model import BASELINES, LineModel
+from kinemap.linefit._result import COMPONENT_QUANTITIES, LineFitResult
+from kinemap.linefit.fit import (
+    fit_block, fit_spectra, initial_guess, model_block, model_spectra, parameter_bounds
+)
 
 __all__ = [
     "BASELINES",

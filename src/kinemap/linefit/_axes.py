@@ -5,8 +5,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .._units import KMS, to_value
-from ..errors import KinemapError
+from kinemap.units import KMS, to_value
+from kinemap.errors import KinemapError
 
 __all__ = ["Axes", "prepare_axes"]
 

@@ -5,11 +5,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .._units import KMS, to_value
-from ..errors import KinemapError
-from . import _kernels as K
-from ._axes import Axes, prepare_axes
-from ._model import ROLE_AMP, ROLE_SIG, ROLE_VEL, LineModel
+from kinemap.units import KMS, to_value
+from kinemap.errors import KinemapError
+from kinemap.linefit import _kernels as K
+from kinemap.linefit._axes import Axes, prepare_axes
+from kinemap.linefit._model import ROLE_AMP, ROLE_SIG, ROLE_VEL, LineModel
 
 __all__ = ["RESPONSES", "Config", "make_config", "channel_noise_correlation", "default_bounds"]
 

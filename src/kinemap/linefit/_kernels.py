@@ -34,7 +34,7 @@ import math
 import numpy as np
 from numba import njit, prange
 
-from ..status import Status
+from kinemap.status import Status
 
 # status codes as compile-time constants (taken from the one place they are defined)
 _OK = int(Status.OK)

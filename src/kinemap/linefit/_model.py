@@ -21,7 +21,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..errors import KinemapError
+from kinemap.errors import KinemapError
 
 __all__ = ["LineModel", "BASELINES"]
 

@@ -5,7 +5,7 @@ from dataclasses import dataclass, fields
 
 import numpy as np
 
-from ._model import LineModel
+from kinemap.linefit._model import LineModel
 
 __all__ = ["LineFitResult", "COMPONENT_QUANTITIES"]
 

@@ -56,13 +56,13 @@ import math
 
 import numpy as np
 
-from ..errors import KinemapError
-from ..status import Status
-from . import _kernels as K
-from ._axes import prepare_axes
-from ._config import CORRELATION_FLOOR, Config, default_bounds, make_config
-from ._model import LineModel, as_model
-from ._result import LineFitResult
+from kinemap.errors import KinemapError
+from kinemap.status import Status
+from kinemap.linefit import _kernels as K
+from kinemap.linefit._axes import prepare_axes
+from kinemap.linefit._config import CORRELATION_FLOOR, Config, default_bounds, make_config
+from kinemap.linefit._model import LineModel, as_model
+from kinemap.linefit._result import LineFitResult
 
 __all__ = ["fit_spectra", "fit_block", "initial_guess", "model_spectra", "model_block", "parameter_bounds"]
 

@@ -19,13 +19,13 @@ import astropy.constants as const
 import astropy.units as u
 import numpy as np
 
-from .._units import KMS, to_value
-from ..cube._blocks import DEFAULT_MAX_MEMORY, map_blocks
-from ..errors import KinemapError
-from ..products import Product
-from ..status import STATUS_DESCRIPTIONS, Status
-from ._result import COMPONENT_QUANTITIES
-from .fit import fit_block, model_block, model_spectra
+from kinemap.units import KMS, to_value
+from kinemap.parallel.blocks import DEFAULT_MAX_MEMORY, map_blocks
+from kinemap.errors import KinemapError
+from kinemap.io.products import Product
+from kinemap.status import STATUS_DESCRIPTIONS, Status
+from kinemap.linefit._result import COMPONENT_QUANTITIES
+from kinemap.linefit.fit import fit_block, model_block, model_spectra
 
 __all__ = ["LineFitMaps", "fit_cube", "instrument_sigma_from"]
 
@@ -170,7 +170,7 @@ class LineFitMaps:
                 "seconds": self.seconds}
 
     def figures(self, state) -> dict:
-        from ..export.plots_linefit import plot_example_spectra
+        from kinemap.plotting.linefit import plot_example_spectra
 
         fig = plot_example_spectra(state.cube, self)
         return {} if fig is None else {
@@ -200,9 +200,9 @@ def fit_cube(cube, noise, *, mask=None, components=1, baseline: str = "none",
 
     Parameters
     ----------
-    cube : kinemap.cube.Cube
-    noise : kinemap.noise.NoiseMap
-    mask : kinemap.masks.SignalMask, optional
+    cube : kinemap.io.cube.Cube
+    noise : kinemap.maps.noise.NoiseMap
+    mask : kinemap.maps.masks.SignalMask, optional
     components : 1, 2, 3 or 'auto'
         'auto' compares 1-3 components by BIC (Schwarz 1978).
     baseline : {'none', 'constant', 'linear'}

@@ -15,13 +15,13 @@ model_velocity_field(rings, shape, grid) -> Quantity
 major_axis_pv(cube, velocity_axis, result, ...) -> PositionVelocitySlice
 dynamical_mass(v_rot, radius) -> Quantity;  physical_radius(radius, distance) -> Quantity
 """
-from .fit import RING_COLUMNS, RingFitResult, fit_rings
-from .grid import SkyGrid
-from .guess import FirstGuess, first_guess
-from .harmonics import HARMONIC_TERMS, harmonic_expansion
-from .mass import dynamical_mass, physical_radius
-from .model import model_velocity_field
-from .pv import PositionVelocitySlice, major_axis_pv
+from kinemap.rings.fit import RING_COLUMNS, RingFitResult, fit_rings
+from kinemap.rings.grid import SkyGrid
+from kinemap.rings.guess import FirstGuess, first_guess
+from kinemap.rings.harmonics import HARMONIC_TERMS, harmonic_expansion
+from kinemap.rings.mass import dynamical_mass, physical_radius
+from kinemap.rings.model import model_velocity_field
+from kinemap.rings.pv import PositionVelocitySlice, major_axis_pv
 
 __all__ = [
     "fit_rings",

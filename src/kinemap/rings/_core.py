@@ -30,8 +30,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.optimize import least_squares
 
-from ..status import Status
-from ._geometry import GEOM_NAMES, angular_weight, disk_coords
+from kinemap.status import Status
+from kinemap.rings._geometry import GEOM_NAMES, angular_weight, disk_coords
 
 # outer iterations stop when the geometry moves less than this between them
 # (pixels for the centre, degrees for angles, km/s for v_sys)

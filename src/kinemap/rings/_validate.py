@@ -4,8 +4,8 @@ from __future__ import annotations
 import astropy.units as u
 import numpy as np
 
-from .._units import KMS, to_value
-from ..errors import KinemapError
+from kinemap.units import KMS, to_value
+from kinemap.errors import KinemapError
 
 FIXABLE = ("x_center", "y_center", "position_angle", "inclination", "v_sys", "v_exp")
 WEIGHTINGS = ("uniform", "cos", "cos2")

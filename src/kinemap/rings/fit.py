@@ -41,18 +41,18 @@ import numpy as np
 from astropy.table import Table
 from tqdm.auto import tqdm
 
-from .._units import KMS, to_value
-from ..errors import FitWarning, KinemapError
-from ..status import Status
-from . import _validate as val
-from ._core import INCL_BOUNDS, Points, Settings, fit_geometry, solve_linear
-from ._geometry import GEOM_NAMES, angular_weight, disk_coords, unwrap_deg
-from ._smooth import polynomial, running_median
-from .grid import SkyGrid, as_grid
-from .guess import FirstGuess, as_first_guess, guess_geometry
-from .harmonics import harmonics_table
-from .mass import dynamical_mass, physical_radius
-from .model import model_field
+from kinemap.units import KMS, to_value
+from kinemap.errors import FitWarning, KinemapError
+from kinemap.status import Status
+from kinemap.rings import _validate as val
+from kinemap.rings._core import INCL_BOUNDS, Points, Settings, fit_geometry, solve_linear
+from kinemap.rings._geometry import GEOM_NAMES, angular_weight, disk_coords, unwrap_deg
+from kinemap.rings._smooth import polynomial, running_median
+from kinemap.rings.grid import SkyGrid, as_grid
+from kinemap.rings.guess import FirstGuess, as_first_guess, guess_geometry
+from kinemap.rings.harmonics import harmonics_table
+from kinemap.rings.mass import dynamical_mass, physical_radius
+from kinemap.rings.model import model_field
 
 __all__ = ["RingFitResult", "fit_rings", "RING_COLUMNS"]
 

@@ -13,8 +13,8 @@ from dataclasses import dataclass
 import astropy.units as u
 import numpy as np
 
-from .._units import to_value
-from ..errors import KinemapError
+from kinemap.units import to_value
+from kinemap.errors import KinemapError
 
 __all__ = ["SkyGrid"]
 

@@ -29,11 +29,11 @@ import numpy as np
 from scipy import ndimage
 from scipy.optimize import minimize, minimize_scalar
 
-from .._units import KMS
-from ..errors import KinemapError
-from . import _validate as val
-from ._geometry import disk_coords
-from .grid import SkyGrid, as_grid
+from kinemap.units import KMS
+from kinemap.errors import KinemapError
+from kinemap.rings import _validate as val
+from kinemap.rings._geometry import disk_coords
+from kinemap.rings.grid import SkyGrid, as_grid
 
 __all__ = ["FirstGuess", "first_guess"]
 

@@ -17,14 +17,14 @@ import astropy.units as u
 import numpy as np
 from astropy.table import Table
 
-from .._units import KMS
-from ..errors import FitWarning
-from ..status import Status
-from . import _validate as val
-from ._core import Points, noise_scale
-from ._geometry import disk_coords
-from .grid import as_grid
-from .model import _plain
+from kinemap.units import KMS
+from kinemap.errors import FitWarning
+from kinemap.status import Status
+from kinemap.rings import _validate as val
+from kinemap.rings._core import Points, noise_scale
+from kinemap.rings._geometry import disk_coords
+from kinemap.rings.grid import as_grid
+from kinemap.rings.model import _plain
 
 __all__ = ["harmonic_expansion", "HARMONIC_TERMS"]
 

@@ -5,8 +5,8 @@ import astropy.constants as const
 import astropy.units as u
 import numpy as np
 
-from .._units import KMS, to_value
-from ..errors import KinemapError
+from kinemap.units import KMS, to_value
+from kinemap.errors import KinemapError
 
 __all__ = ["dynamical_mass", "physical_radius"]
 

@@ -5,10 +5,10 @@ import astropy.units as u
 import numpy as np
 from astropy.table import Table
 
-from .._units import KMS
-from ..errors import KinemapError
-from ._geometry import disk_coords
-from .grid import as_grid
+from kinemap.units import KMS
+from kinemap.errors import KinemapError
+from kinemap.rings._geometry import disk_coords
+from kinemap.rings.grid import as_grid
 
 __all__ = ["model_velocity_field"]
 

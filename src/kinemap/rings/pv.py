@@ -7,8 +7,8 @@ import astropy.units as u
 import numpy as np
 from scipy import ndimage
 
-from .._units import KMS, to_value
-from ..errors import KinemapError
+from kinemap.units import KMS, to_value
+from kinemap.errors import KinemapError
 
 __all__ = ["PositionVelocitySlice", "major_axis_pv"]
 

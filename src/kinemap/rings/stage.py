@@ -6,11 +6,11 @@ from dataclasses import dataclass, field
 import astropy.units as u
 import numpy as np
 
-from .._units import KMS, to_value
-from ..errors import KinemapError
-from ..products import Product
-from .fit import RingFitResult, fit_rings
-from .grid import SkyGrid
+from kinemap.units import KMS, to_value
+from kinemap.errors import KinemapError
+from kinemap.io.products import Product
+from kinemap.rings.fit import RingFitResult, fit_rings
+from kinemap.rings.grid import SkyGrid
 
 __all__ = ["RingStage", "run_rings"]
 
@@ -42,8 +42,10 @@ class RingStage:
         ]
 
     def figures(self, state) -> dict:
-        from ..export.plots_rings import (plot_harmonics, plot_pv_diagram, plot_ring_geometry,
-                                          plot_rotation_curve, plot_velocity_fields)
+        from kinemap.plotting.rings import (
+            plot_harmonics, plot_pv_diagram, plot_ring_geometry, plot_rotation_curve,
+            plot_velocity_fields
+        )
 
         figs = {
             "rotation_curve": (plot_rotation_curve(self.result),

@@ -7,24 +7,13 @@ Conventions: dispersion = Gaussian sigma (FWHM = 2.35482 sigma), velocities in k
 temperatures in K, uncertainties 1 sigma, NaN = no data, status codes from
 :mod:`kinemap.status`.
 """
-from .budget import WidthBudget, width_budget
-from .catalogue import (
-    MEDIA,
-    Line,
-    air_to_vacuum,
-    check_line_in_range,
-    get_line,
-    load_catalogue,
-    medium_from_ctype,
-    vacuum_to_air,
+from kinemap.widths.budget import WidthBudget, width_budget
+from kinemap.spectral.catalogue import (
+    MEDIA, Line, air_to_vacuum, check_line_in_range, get_line, load_catalogue, medium_from_ctype,
+    vacuum_to_air
 )
-from .thermal import (
-    K_OVER_AMU,
-    MU_IONIZED,
-    MU_MOLECULAR,
-    channel_dispersion,
-    sound_speed,
-    thermal_dispersion,
+from kinemap.widths.thermal import (
+    K_OVER_AMU, MU_IONIZED, MU_MOLECULAR, channel_dispersion, sound_speed, thermal_dispersion
 )
 
 __all__ = [

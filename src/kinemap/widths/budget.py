@@ -15,12 +15,14 @@ from typing import Mapping
 import astropy.units as u
 import numpy as np
 
-from .._units import KMS, to_value
-from ..errors import KinemapError
-from ..status import Status
-from . import _solve
-from .catalogue import Line, _resolve, load_catalogue
-from .thermal import HYDROGEN_MASS_AMU, K_OVER_AMU, MU_MOLECULAR, mu_value, temperature_kelvin
+from kinemap.units import KMS, to_value
+from kinemap.errors import KinemapError
+from kinemap.status import Status
+from kinemap.widths import _solve
+from kinemap.spectral.catalogue import Line, _resolve, load_catalogue
+from kinemap.widths.thermal import (
+    HYDROGEN_MASS_AMU, K_OVER_AMU, MU_MOLECULAR, mu_value, temperature_kelvin
+)
 
 __all__ = ["WidthBudget", "width_budget"]
 

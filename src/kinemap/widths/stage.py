@@ -15,15 +15,15 @@ from dataclasses import dataclass, field
 import astropy.units as u
 import numpy as np
 
-from .._units import KMS
-from ..cube.spectral import to_velocity
-from ..errors import KinemapError
-from ..linefit import LineModel
-from ..linefit.stage import fit_cube
-from ..products import Product
-from ..status import Status
-from .budget import width_budget
-from .catalogue import check_line_in_range, get_line, load_catalogue
+from kinemap.units import KMS
+from kinemap.spectral.axes import to_velocity
+from kinemap.errors import KinemapError
+from kinemap.linefit import LineModel
+from kinemap.linefit.stage import fit_cube
+from kinemap.io.products import Product
+from kinemap.status import Status
+from kinemap.widths.budget import width_budget
+from kinemap.spectral.catalogue import check_line_in_range, get_line, load_catalogue
 
 __all__ = ["WidthStage", "run_widths", "DEFAULT_RATIOS"]
 
@@ -161,8 +161,9 @@ class WidthStage:
                 for k, v in s.items()}
 
     def figures(self, state) -> dict:
-        from ..export.plots_widths import (plot_dispersion_vs_intensity, plot_width_histograms,
-                                           plot_width_maps)
+        from kinemap.plotting.widths import (
+            plot_dispersion_vs_intensity, plot_width_histograms, plot_width_maps
+        )
 
         figs = {"width_maps": (plot_width_maps(self.budget, wcs=state.meta.wcs),
                                "non-thermal dispersion, temperature and Mach number maps"),

@@ -9,9 +9,9 @@ import astropy.units as u
 import numpy as np
 from astropy.constants import k_B
 
-from .._units import KMS, to_value
-from ..errors import KinemapError
-from .catalogue import Line
+from kinemap.units import KMS, to_value
+from kinemap.errors import KinemapError
+from kinemap.spectral.catalogue import Line
 
 __all__ = [
     "K_OVER_AMU",

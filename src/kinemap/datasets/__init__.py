@@ -1,0 +1,1 @@
+"""Invented demo scenarios: seeded generators of demo cubes and ``kinemap demo``."""

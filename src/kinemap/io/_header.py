@@ -1,0 +1,143 @@
+"""Header handling: open the HDU, build the WCS, record every repair made on the way."""
+from __future__ import annotations
+
+import hashlib
+import os
+import warnings
+
+import astropy.units as u
+from astropy.io import fits
+from astropy.wcs import WCS, FITSFixedWarning
+
+from kinemap.errors import HeaderRepairWarning, KinemapError, MissingUnitWarning
+
+__all__ = ["open_fits", "find_cube_hdu", "find_image_hdu_2d", "build_wcs", "parse_bunit",
+           "sha256"]
+
+
+def open_fits(path):
+    """Open ``path`` read-only with memory mapping; one clear error if it is not a FITS file."""
+    path = os.fspath(path)
+    if not os.path.exists(path):
+        raise KinemapError(f"input file not found: {path}; check the path")
+    if os.path.isdir(path):
+        raise KinemapError(f"input {path} is a folder, not a FITS file")
+    try:
+        hdul = fits.open(path, memmap=True, mode="readonly", lazy_load_hdus=False)
+    except (OSError, ValueError, TypeError):
+        raise KinemapError(f"{path} is not a readable FITS file; give a FITS cube") from None
+    return hdul
+
+
+def find_cube_hdu(hdul, path, hdu_index=None):
+    """The first HDU holding an image with three or more axes (or the one asked for)."""
+    if hdu_index is not None:
+        try:
+            hdu = hdul[hdu_index]
+        except (IndexError, KeyError):
+            raise KinemapError(f"{path} has no HDU {hdu_index!r}; it has {len(hdul)}") from None
+        candidates = [hdu]
+    else:
+        candidates = [h for h in hdul if isinstance(h, (fits.PrimaryHDU, fits.ImageHDU,
+                                                        fits.CompImageHDU))]
+    best_ndim = 0
+    for hdu in candidates:
+        naxis = hdu.header.get("NAXIS", 0)
+        best_ndim = max(best_ndim, naxis)
+        if naxis >= 3:
+            return hdu
+    if best_ndim == 2:
+        raise KinemapError(
+            f"{path} holds a 2D image, not a cube: it has no spectral axis; give a "
+            "spectral-line cube (two celestial axes and one spectral axis)")
+    raise KinemapError(f"{path} holds no image data with a spectral axis; give a spectral-line cube")
+
+
+def find_image_hdu_2d(hdul, path):
+    """The first image HDU with data (for 2D maps)."""
+    for hdu in hdul:
+        if getattr(hdu, "is_image", False) and hdu.header.get("NAXIS", 0) >= 2:
+            return hdu
+    raise KinemapError(f"{path} holds no image; give a 2D FITS map")
+
+
+def build_wcs(header, path) -> tuple[WCS, list[str]]:
+    """Build the WCS, capturing wcslib's automatic fixes as a list of repair messages."""
+    repairs = []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", FITSFixedWarning)
+        try:
+            wcs = WCS(header)
+        except (ValueError, MemoryError, KeyError) as exc:
+            wcs = _retry_without_rest(header, exc, repairs, path)
+    for w in caught:
+        if issubclass(w.category, FITSFixedWarning):
+            repairs.append(" ".join(str(w.message).split()))
+    for msg in repairs:
+        warnings.warn(f"{os.path.basename(str(path))}: {msg}", HeaderRepairWarning, stacklevel=3)
+    return wcs, repairs
+
+
+def _retry_without_rest(header, exc, repairs, path):
+    """wcslib cannot build a frequency-linear optical axis (FELO) without a rest frequency.
+
+    Such an axis is read as linear in optical velocity instead (exact at the reference
+    channel, the usual approximation); the repair is recorded.
+    """
+    if "rest frequency" not in str(exc).lower():
+        raise KinemapError(f"the WCS of {path} cannot be read: {str(exc).splitlines()[0]}") from None
+    header = header.copy()
+    for key in list(header.keys()):
+        if key.startswith("CTYPE") and str(header[key]).upper().startswith("FELO"):
+            old = header[key]
+            suffix = str(old)[5:].strip("-").upper()
+            header[key] = "VOPT"
+            if suffix and "SPECSYS" not in header:
+                from kinemap.spectral.frames import normalise_frame
+
+                header["SPECSYS"] = normalise_frame(suffix)
+            repairs.append(f"kinemap read {key}={old!r} without a rest frequency as linear "
+                           "optical velocity (VOPT)")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", FITSFixedWarning)
+        try:
+            return WCS(header)
+        except (ValueError, KeyError) as exc2:
+            raise KinemapError(
+                f"the WCS of {path} cannot be read: {str(exc2).splitlines()[0]}") from None
+
+
+def parse_bunit(header, override=None) -> tuple[u.UnitBase, bool]:
+    """Return (unit, missing).  A missing BUNIT warns and gives arbitrary (dimensionless) units."""
+    text = override if override is not None else header.get("BUNIT")
+    if text is None or str(text).strip() == "":
+        warnings.warn("the cube has no BUNIT; values are carried in arbitrary units "
+                      "(give --bunit to set one)", MissingUnitWarning, stacklevel=3)
+        return u.dimensionless_unscaled, True
+    if isinstance(text, u.UnitBase):
+        return text, False
+    text = str(text).strip()
+    for fmt in ("fits", None):
+        try:
+            return u.Unit(text, format=fmt, parse_strict="raise"), False
+        except ValueError:
+            continue
+    for candidate in (text.replace("JY", "Jy").replace("BEAM", "beam"), text.split("(")[0]):
+        try:
+            return u.Unit(candidate.strip(), parse_strict="raise"), False
+        except ValueError:
+            continue
+    raise KinemapError(
+        f"BUNIT {text!r} is not a unit astropy can parse; fix the header or give --bunit "
+        "(for example --bunit K or --bunit Jy/beam)")
+
+
+def sha256(path, *, chunk=1 << 22) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while True:
+            block = fh.read(chunk)
+            if not block:
+                break
+            h.update(block)
+    return h.hexdigest()

@@ -1,0 +1,86 @@
+"""Beams: one beam, a beam per channel, or none (optical cubes).
+
+A single beam is held in a small :class:`Beam` read straight from BMAJ/BMIN/BPA (radio-beam
+costs a third of a second to import, which every run of a single-beam cube would pay);
+cubes with a beam per channel go through radio-beam and spectral-cube.
+"""
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass
+
+import astropy.units as u
+
+from kinemap.errors import BeamWarning, KinemapError
+
+__all__ = ["Beam", "read_beam", "BEAM_POLICIES"]
+
+
+@dataclass(frozen=True)
+class Beam:
+    """An elliptical Gaussian beam: FWHM major and minor axes and position angle (Quantities)."""
+
+    major: u.Quantity
+    minor: u.Quantity
+    pa: u.Quantity
+
+    @property
+    def sr(self) -> u.Quantity:
+        """Solid angle of the Gaussian beam, pi / (4 ln 2) * major * minor."""
+        return (math.pi / (4.0 * math.log(2.0)) * self.major * self.minor).to(u.sr)
+
+    @classmethod
+    def from_header(cls, header) -> "Beam":
+        try:
+            major = float(header["BMAJ"]) * u.deg
+            minor = float(header["BMIN"]) * u.deg
+            pa = float(header.get("BPA", 0.0)) * u.deg
+        except (TypeError, ValueError):
+            raise KinemapError("BMAJ/BMIN/BPA in the header are not numbers; fix the header") from None
+        if not (major.value > 0 and minor.value > 0):
+            raise KinemapError(f"the beam in the header is not positive (BMAJ {major}, BMIN {minor})")
+        return cls(major, minor, pa)
+
+    @classmethod
+    def from_radio_beam(cls, beam) -> "Beam":
+        return cls(beam.major.to(u.deg), beam.minor.to(u.deg), beam.pa.to(u.deg))
+
+    def __str__(self) -> str:
+        return (f"{self.major.to_value(u.arcsec):.4g} x {self.minor.to_value(u.arcsec):.4g} "
+                f"arcsec, PA {self.pa.to_value(u.deg):.1f} deg")
+
+BEAM_POLICIES = ("common", "refuse")
+
+
+def read_beam(hdul, header, *, radio_like: bool):
+    """Return ``(beam, beams)`` from a FITS file.
+
+    ``beam`` is a :class:`Beam` (or None), ``beams`` a
+    :class:`radio_beam.Beams` when the file carries a beam per channel (a ``BEAMS``
+    table), else None.  A radio-like cube (frequency or velocity axis) without a beam gets
+    a :class:`BeamWarning`; optical cubes are expected to have none and stay quiet.
+    """
+    for hdu in hdul[1:]:
+        if hdu.name.upper() == "BEAMS":
+            from radio_beam import Beams
+
+            try:
+                beams = Beams.from_fits_bintable(hdu)
+            except Exception as exc:  # malformed table: say what, not where
+                raise KinemapError(f"could not read the BEAMS table: {exc}") from None
+            return None, beams
+    if "BMAJ" in header and "BMIN" in header:
+        return Beam.from_header(header), None
+    if radio_like:
+        warnings.warn(
+            "no beam in the header (BMAJ/BMIN/BPA); beam ellipses and beam-based defaults "
+            "are unavailable", BeamWarning, stacklevel=3)
+    return None, None
+
+
+def check_policy(policy: str) -> str:
+    p = str(policy).strip().lower()
+    if p not in BEAM_POLICIES:
+        raise KinemapError(f"'beams' must be one of {', '.join(BEAM_POLICIES)}, got {policy!r}")
+    return p

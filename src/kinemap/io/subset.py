@@ -1,0 +1,92 @@
+"""Subsets of a cube: a velocity range, a pixel box, a region file (DS9 or CRTF)."""
+from __future__ import annotations
+
+import os
+
+import numpy as np
+
+from kinemap.units import KMS, to_value
+from kinemap.errors import KinemapError
+
+__all__ = ["channel_range", "parse_box", "region_footprint", "select_channels"]
+
+
+def channel_range(velocity: np.ndarray, vrange) -> slice:
+    """Channels whose centre velocity (km/s) lies inside ``vrange`` = (v1, v2), inclusive."""
+    if vrange is None:
+        return slice(0, velocity.size)
+    try:
+        v1, v2 = vrange
+    except (TypeError, ValueError):
+        raise KinemapError(f"'vrange' must be two velocities like '-50,120' (km/s), got {vrange!r}") from None
+    lo, hi = sorted((to_value(v1, KMS, name="vrange"), to_value(v2, KMS, name="vrange")))
+    idx = np.flatnonzero((velocity >= lo) & (velocity <= hi))
+    if idx.size < 3:
+        raise KinemapError(
+            f"'vrange' {lo:g} to {hi:g} km/s keeps {idx.size} channel(s); the cube covers "
+            f"{velocity.min():.4g} to {velocity.max():.4g} km/s; widen the range")
+    return slice(int(idx[0]), int(idx[-1]) + 1)
+
+
+def parse_box(box, shape_yx) -> tuple[slice, slice]:
+    """A pixel box 'x0:x1,y0:y1' (0-based, end exclusive) or a 4-sequence (x0, x1, y0, y1)."""
+    ny, nx = shape_yx
+    if box is None:
+        return slice(0, ny), slice(0, nx)
+    try:
+        if isinstance(box, str):
+            xs, ys = box.split(",")
+            x0, x1 = (int(t) for t in xs.split(":"))
+            y0, y1 = (int(t) for t in ys.split(":"))
+        else:
+            x0, x1, y0, y1 = (int(t) for t in box)
+    except (ValueError, TypeError):
+        raise KinemapError(f"'box' must look like 'x0:x1,y0:y1' in pixels, got {box!r}") from None
+    x0, x1, y0, y1 = max(x0, 0), min(x1, nx), max(y0, 0), min(y1, ny)
+    if x1 - x0 < 1 or y1 - y0 < 1:
+        raise KinemapError(f"'box' {box!r} selects no pixels of a {nx} x {ny} map")
+    return slice(y0, y1), slice(x0, x1)
+
+
+def region_footprint(path, wcs, shape_yx) -> np.ndarray:
+    """Boolean (ny, nx) map, True inside the union of the sky regions in ``path``."""
+    import regions
+
+    if not os.path.exists(path):
+        raise KinemapError(f"region file not found: {path}")
+    fmt = "crtf" if open(path, errors="replace").read(200).lstrip().startswith("#CRTF") else "ds9"
+    try:
+        regs = regions.Regions.read(path, format=fmt)
+    except Exception as exc:  # regions raises many types for bad files
+        raise KinemapError(f"could not read region file {path} as {fmt.upper()}: {exc}") from None
+    if len(regs) == 0:
+        raise KinemapError(f"region file {path} holds no regions")
+    ny, nx = shape_yx
+    out = np.zeros((ny, nx), bool)
+    for reg in regs:
+        pix = reg.to_pixel(wcs) if hasattr(reg, "to_pixel") and not isinstance(
+            reg, regions.PixelRegion) else reg
+        mask = pix.to_mask(mode="center")
+        img = mask.to_image((ny, nx))
+        if img is not None:
+            out |= img.astype(bool)
+    if not out.any():
+        raise KinemapError(f"the regions in {path} do not overlap the cube")
+    return out
+
+
+def select_channels(cube, vrange):
+    """``(cube, channels)``: the cube cut to the channels inside ``vrange`` (see
+    :func:`channel_range`) and the slice of the original channels it keeps."""
+    from dataclasses import replace
+
+    cs = channel_range(cube.velocity, vrange)
+    source = cube.source
+    if source is not None:
+        c0 = source.channels[0]
+        source = replace(source, channels=(c0 + cs.start, c0 + cs.stop))
+    meta = cube.meta
+    if meta.wcs3d is not None:
+        meta = replace(meta, wcs3d=meta.wcs3d.slice((cs, slice(None), slice(None))))
+    return replace(cube, data=cube.data[cs], velocity=cube.velocity[cs],
+                   spectral=cube.spectral[cs], meta=meta, source=source), cs

@@ -1,0 +1,186 @@
+"""Signal masks: which voxels hold emission.
+
+Two methods:
+
+* ``threshold``: a voxel is signal when its value exceeds ``threshold`` times the noise of
+  its spectrum.
+* ``smooth``: smooth-and-mask (common practice for radio cubes): smooth the cube spatially
+  with a Gaussian (``smooth_beams`` beams FWHM, or ``smooth_pixels`` pixels when the cube
+  has no beam) and spectrally with a boxcar of ``smooth_channels`` channels; scale each
+  pixel's noise by the factor smoothing reduces noise by; keep voxels above ``threshold``
+  times that noise; grow them into connected voxels above ``grow_threshold``; drop
+  islands whose sky footprint is smaller than ``min_pixels`` or whose spectral extent is
+  smaller than ``min_channels``.
+
+The smooth method works on the whole cube in memory as float32 (islands are global);
+the threshold method is computed block by block by the stages that use it.
+A mask is True where a voxel counts as signal; NaN voxels are never signal.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from kinemap.errors import KinemapError
+from kinemap.spectral.response import noise_correlation, variance_of_sum
+
+__all__ = ["SignalMask", "make_mask", "MASK_METHODS"]
+
+MASK_METHODS = ("smooth", "threshold", "none")
+
+
+@dataclass(frozen=True)
+class SignalMask:
+    """A signal mask.
+
+    Attributes
+    ----------
+    method : str
+        'smooth', 'threshold' or 'none'.
+    mask : ndarray of bool (nchan, ny, nx) or None
+        Precomputed mask ('smooth'); None for 'threshold' (evaluated per block from
+        ``threshold`` and the noise map) and 'none'.
+    threshold : float
+        S/N threshold used by 'threshold' (and the seed threshold of 'smooth').
+    settings : dict
+        The parameters, for provenance.
+    """
+
+    method: str
+    mask: np.ndarray | None = None
+    threshold: float = 3.0
+    settings: dict = field(default_factory=dict)
+
+    def block(self, ys: slice, data: np.ndarray, noise_sigma: np.ndarray,
+              footprint: np.ndarray | None = None) -> np.ndarray:
+        """The mask for rows ``ys`` of a block ``data`` (nchan, rows, nx)."""
+        finite = np.isfinite(data)
+        if self.method == "none":
+            out = finite
+        elif self.method == "threshold":
+            with np.errstate(invalid="ignore"):
+                out = finite & (data > self.threshold * noise_sigma[None])
+        else:
+            out = finite & self.mask[:, ys, :]
+        if footprint is not None:
+            out = out & footprint[None, ys, :]
+        return out
+
+
+def _smoothing_noise_factor(filled, finite, sig, nbox, rho, nplanes=24):
+    """How much the smoothing lowers the noise.
+
+    Spatial part: measured, because radio noise is correlated on the beam scale.  The
+    differences of neighbouring channels hold the noise with its spatial correlation but
+    not the (spectrally smooth) emission, so the MAD of a few smoothed difference planes
+    over the MAD of the raw ones is the spatial factor.  Spectral part: exact for a boxcar
+    of ``nbox`` channels given the channel correlation ``rho``.
+    """
+    from scipy import ndimage
+
+    nchan = filled.shape[0]
+    idx = np.unique(np.linspace(0, nchan - 2, min(nplanes, nchan - 1)).astype(int))
+    diff = (filled[idx + 1] - filled[idx]) * (finite[idx + 1] & finite[idx])
+    f_space = 1.0
+    if sig > 0:
+        smd = ndimage.gaussian_filter(diff, sigma=(0, sig, sig), mode="constant")
+        raw_mad = np.median(np.abs(diff[diff != 0])) if np.any(diff != 0) else 0.0
+        if raw_mad > 0:
+            f_space = float(np.median(np.abs(smd[diff != 0])) / raw_mad)
+    w = np.full((nbox, 1), 1.0 / nbox)
+    f_spec = float(np.sqrt(variance_of_sum(w, 1.0, rho))[0]) if nbox > 1 else 1.0
+    return f_space * f_spec
+
+
+def make_mask(cube, noise, *, method: str = "smooth", threshold: float | None = None,
+              grow_threshold: float = 2.0, smooth_beams: float = 1.5,
+              smooth_pixels: float = 3.0, smooth_channels: int = 3, min_pixels: int | None = None,
+              min_channels: int = 2, channel_response: str = "tophat",
+              max_memory: int | None = None) -> SignalMask:
+    """Build a :class:`SignalMask` for ``cube`` with noise map ``noise``.
+
+    Parameters
+    ----------
+    method : {'smooth', 'threshold', 'none'}
+    threshold : float
+        S/N of a signal voxel (default 3 for 'threshold', 5 for the seeds of 'smooth', whose
+        noise is smoothed too; a 5-sigma seed is false once in ~3.5 million independent
+        voxels, Gaussian tail).
+    grow_threshold : float
+        'smooth': seeds grow into connected voxels whose smoothed S/N exceeds this.
+    smooth_beams, smooth_pixels : float
+        'smooth': spatial smoothing FWHM in beams (cubes with a beam) or pixels.
+    smooth_channels : int
+        'smooth': boxcar width in channels (1 = no spectral smoothing).
+    min_pixels : int, optional
+        'smooth': smallest sky footprint of an island kept (default: the area of one
+        resolution element of the smoothed cube, in pixels).
+    min_channels : int
+        'smooth': smallest spectral extent of an island kept.
+    channel_response : str
+        Sets the channel noise correlation used for the spectral smoothing factor.
+    max_memory : int, optional
+        Bytes the run may use; 'smooth' needs about three float32 copies of the cube and
+        refuses with a clear message when they do not fit.
+    """
+    m = str(method).strip().lower()
+    if m not in MASK_METHODS:
+        raise KinemapError(f"'mask method' must be one of {', '.join(MASK_METHODS)}, got {method!r}")
+    if m == "none":
+        return SignalMask("none", None, 0.0, {})
+    if m == "threshold":
+        t = 3.0 if threshold is None else float(threshold)
+        if not t > 0:
+            raise KinemapError(f"'threshold' must be positive, got {threshold!r}")
+        return SignalMask("threshold", None, t, {"threshold": t})
+    t = 5.0 if threshold is None else float(threshold)
+    if not (t > 0 and grow_threshold > 0 and smooth_channels >= 1):
+        raise KinemapError("'threshold', 'grow_threshold' and 'smooth_channels' must be positive")
+    beam = cube.meta.beam
+    pix = cube.meta.pixel_scale_arcsec
+    if beam is not None:
+        beam_fwhm_pix = float(np.sqrt(beam.major.to_value("arcsec") * beam.minor.to_value("arcsec"))) / pix
+        fwhm_pix = smooth_beams * beam_fwhm_pix
+    else:
+        beam_fwhm_pix, fwhm_pix = 0.0, smooth_pixels
+    if min_pixels is None:
+        # one resolution element of the smoothed cube: noise islands are about this big,
+        # so a real source must cover more.  1.1331 = pi / (4 ln 2), Gaussian area / FWHM^2.
+        min_pixels = int(max(1, round(1.1331 * (beam_fwhm_pix ** 2 + fwhm_pix ** 2))))
+    if noise is None:
+        raise KinemapError("the smooth mask needs a noise map; estimate the noise first")
+    need = 3 * 4 * int(np.prod(cube.shape))
+    if max_memory is not None and need > max_memory:
+        raise KinemapError(
+            f"the smooth mask holds the whole cube in memory ({need / 1e9:.1f} GB) and "
+            f"--max-memory is {max_memory / 1e9:.1f} GB; use --mask threshold or raise --max-memory")
+    from scipy import ndimage  # a tenth of a second to import: only for this method
+
+    data = np.asarray(cube.data, dtype=np.float32)
+    finite = np.isfinite(data)
+    filled = np.where(finite, data, 0.0).astype(np.float32)
+    sig = fwhm_pix / 2.354820045
+    sm = ndimage.gaussian_filter(filled, sigma=(0, sig, sig), mode="constant") if sig > 0 else filled
+    if smooth_channels > 1:
+        sm = ndimage.uniform_filter1d(sm, size=int(smooth_channels), axis=0, mode="constant")
+    factor = _smoothing_noise_factor(filled, finite, sig, int(smooth_channels),
+                                     noise_correlation(channel_response))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        snr = sm / (noise.sigma[None] * factor)
+    seeds = finite & (snr > t)
+    grown = ndimage.binary_propagation(seeds, mask=finite & (snr > grow_threshold))
+    labels, nlab = ndimage.label(grown)
+    if nlab:
+        objs = ndimage.find_objects(labels)
+        keep = np.zeros(nlab + 1, bool)
+        for k, sl in enumerate(objs, start=1):
+            sub = labels[sl] == k
+            npix = int(sub.any(axis=0).sum())
+            nch = int(sub.any(axis=(1, 2)).sum())
+            keep[k] = npix >= min_pixels and nch >= min_channels
+        grown = keep[labels]
+    settings = {"threshold": t, "grow_threshold": grow_threshold, "smooth_fwhm_pixels": fwhm_pix,
+                "smooth_channels": int(smooth_channels), "min_pixels": int(min_pixels),
+                "min_channels": int(min_channels), "smoothed_noise_factor": factor}
+    return SignalMask("smooth", grown, t, settings)

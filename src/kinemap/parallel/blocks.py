@@ -1,0 +1,122 @@
+"""Walk a cube in blocks of whole spectra so memory stays bounded.
+
+Every per-pixel stage (noise, moments, line fits) goes through :func:`map_blocks`: a block
+is all channels of a band of rows, ``(nchan, rows, nx)``.  The band height is chosen so
+that one block, times a working factor for the temporaries a stage makes, fits in
+``max_memory`` bytes.  The same block function runs in this process (the default: its
+compiled kernels use every core) or, given a dask.distributed client, as one task per
+block on the cluster's workers, which read their blocks from the file themselves.  Either
+way each pixel sees the same code and the same data, so the maps are identical.
+"""
+from __future__ import annotations
+
+import numpy as np
+from tqdm.auto import tqdm
+
+from kinemap.errors import KinemapError
+
+__all__ = ["read_rows", "block_rows", "task_rows", "map_blocks", "DEFAULT_MAX_MEMORY"]
+
+DEFAULT_MAX_MEMORY = 1 << 30  # 1 GiB working set unless the caller says otherwise
+TASKS_PER_WORKER = 4  # on a cluster, blocks are cut so each worker gets at least this many
+
+
+def block_rows(shape, *, max_memory: int = DEFAULT_MAX_MEMORY, factor: float = 6.0) -> int:
+    """Rows per block for a cube of ``shape`` = (nchan, ny, nx)."""
+    nchan, ny, nx = shape
+    per_row = nchan * nx * 8 * factor
+    if nchan * 8 * factor > max_memory:
+        raise KinemapError(
+            f"'max_memory' of {max_memory} bytes cannot hold one spectrum of {nchan} channels "
+            "with the stage's temporaries; raise it")
+    return int(max(1, min(ny, max_memory // max(per_row, 1))))
+
+
+def read_rows(cube, ys: slice, *, dtype=None) -> np.ndarray:
+    """Rows ``ys`` of ``cube`` as a C-contiguous (nchan, rows, nx) array (see iter_blocks)."""
+    if cube.source is not None:
+        return cube.source.read(ys, dtype=dtype)
+    raw = cube.data[:, ys, :]
+    single = raw.dtype.kind == "f" and raw.dtype.itemsize == 4  # any byte order
+    dt = dtype or (np.float32 if single else np.float64)
+    return np.ascontiguousarray(np.asarray(raw), dtype=dt)
+
+
+def task_rows(shape, *, max_memory: int, factor: float, client=None) -> int:
+    """Rows per block as :func:`map_blocks` cuts them (capped on a cluster so each worker
+    gets at least ``TASKS_PER_WORKER`` blocks; one big block would keep the others idle)."""
+    rows = block_rows(shape, max_memory=max_memory, factor=factor)
+    if client is not None:
+        nworkers = max(1, len(client.nthreads()))
+        rows = max(1, min(rows, -(-shape[1] // (TASKS_PER_WORKER * nworkers))))
+    return rows
+
+
+def _row_slices(ny, rows):
+    return [slice(y0, min(ny, y0 + rows)) for y0 in range(0, ny, rows)]
+
+
+def _run_block(source, data, ys, func, args, kwargs, threads):
+    """One block on a worker: read it (from the file when possible) and run ``func``."""
+    if threads:
+        import numba
+
+        numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
+    block = source.read(ys) if source is not None else data
+    return ys, func(block, **args, **kwargs)
+
+
+def map_blocks(cube, func, *, outputs: dict, max_memory: int = DEFAULT_MAX_MEMORY,
+               factor: float = 6.0, block_args=None, progress: bool | str = False,
+               client=None, **kwargs) -> dict:
+    """Run ``func(block, **block_args(ys), **kwargs)`` on every block and assemble the maps.
+
+    Parameters
+    ----------
+    func : callable
+        Module-level function (picklable) returning a dict of arrays whose last two axes
+        are (rows, nx).
+    outputs : dict name -> (leading shape tuple, dtype, fill value)
+        The full-size maps to assemble, shape ``leading + (ny, nx)``.
+    block_args : callable ys -> dict, optional
+        Per-block arguments (slices of noise maps, masks), evaluated here.
+    client : distributed.Client, optional
+        Run one task per block on the cluster.
+    """
+    nchan, ny, nx = cube.shape
+    rows = task_rows(cube.shape, max_memory=max_memory, factor=factor, client=client)
+    out = {k: np.full(tuple(lead) + (ny, nx), fill, dtype=dt) for k, (lead, dt, fill) in outputs.items()}
+    bar = None
+    if progress:
+        bar = tqdm(total=ny, unit="row", desc=progress if isinstance(progress, str) else None,
+                   leave=False, disable=None)
+
+    def store(ys, res):
+        for k, arr in res.items():
+            out[k][..., ys, :] = arr
+        if bar is not None:
+            bar.update(ys.stop - ys.start)
+
+    try:
+        slices = _row_slices(ny, rows)
+        if client is None:
+            for ys in slices:
+                store(ys, func(read_rows(cube, ys), **(block_args(ys) if block_args else {}),
+                               **kwargs))
+        else:
+            from distributed import as_completed
+
+            threads = min(client.nthreads().values() or [1])
+            futures = []
+            for ys in slices:
+                data = None if cube.source is not None else read_rows(cube, ys)
+                futures.append(client.submit(_run_block, cube.source, data, ys, func,
+                                             block_args(ys) if block_args else {}, kwargs,
+                                             threads, pure=False))
+            for fut in as_completed(futures):
+                ys, res = fut.result()
+                store(ys, res)
+    finally:
+        if bar is not None:
+            bar.close()
+    return out

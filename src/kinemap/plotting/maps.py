@@ -1,0 +1,102 @@
+"""PNG plots of 2D products: world-coordinate axes, colour bar with unit, beam ellipse.
+
+Colour choices: velocity maps use a diverging map centred on the systemic velocity
+(the median of the map unless given) with symmetric limits; intensities a sequential map
+with percentile limits; status maps a discrete map with a legend of the codes.
+"""
+from __future__ import annotations
+
+import matplotlib
+
+matplotlib.use("Agg")
+import astropy.units as u  # noqa: E402
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+from matplotlib.colors import BoundaryNorm, ListedColormap  # noqa: E402
+from matplotlib.patches import Ellipse  # noqa: E402
+
+from kinemap.status import Status  # noqa: E402
+
+__all__ = ["plot_map", "CMAPS"]
+
+CMAPS = {"intensity": "inferno", "velocity": "RdBu_r", "residual": "RdBu_r", "dispersion": "viridis",
+         "error": "cividis", "noise": "cividis", "count": "Greys", "mask": "Greys",
+         "ratio": "PuOr_r", "temperature": "plasma", "other": "viridis"}
+
+
+def _finite(a):
+    a = np.asarray(a, dtype=float)
+    return a[np.isfinite(a)]
+
+
+def _add_beam(ax, meta):
+    beam = meta.beam
+    if beam is None:
+        return
+    pix = meta.pixel_scale_arcsec
+    w = beam.minor.to_value(u.arcsec) / pix
+    h = beam.major.to_value(u.arcsec) / pix
+    ny, nx = ax.images[0].get_array().shape
+    x0, y0 = 0.08 * nx + h / 2, 0.08 * ny + h / 2
+    # BPA is east of north; with east to the left the ellipse turns anticlockwise by BPA.
+    ax.add_patch(Ellipse((x0, y0), w, h, angle=beam.pa.to_value(u.deg), facecolor="none",
+                         edgecolor="k", lw=1.2, hatch="///", zorder=5))
+
+
+def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float | None = None,
+             figsize=(6.0, 5.2)):
+    """Figure of one map with the cube's celestial WCS.  Returns a matplotlib Figure."""
+    fig = plt.figure(figsize=figsize)
+    ax = fig.add_subplot(111, projection=meta.wcs)
+    vals = _finite(data)
+    label = title
+    unit = u.Unit(unit)
+    if unit != u.one:
+        label += f" [{unit.to_string()}]"
+    if kind == "status":
+        codes = list(Status)
+        colours = ["#2c7bb6", "#fdae61", "#ffffbf", "#d7d7d7", "#7f7f7f", "#ffffff",
+                   "#d7191c", "#000000"][: len(codes)]
+        cmap = ListedColormap(colours)
+        norm = BoundaryNorm(np.arange(-0.5, len(codes) + 0.5), cmap.N)
+        im = ax.imshow(np.where(np.isfinite(data), data, Status.NO_DATA), origin="lower",
+                       cmap=cmap, norm=norm, interpolation="nearest")
+        cb = fig.colorbar(im, ax=ax, ticks=range(len(codes)))
+        cb.ax.set_yticklabels([f"{int(c)} {c.name.lower()}" for c in codes], fontsize=7)
+        cb.set_label("status")
+    else:
+        cmap = plt.get_cmap(CMAPS.get(kind, "viridis")).copy()
+        cmap.set_bad("#e8e8e8")
+        if vals.size == 0:
+            vmin, vmax = 0.0, 1.0
+        elif kind in ("velocity", "residual"):
+            c = 0.0 if kind == "residual" else (float(np.median(vals)) if center is None
+                                               else float(center))
+            half = float(np.percentile(np.abs(vals - c), 98)) or 1.0
+            vmin, vmax = c - half, c + half
+        else:
+            vmin, vmax = (float(np.percentile(vals, 1)), float(np.percentile(vals, 99.5)))
+            if vmax <= vmin:
+                vmin, vmax = vmin - 0.5, vmax + 0.5
+        im = ax.imshow(data, origin="lower", cmap=cmap, vmin=vmin, vmax=vmax,
+                       interpolation="nearest")
+        cb = fig.colorbar(im, ax=ax)
+        cb.set_label(label)
+    _add_beam(ax, meta)
+    lon, lat = ax.coords[0], ax.coords[1]
+    lon.set_axislabel(_axis_label(meta.wcs, 0))
+    lat.set_axislabel(_axis_label(meta.wcs, 1))
+    ax.set_title(title)
+    fig.tight_layout()
+    return fig
+
+
+def _axis_label(wcs, i):
+    ctype = wcs.wcs.ctype[i].split("-")[0]
+    return {"RA": "Right ascension", "DEC": "Declination", "GLON": "Galactic longitude",
+            "GLAT": "Galactic latitude"}.get(ctype, ctype)
+
+
+def save(fig, path, *, dpi=120):
+    fig.savefig(path, dpi=dpi)
+    plt.close(fig)
