@@ -29,7 +29,7 @@ def test_real_cube_median_dispersion(real_cube_path, tmp_path):
     assert 0.5 < np.median(sigma[good]) < 0.75
     manifest = json.loads((out / "manifest.json").read_text())
     for key in ("velocity", "velocity_err", "dispersion", "dispersion_err", "amplitude",
-                "amplitude_err", "integrated", "baseline", "chi2_reduced", "fit_status", "ncomp"):
+                "amplitude_err", "integrated", "baseline", "chi2_reduced", "fit_status", "n_components"):
         assert key in manifest["products"], key
     assert any("fit" in k for k in manifest["timings"])
     assert "STATCODE" in fits.getheader(out / "fit_status.fits")
@@ -96,7 +96,7 @@ def test_two_components_and_model_cube(tmp_path):
     out = tmp_path / "o"
     assert main(["maps", path, "--method", "gauss", "--components", "auto", "--order", "velocity",
                  "--no-mask", "--write-model", "--out", str(out), "--no-plots", "--no-progress"]) == 0
-    assert (fits.getdata(out / "ncomp.fits") == 2).all()
+    assert (fits.getdata(out / "n_components.fits") == 2).all()
     np.testing.assert_allclose(fits.getdata(out / "velocity_1.fits"), -30.0, atol=2.0)
     np.testing.assert_allclose(fits.getdata(out / "velocity_2.fits"), 40.0, atol=2.0)
     model = fits.getdata(out / "model.fits")

@@ -40,7 +40,7 @@ def test_local_cluster_equals_in_process(tmp_path, client):
     dist_noise = estimate_noise(cube, max_memory=small, client=client)
     np.testing.assert_array_equal(local_noise.sigma, dist_noise.sigma)
     for method in ("threshold", "smooth"):
-        mask = make_mask(cube, local_noise, method=method)
+        mask = make_mask(cube, noise=local_noise, method=method)
         a = compute_moments(cube, mask=mask, noise=local_noise, max_memory=small)
         b = compute_moments(cube, mask=mask, noise=local_noise, max_memory=small, client=client)
         for key in ("moment0", "moment1", "moment2", "moment1_err", "peak", "nchan"):

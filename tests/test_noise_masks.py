@@ -76,10 +76,10 @@ def test_masks_find_the_source_and_not_the_noise(tmp_path):
     pure = _cube(tmp_path / "n", _line_cube(np.random.default_rng(10), ny=30, nx=30, amp=0.0))
     pure_noise = estimate_noise(pure)
     for method in ("threshold", "smooth"):
-        m = make_mask(cube, noise, method=method)
+        m = make_mask(cube, noise=noise, method=method)
         full = m.block(slice(0, 30), np.asarray(cube.data, dtype=float), noise.sigma)
         assert full[strong].mean() > 0.8, method  # finds the source
-        m0 = make_mask(pure, pure_noise, method=method)
+        m0 = make_mask(pure, noise=pure_noise, method=method)
         fp = m0.block(slice(0, 30), np.asarray(pure.data, dtype=float), pure_noise.sigma).mean()
         # plain 3-sigma threshold: one-sided Gaussian tail, 0.135 % false positives
         # (scipy.stats.norm.sf(3)), raised somewhat because each pixel's noise estimate
@@ -90,4 +90,4 @@ def test_masks_find_the_source_and_not_the_noise(tmp_path):
         else:
             assert fp == 0.0
     with pytest.raises(KinemapError, match="mask method"):
-        make_mask(cube, noise, method="magic")
+        make_mask(cube, noise=noise, method="magic")

@@ -538,7 +538,7 @@ def test_plots_return_figures(flat_field, flat_fit):
     vf = pr.plot_velocity_fields(flat_fit)
     vax = np.arange(700.0, 1300.0, 10.0)
     cube = np.exp(-0.5 * ((vax[:, None, None] - v[None]) / 10.0) ** 2)
-    pvf = pr.plot_pv_diagram(cube, vax, flat_fit)
+    pvf = pr.plot_pv_diagram(major_axis_pv(cube, vax, flat_fit), flat_fit)
     for f in figs + [vf, pvf]:
         assert isinstance(f, Figure)
     assert len(figs[1].axes) == 5

@@ -10,7 +10,7 @@ import argparse
 import sys
 import warnings
 
-from kinemap import __version__
+from kinemap._version import __version__
 from kinemap.errors import KinemapError, KinemapWarning
 
 __all__ = ["main", "build_parser"]

@@ -73,19 +73,19 @@ def load_truth(cube_path) -> dict:
 
 def _sn_mask(maps, limit=5.0):
     with np.errstate(invalid="ignore", divide="ignore"):
-        return np.isfinite(maps.moment1) & (maps.moment0 / maps.moment0_err > limit)
+        return np.isfinite(maps.arrays["moment1"]) & (maps.arrays["moment0"] / maps.arrays["moment0_err"] > limit)
 
 
 def _rows_galaxy(state, truth):
     maps = state.results["moments"]
     good = _sn_mask(maps)
-    v = maps.moment1[good]
+    v = maps.arrays["moment1"][good]
     beam = state.cube.meta.beam
     pix = state.cube.meta.pixel_scale_arcsec
     beam_pix = beam.sr.to_value("arcsec2") / pix ** 2
-    flux = float(np.nansum(maps.moment0[good]) / beam_pix)
-    flux_err = float(np.sqrt(np.nansum(maps.moment0_err[good] ** 2)) / beam_pix)
-    w = maps.moment0[good]
+    flux = float(np.nansum(maps.arrays["moment0"][good]) / beam_pix)
+    flux_err = float(np.sqrt(np.nansum(maps.arrays["moment0_err"][good] ** 2)) / beam_pix)
+    w = maps.arrays["moment0"][good]
     vsys = float(np.sum(w * v) / np.sum(w))
     rows = _rows_rings(state, truth) if "rings" in state.results else []
     return rows + [
@@ -136,10 +136,10 @@ def _rows_nebula(state, truth):
     tv = np.asarray(truth["velocity_kms"])[good]
     t_sig = np.asarray(truth["halpha_dispersion_observed_kms"])[good]
     rows = [
-        {"quantity": "median H-alpha velocity (moment 1, S/N > 20)", "measured": np.median(maps.moment1[good]),
+        {"quantity": "median H-alpha velocity (moment 1, S/N > 20)", "measured": np.median(maps.arrays["moment1"][good]),
          "truth": float(np.median(tv)), "unit": "km/s", "tolerance": 1.0,
          "note": "optical convention, air wavelengths; moments over -250 to 250 km/s"},
-        {"quantity": "median H-alpha moment 2", "measured": np.median(maps.moment2[good]),
+        {"quantity": "median H-alpha moment 2", "measured": np.median(maps.arrays["moment2"][good]),
          "truth": float(np.median(t_sig)), "unit": "km/s", "tolerance": 1.0,
          "note": "truth: observed sigma incl. instrument (the cube samples channel centres)"},
     ]

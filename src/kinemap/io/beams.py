@@ -14,7 +14,7 @@ import astropy.units as u
 
 from kinemap.errors import BeamWarning, KinemapError
 
-__all__ = ["Beam", "read_beam", "BEAM_POLICIES"]
+__all__ = ["Beam", "as_beam", "read_beam", "BEAM_POLICIES"]
 
 
 @dataclass(frozen=True)
@@ -49,6 +49,41 @@ class Beam:
     def __str__(self) -> str:
         return (f"{self.major.to_value(u.arcsec):.4g} x {self.minor.to_value(u.arcsec):.4g} "
                 f"arcsec, PA {self.pa.to_value(u.deg):.1f} deg")
+
+
+def as_beam(value) -> Beam:
+    """A :class:`Beam` from what a caller may hold: a FWHM Quantity (circular beam), a
+    string ('46arcsec' or '30arcsec,20arcsec,45deg': major, minor, position angle), a
+    :class:`Beam` or a ``radio_beam.Beam``."""
+    if isinstance(value, Beam):
+        return value
+    if all(hasattr(value, a) for a in ("major", "minor", "pa")):  # radio_beam.Beam
+        return Beam.from_radio_beam(value)
+    if isinstance(value, str):
+        return _parse_beam_text(value)
+    if isinstance(value, u.Quantity) and value.unit.is_equivalent(u.deg) and value.isscalar:
+        if not value.value > 0:
+            raise KinemapError(f"'beam' must be positive, got {value}")
+        return Beam(value.to(u.deg), value.to(u.deg), 0.0 * u.deg)
+    raise KinemapError(f"'beam' must be an angle like '46 arcsec' (FWHM), "
+                       f"'30arcsec,20arcsec,45deg' or a beam object, got {value!r}")
+
+
+def _parse_beam_text(text: str) -> Beam:
+    parts = [p.strip() for p in text.split(",") if p.strip()]
+    try:
+        qs = [u.Quantity(p) for p in parts]
+    except (TypeError, ValueError):
+        qs = []
+    if len(qs) == 1:
+        qs = [qs[0], qs[0], 0 * u.deg]
+    if (len(qs) != 3 or not all(q.unit.is_equivalent(u.deg) for q in qs)
+            or not (qs[0].value > 0 and qs[1].value > 0)):
+        raise KinemapError(f"'beam' must look like '46arcsec' or '30arcsec,20arcsec,45deg' "
+                           f"(major, minor FWHM, position angle), got {text!r}")
+    major, minor = max(qs[0], qs[1]), min(qs[0], qs[1])
+    return Beam(major.to(u.deg), minor.to(u.deg), qs[2].to(u.deg))
+
 
 BEAM_POLICIES = ("common", "refuse")
 

@@ -15,7 +15,7 @@ import astropy.units as u
 import numpy as np
 from astropy.io import fits
 
-from kinemap import __version__
+from kinemap._version import __version__
 
 __all__ = ["product_header", "write_fits"]
 

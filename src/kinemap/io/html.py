@@ -4,7 +4,7 @@ from __future__ import annotations
 import html
 from datetime import datetime, timezone
 
-from kinemap import __version__
+from kinemap._version import __version__
 
 __all__ = ["write_index"]
 

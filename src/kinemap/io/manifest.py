@@ -2,11 +2,13 @@
 from __future__ import annotations
 
 import json
+import sys
 from datetime import datetime, timezone
+from importlib.metadata import PackageNotFoundError, version
 
 import astropy.units as u
 
-from kinemap import __version__
+from kinemap._version import __version__
 
 __all__ = ["build_manifest", "write_json"]
 
@@ -25,6 +27,8 @@ def build_manifest(meta, products: dict, *, timings: dict, options: dict,
                 "medium": meta.medium}
     doc = {
         "kinemap_version": __version__,
+        "versions": library_versions(),
+        "command_line": command_line(),
         "created": datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "input": None if meta is None else {
             "file": meta.source, "sha256": meta.checksum, "spectral_ctype": meta.ctype_original,
@@ -46,6 +50,30 @@ def build_manifest(meta, products: dict, *, timings: dict, options: dict,
     if summary:
         doc["summary"] = summary
     return doc
+
+
+_LIBRARIES = ("numpy", "scipy", "astropy", "spectral-cube", "numba", "dask", "matplotlib")
+
+
+def library_versions() -> dict:
+    """Versions of kinemap and the libraries whose numbers its products depend on."""
+    out = {"kinemap": __version__, "python": sys.version.split()[0]}
+    for name in _LIBRARIES:
+        try:
+            out[name] = version(name)
+        except PackageNotFoundError:
+            out[name] = None
+    return out
+
+
+def command_line() -> str | None:
+    """The command that made the products (None inside a Python session)."""
+    argv0 = sys.argv[0] if sys.argv else ""
+    if not argv0.endswith("kinemap") and "kinemap/cli" not in argv0:
+        return None
+    import shlex
+
+    return " ".join(shlex.quote(a) for a in ["kinemap", *sys.argv[1:]])
 
 
 def write_json(path, doc) -> None:

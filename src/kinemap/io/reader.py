@@ -3,7 +3,9 @@ from __future__ import annotations
 
 import os
 import warnings
+import weakref
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
 
 import astropy.units as u
 import numpy as np
@@ -14,8 +16,9 @@ from astropy.wcs.utils import pixel_to_skycoord
 from kinemap.units import parse_quantity
 from kinemap.spectral.airvac import fits_vacuum_to_air
 from kinemap.errors import KinemapError, KinemapWarning
-from kinemap.io._header import build_wcs, find_cube_hdu, open_fits, parse_bunit, sha256
-from kinemap.io.beams import Beam, check_policy, read_beam
+from kinemap.io._header import build_wcs, parse_bunit, sha256
+from kinemap.io._open import Opened, data_checksum, open_source
+from kinemap.io.beams import Beam, as_beam, check_policy, read_beam
 from kinemap.io._source import FileSource
 from kinemap.io.cube import Cube, CubeMeta
 from kinemap.spectral.frames import change_frame, normalise_frame
@@ -53,25 +56,30 @@ def _warn_not_memmapped(path, why):
 _CHECKSUMS = ThreadPoolExecutor(max_workers=1, thread_name_prefix="kinemap-sha256")
 
 
-def read_cube(path, *, convention: str | None = None, rest_value=None, frame: str | None = None,
-              vrange=None, box=None, region=None, beams: str = "common", bunit=None,
-              hdu=None, checksum: bool = True) -> Cube:
-    """Open a FITS cube lazily and work out its velocity axis.
+def read_cube(source, *, rest_value=None, convention: str | None = None,
+              frame: str | None = None, vrange=None, box=None, region=None,
+              beams: str = "common", bunit=None, beam=None, hdu=None,
+              checksum: bool = True) -> Cube:
+    """Read a spectral-line cube and work out its velocity axis.
 
     Parameters
     ----------
-    path : str or path-like
-        FITS file with two celestial axes and one spectral axis (plus, optionally, a
-        length-1 Stokes axis).  Spectral axes in frequency (FREQ), vacuum or air wavelength
-        (WAVE, AWAV) or velocity (VRAD, VOPT, VELO, and legacy VELO-xxx/FELO-xxx types,
-        which wcslib translates; every translation is recorded in ``meta.repairs``).
-    convention : {'radio', 'optical', 'relativistic'}, optional
-        Velocity convention of the output velocities.  Default: radio for a frequency axis,
-        optical for a wavelength axis, the axis' own for a velocity axis.
+    source : str, path-like, HDU, HDUList, SpectralCube or (array, header_or_wcs)
+        A FITS file (read lazily: memory-mapped where the file allows), an astropy
+        ``PrimaryHDU``/``ImageHDU``/``HDUList``, a ``spectral_cube.SpectralCube`` (its mask
+        becomes NaN, "no data"), or a numpy array of shape (nchan, ny, nx) with a FITS
+        header or an astropy WCS describing it (a Quantity array gives BUNIT).  The cube
+        has two celestial axes and one spectral axis (plus, optionally, a length-1 Stokes
+        axis).  Spectral axes in frequency (FREQ), vacuum or air wavelength (WAVE, AWAV) or
+        velocity (VRAD, VOPT, VELO, and legacy VELO-xxx/FELO-xxx types, which wcslib
+        translates; every translation is recorded in ``meta.repairs``).
     rest_value : Quantity or str, optional
         Rest frequency or wavelength; overrides RESTFRQ/RESTFREQ/RESTWAV.  For an AWAV
         axis it must be an air wavelength.  A header's RESTWAV is a vacuum wavelength
         (FITS WCS Paper III) and is converted to air for AWAV axes.
+    convention : {'radio', 'optical', 'relativistic'}, optional
+        Velocity convention of the output velocities.  Default: radio for a frequency axis,
+        optical for a wavelength axis, the axis' own for a velocity axis.
     frame : str, optional
         Spectral frame for the velocities (TOPOCENT, BARYCENT, LSRK, ...).  Default: the
         cube's SPECSYS.  A change needs the observer's location and time in the header.
@@ -87,81 +95,136 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
         beam, or stop with a message.
     bunit : str or Unit, optional
         Overrides BUNIT.
+    beam : Quantity, str, Beam or radio_beam.Beam, optional
+        The beam when the header has none (single-dish cubes often lack BMAJ): a FWHM
+        Quantity (circular), ``'46arcsec'`` or ``'30arcsec,20arcsec,45deg'`` (major,
+        minor, position angle), or a beam object.  It replaces a header beam (recorded
+        in ``meta.repairs``) and is written into every product.
+    hdu : int or str, optional
+        Which HDU of a file or HDUList holds the cube (default: the first with 3+ axes).
     checksum : bool
-        Compute the SHA-256 of the file for provenance.
+        Compute the SHA-256 of the file (or of an in-memory array) for provenance.
 
     Returns
     -------
     Cube
-        Lazily read data (a numpy memory map where the file allows), shape
-        (nchan, ny, nx).
+        Shape (nchan, ny, nx); velocities float64 km/s in ``meta.convention`` and
+        ``meta.frame``.  Files are closed before returning (memory-mapped data stay valid).
     """
-    path = os.fspath(path)
-    hdul = open_fits(path)
-    hdu_obj = find_cube_hdu(hdul, path, hdu)
-    header = hdu_obj.header
-    wcs, repairs = build_wcs(header, path)
+    opened = open_source(source, hdu=hdu)
+    try:
+        return _read(opened, rest_value=rest_value, convention=convention, frame=frame,
+                     vrange=vrange, box=box, region=region, beams=beams, bunit=bunit,
+                     beam=beam, checksum=checksum)
+    finally:
+        opened.close()
+
+
+@dataclass
+class _Axes:
+    """The cube's WCS and what the reader needs to know about its axes."""
+
+    wcs: object
+    repairs: list
+    spec: int
+    lon: int
+    lat: int
+    kind: object
+    ctype: str
+    ctype_original: str
+
+
+def _axes(opened: Opened) -> _Axes:
+    header, name = opened.hdu.header, opened.name
+    wcs, repairs = build_wcs(header, name)
     spec = wcs.wcs.spec
     if spec < 0:
-        raise KinemapError(f"{path} has no spectral axis (CTYPE values "
+        raise KinemapError(f"{name} has no spectral axis (CTYPE values "
                            f"{list(wcs.wcs.ctype)}); give a spectral-line cube")
     if not wcs.has_celestial:
-        raise KinemapError(f"{path} has no celestial axes (CTYPE values {list(wcs.wcs.ctype)})")
-    ctype_original = str(header.get(f"CTYPE{spec + 1}", wcs.wcs.ctype[spec]))
+        raise KinemapError(f"{name} has no celestial axes (CTYPE values {list(wcs.wcs.ctype)})")
     ctype = wcs.wcs.ctype[spec]
-    kind = axis_kind(ctype)
-    lon, lat = wcs.wcs.lng, wcs.wcs.lat
+    return _Axes(wcs=wcs, repairs=repairs, spec=spec, lon=wcs.wcs.lng, lat=wcs.wcs.lat,
+                 kind=axis_kind(ctype), ctype=ctype,
+                 ctype_original=str(header.get(f"CTYPE{spec + 1}", ctype)))
 
-    # --- data: drop length-1 extra axes (Stokes), order as (spectral, lat, lon) ---------
+
+@dataclass
+class _Data:
+    """A (spectral, y, x) view of the values and how to read them from the file."""
+
+    arr: object
+    raw_shape: tuple
+    raw_dtype: str | None
+    drop: tuple
+    order: tuple
+    bscale: float
+    bzero: float
+    blank: object
+    compressed: bool
+    memmapped: bool
+    keep_open: object = None
+
+
+def _data_view(opened: Opened, ax: _Axes) -> _Data:
+    """Drop length-1 extra axes (Stokes) and order the values as (spectral, lat, lon)."""
+    header, name, wcs = opened.hdu.header, opened.name, ax.wcs
     naxis = wcs.naxis
     shape_wcs = [int(header.get(f"NAXIS{i + 1}", 1)) for i in range(naxis)]
     for i in range(naxis):
-        if i not in (spec, lon, lat) and shape_wcs[i] != 1:
+        if i not in (ax.spec, ax.lon, ax.lat) and shape_wcs[i] != 1:
             raise KinemapError(
-                f"{path} has a fourth axis {wcs.wcs.ctype[i]!r} of length {shape_wcs[i]}; "
+                f"{name} has a fourth axis {wcs.wcs.ctype[i]!r} of length {shape_wcs[i]}; "
                 "kinemap reads one Stokes plane: cut the cube to one plane first")
-    # Scaled integers and compressed images cannot be memory-mapped: astropy would scale
-    # the whole array into memory on access.  They are read lazily through the HDU's
-    # section instead (and scaled integers block by block straight from the file).
     bscale = float(header.get("BSCALE", 1.0))
     bzero = float(header.get("BZERO", 0.0))
-    blank = header.get("BLANK")
-    compressed = isinstance(hdu_obj, fits.CompImageHDU)
-    memmapped = not (compressed or bscale != 1.0 or bzero != 0.0)
+    compressed = isinstance(opened.hdu, fits.CompImageHDU)
+    on_disk = opened.path is not None
+    memmapped = on_disk and not (compressed or bscale != 1.0 or bzero != 0.0)
     raw_shape = tuple(int(header[f"NAXIS{naxis - i}"]) for i in range(naxis))
-    raw_dtype = _BITPIX.get(int(header.get("BITPIX", 0)))
-    if memmapped:
-        raw = hdu_obj.data  # a memory map: lazy through squeeze/transpose/slicing views
+    keep_open = None
+    if not on_disk:
+        raw = opened.hdu.data  # in memory already (astropy has applied any scaling)
         if raw is None:
-            raise KinemapError(f"{path}: the cube HDU holds no data")
+            raise KinemapError(f"{name}: the cube HDU holds no data")
+        raw = np.asarray(raw)
+    elif memmapped:
+        raw = opened.hdu.data  # a memory map: lazy through squeeze/transpose/slicing views
+        if raw is None:
+            raise KinemapError(f"{name}: the cube HDU holds no data")
     else:
-        _warn_not_memmapped(path, "compressed" if compressed else "scaled integers (BSCALE/BZERO)")
-        import dask.array as da
+        raw, keep_open = _lazy_section(opened, raw_shape, compressed)
+    np_axis = {i: naxis - 1 - i for i in range(naxis)}  # numpy order reverses the WCS order
+    drop = tuple(np_axis[i] for i in range(naxis) if i not in (ax.spec, ax.lon, ax.lat))
+    arr = raw.squeeze(axis=drop) if drop else raw
+    keep = sorted(np_axis[i] for i in (ax.spec, ax.lon, ax.lat))
+    pos = {a: k for k, a in enumerate(keep)}
+    order = (pos[np_axis[ax.spec]], pos[np_axis[ax.lat]], pos[np_axis[ax.lon]])
+    return _Data(arr=arr.transpose(order), raw_shape=raw_shape,
+                 raw_dtype=_BITPIX.get(int(header.get("BITPIX", 0))), drop=drop, order=order,
+                 bscale=bscale, bzero=bzero, blank=header.get("BLANK"), compressed=compressed,
+                 memmapped=bool(memmapped), keep_open=keep_open)
 
-        # astropy refuses sections of scaled data from a memory-mapped file: reopen without
-        hdu_index = next(i for i, h in enumerate(hdul) if h is hdu_obj)
-        plain = fits.open(path, memmap=False, mode="readonly")[hdu_index]
-        raw = da.from_array(_SectionArray(plain.section, raw_shape),
-                            chunks=(-1,) * (naxis - 2) + (8, -1), asarray=True)
-    arr = raw
-    # numpy axis order is the reverse of the WCS order
-    np_axis = {i: naxis - 1 - i for i in range(naxis)}
-    drop = [np_axis[i] for i in range(naxis) if i not in (spec, lon, lat)]
-    arr = arr.squeeze(axis=tuple(drop)) if drop else arr
-    keep = sorted(np_axis[i] for i in (spec, lon, lat))
-    pos = {ax: k for k, ax in enumerate(keep)}
-    order = (pos[np_axis[spec]], pos[np_axis[lat]], pos[np_axis[lon]])
-    arr = arr.transpose(order)
-    wcs2d = wcs.celestial
-    if lon > lat:  # keep x = longitude, y = latitude
-        wcs2d = wcs2d.sub([2, 1])
 
-    # --- spectral axis -> velocity --------------------------------------------------------
-    nchan = arr.shape[0]
-    spec_wcs = wcs.sub([spec + 1])
-    spec_unit = u.Unit(spec_wcs.wcs.cunit[0]) if spec_wcs.wcs.cunit[0] else u.one
-    spectral = u.Quantity(spec_wcs.pixel_to_world_values(np.arange(nchan, dtype=float)),
-                          spec_unit).ravel()
+def _lazy_section(opened: Opened, raw_shape, compressed):
+    """Scaled integers and compressed images cannot be memory-mapped (astropy would scale
+    the whole array into memory on access): read them lazily through the HDU's section.
+    Returns the dask array and the file it keeps open (closed with the cube)."""
+    _warn_not_memmapped(opened.path, "compressed" if compressed else
+                        "scaled integers (BSCALE/BZERO)")
+    import dask.array as da
+
+    # astropy refuses sections of scaled data from a memory-mapped file: reopen without
+    hdu_index = next(i for i, h in enumerate(opened.hdul) if h is opened.hdu)
+    plain = fits.open(opened.path, memmap=False, mode="readonly")
+    raw = da.from_array(_SectionArray(plain[hdu_index].section, raw_shape),
+                        chunks=(-1,) * (len(raw_shape) - 2) + (8, -1), asarray=True)
+    return raw, plain
+
+
+def _rest_value(rest_value, ax: _Axes):
+    """The rest value in the cube's medium: the caller's, else the header's."""
+    wcs, kind = ax.wcs, ax.kind
     if rest_value is not None:
         rest = check_rest_value(parse_quantity(rest_value, name="rest_value"))
     elif wcs.wcs.restfrq > 0:
@@ -172,8 +235,8 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
             # RESTWAV is a vacuum wavelength (FITS WCS Paper III); the AWAV axis needs the
             # air value, converted with the dispersion formula wcslib uses.
             air = float(fits_vacuum_to_air(rest.to_value(u.AA))) * u.AA
-            repairs.append(f"RESTWAV {rest.to(u.AA):.3f} (vacuum) read as {air:.3f} in air "
-                           "for the AWAV axis")
+            ax.repairs.append(f"RESTWAV {rest.to(u.AA):.3f} (vacuum) read as {air:.3f} in air "
+                              "for the AWAV axis")
             rest = air
     else:
         rest = None
@@ -181,55 +244,81 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
         raise KinemapError(
             "the cube's axis is in air wavelength (AWAV), so the rest value must be an air "
             f"wavelength, got {rest}; give --rest-value in Angstrom (air)")
-    conv = check_convention(convention) if convention else kind.convention
     if kind.physical in ("frequency", "wavelength") and rest is None:
         raise KinemapError(
-            f"no rest value: the {ctype} axis needs one to give velocities and the header "
+            f"no rest value: the {ax.ctype} axis needs one to give velocities and the header "
             "has no RESTFRQ/RESTFREQ/RESTWAV; give one with --rest-value (for example "
             "'1420.405751768 MHz' or '6562.80 Angstrom')")
+    return rest
 
-    specsys = normalise_frame(wcs.wcs.specsys) if wcs.wcs.specsys else ""
-    target_frame = normalise_frame(frame) if frame else specsys
-    if frame and target_frame != specsys:
-        if kind.medium == "air":
-            raise KinemapError("frame changes of air-wavelength (AWAV) cubes are not supported; "
-                               "convert the axis to vacuum wavelength first or drop --frame")
-        physical = spectral
-        if kind.physical == "velocity":
-            if rest is None:
-                raise KinemapError("no rest value: a frame change of a velocity axis needs one; "
-                                   "give --rest-value")
-            physical = spectral.to(rest.unit, equivalencies=getattr(
-                u, f"doppler_{kind.convention}")(rest))
-        ny, nx = arr.shape[1:]
-        centre = pixel_to_skycoord((nx - 1) / 2, (ny - 1) / 2, wcs2d)
-        physical = change_frame(physical, header=header, target=SkyCoord(centre),
-                                from_frame=specsys, to_frame=target_frame)
-        repairs.append(f"kinemap converted the spectral frame from {specsys} to {target_frame}")
-        velocity = to_velocity(physical, convention=conv, rest_value=rest)
-    else:
+
+def _velocity_axis(ax: _Axes, header, nchan, shape_yx, *, rest_value, convention, frame):
+    """(spectral coordinates, velocities km/s, rest value, convention, frame)."""
+    kind = ax.kind
+    spec_wcs = ax.wcs.sub([ax.spec + 1])
+    spec_unit = u.Unit(spec_wcs.wcs.cunit[0]) if spec_wcs.wcs.cunit[0] else u.one
+    spectral = u.Quantity(spec_wcs.pixel_to_world_values(np.arange(nchan, dtype=float)),
+                          spec_unit).ravel()
+    rest = _rest_value(rest_value, ax)
+    conv = check_convention(convention) if convention else kind.convention
+    specsys = normalise_frame(ax.wcs.wcs.specsys) if ax.wcs.wcs.specsys else ""
+    target = normalise_frame(frame) if frame else specsys
+    if not (frame and target != specsys):
         velocity = to_velocity(spectral, convention=conv, rest_value=rest,
                                native_convention=kind.convention)
+        return spectral, velocity, rest, conv, target
+    if kind.medium == "air":
+        raise KinemapError("frame changes of air-wavelength (AWAV) cubes are not supported; "
+                           "convert the axis to vacuum wavelength first or drop --frame")
+    physical = spectral
+    if kind.physical == "velocity":
+        if rest is None:
+            raise KinemapError("no rest value: a frame change of a velocity axis needs one; "
+                               "give --rest-value")
+        physical = spectral.to(rest.unit, equivalencies=getattr(
+            u, f"doppler_{kind.convention}")(rest))
+    ny, nx = shape_yx
+    centre = pixel_to_skycoord((nx - 1) / 2, (ny - 1) / 2, _celestial(ax))
+    physical = change_frame(physical, header=header, target=SkyCoord(centre),
+                            from_frame=specsys, to_frame=target)
+    ax.repairs.append(f"kinemap converted the spectral frame from {specsys} to {target}")
+    return spectral, to_velocity(physical, convention=conv, rest_value=rest), rest, conv, target
 
-    # --- beams ----------------------------------------------------------------------------
+
+def _celestial(ax: _Axes):
+    wcs2d = ax.wcs.celestial
+    return wcs2d.sub([2, 1]) if ax.lon > ax.lat else wcs2d  # keep x = longitude
+
+
+def _beam(opened: Opened, ax: _Axes, data: _Data, *, beams, beam):
+    """The cube's single beam (convolving a beam per channel to a common one, or the
+    caller's ``beam``); returns (data array, beam, one beam per channel?)."""
     policy = check_policy(beams)
-    beam, beam_list = read_beam(hdul, header, radio_like=kind.physical != "wavelength")
+    file_beam, beam_list = read_beam(opened.hdul, opened.hdu.header,
+                                     radio_like=ax.kind.physical != "wavelength" and beam is None)
+    arr = data.arr
     if beam_list is not None:
         if policy == "refuse":
             raise KinemapError(
-                f"{path} has a different beam per channel; rerun with --beams common to "
+                f"{opened.name} has a different beam per channel; rerun with --beams common to "
                 "convolve every channel to the smallest common beam")
-        arr, beam = _convolve_to_common(hdul, hdu_obj, beam_list)
-        repairs.append(f"kinemap convolved all channels to the common beam {beam}")
+        arr, file_beam = _convolve_to_common(opened.hdul, beam_list)
+        ax.repairs.append(f"kinemap convolved all channels to the common beam {file_beam}")
+    if beam is not None:
+        given = as_beam(beam)
+        if file_beam is not None:
+            ax.repairs.append(f"the beam given ({given}) replaces the header's ({file_beam})")
+        file_beam = given
+    return arr, file_beam, beam_list is not None
 
-    bunit_value, bunit_missing = parse_bunit(header, bunit)
 
-    # --- subsets --------------------------------------------------------------------------
+def _subset(ax: _Axes, velocity, shape_yx, *, vrange, box, region):
+    """(channel slice, row slice, column slice, footprint, subset record)."""
     cs = channel_range(velocity, vrange)
-    ys, xs = parse_box(box, arr.shape[1:])
+    ys, xs = parse_box(box, shape_yx)
     footprint = None
     if region is not None:
-        fp_full = region_footprint(region, wcs2d, arr.shape[1:])
+        fp_full = region_footprint(region, _celestial(ax), shape_yx)
         fp_full[: ys.start] = False
         fp_full[ys.stop:] = False
         fp_full[:, : xs.start] = False
@@ -239,41 +328,65 @@ def read_cube(path, *, convention: str | None = None, rest_value=None, frame: st
             raise KinemapError("the region and the box do not overlap")
         ys, xs = slice(int(yy.min()), int(yy.max()) + 1), slice(int(xx.min()), int(xx.max()) + 1)
         footprint = fp_full[ys, xs]
-    arr = arr[cs, ys, xs]
-    source = None
-    if beam_list is None and not compressed and raw_dtype is not None:
-        hdu_index = next(i for i, h in enumerate(hdul) if h is hdu_obj)
-        source = FileSource(path=os.path.abspath(path),
-                            offset=int(hdul.fileinfo(hdu_index)["datLoc"]),
-                            raw_shape=raw_shape, dtype=raw_dtype, drop=tuple(drop),
-                            order=tuple(order), channels=(cs.start, cs.stop),
-                            rows=(ys.start, ys.stop), cols=(xs.start, xs.stop),
-                            bscale=bscale, bzero=bzero,
-                            blank=None if blank is None or raw_dtype[1] == "f" else int(blank))
-    wcs2d = wcs2d.slice((ys, xs))
-    wcs3d = wcs.sub([lon + 1, lat + 1, spec + 1]).slice((cs, ys, xs))
     subset = {}
-    if (cs.start, cs.stop) != (0, nchan):
+    if (cs.start, cs.stop) != (0, len(velocity)):
         subset["channels"] = [cs.start, cs.stop]
     if box is not None or region is not None:
         subset["box_x"] = [xs.start, xs.stop]
         subset["box_y"] = [ys.start, ys.stop]
     if region is not None:
         subset["region"] = os.path.basename(str(region))
+    return cs, ys, xs, footprint, subset
 
+
+def _file_source(opened: Opened, data: _Data, cs, ys, xs):
+    """How to read bands of rows straight from the file (None for in-memory data)."""
+    if opened.path is None or data.compressed or data.raw_dtype is None:
+        return None
+    hdu_index = next(i for i, h in enumerate(opened.hdul) if h is opened.hdu)
+    blank = data.blank
+    return FileSource(path=os.path.abspath(opened.path),
+                      offset=int(opened.hdul.fileinfo(hdu_index)["datLoc"]),
+                      raw_shape=data.raw_shape, dtype=data.raw_dtype, drop=data.drop,
+                      order=data.order, channels=(cs.start, cs.stop),
+                      rows=(ys.start, ys.stop), cols=(xs.start, xs.stop),
+                      bscale=data.bscale, bzero=data.bzero,
+                      blank=None if blank is None or data.raw_dtype[1] == "f" else int(blank))
+
+
+def _read(opened: Opened, *, rest_value, convention, frame, vrange, box, region, beams,
+          bunit, beam, checksum) -> Cube:
+    header = opened.hdu.header
+    ax = _axes(opened)
+    data = _data_view(opened, ax)
+    nchan, ny, nx = data.arr.shape
+    spectral, velocity, rest, conv, target = _velocity_axis(
+        ax, header, nchan, (ny, nx), rest_value=rest_value, convention=convention, frame=frame)
+    arr, beam_value, per_channel = _beam(opened, ax, data, beams=beams, beam=beam)
+    bunit_value, bunit_missing = parse_bunit(header, bunit)
+    cs, ys, xs, footprint, subset = _subset(ax, velocity, (ny, nx), vrange=vrange, box=box,
+                                            region=region)
+    source = None if per_channel else _file_source(opened, data, cs, ys, xs)
+    if opened.path is not None:
+        job = _CHECKSUMS.submit(sha256, opened.path) if checksum else None
+    else:
+        job = _CHECKSUMS.submit(data_checksum, arr) if checksum else None
     meta = CubeMeta(
-        wcs=wcs2d, bunit=bunit_value, convention=conv, rest_value=rest, frame=target_frame,
-        beam=beam, medium=kind.medium, ctype_original=ctype_original, ctype=ctype,
-        native_convention=kind.convention, repairs=tuple(repairs),
-        source=os.path.basename(path),
-        checksum_job=_CHECKSUMS.submit(sha256, path) if checksum else None,
-        bunit_missing=bunit_missing, spectral_unit=spec_unit, subset=subset,
-        memmapped=bool(memmapped), wcs3d=wcs3d)
-    return Cube(data=arr, velocity=velocity[cs], spectral=spectral[cs], meta=meta,
+        wcs=_celestial(ax).slice((ys, xs)), bunit=bunit_value, convention=conv,
+        rest_value=rest, frame=target, beam=beam_value, medium=ax.kind.medium,
+        ctype_original=ax.ctype_original, ctype=ax.ctype, native_convention=ax.kind.convention,
+        repairs=tuple(ax.repairs), source=opened.name, checksum_job=job,
+        bunit_missing=bunit_missing, spectral_unit=spectral.unit, subset=subset,
+        memmapped=data.memmapped,
+        wcs3d=ax.wcs.sub([ax.lon + 1, ax.lat + 1, ax.spec + 1]).slice((cs, ys, xs)))
+    cube = Cube(data=arr[cs, ys, xs], velocity=velocity[cs], spectral=spectral[cs], meta=meta,
                 footprint=footprint, source=source)
+    if data.keep_open is not None:  # a lazily decoded file stays open while the cube lives
+        weakref.finalize(cube, data.keep_open.close)
+    return cube
 
 
-def _convolve_to_common(hdul, hdu_obj, beam_list):
+def _convolve_to_common(hdul, beam_list):
     """Convolve a multi-beam cube to its smallest common beam with spectral-cube."""
     from spectral_cube import VaryingResolutionSpectralCube
 

@@ -13,8 +13,47 @@ import numpy as np
 
 from kinemap.io.fitsmaps import product_header, write_fits
 from kinemap.io.manifest import build_manifest, write_json
+from kinemap.io.outdir import StagedOutput
 
-__all__ = ["write_products"]
+__all__ = ["write_products", "write_results"]
+
+
+def write_results(results, folder, *, overwrite: bool = False, plots: bool = True,
+                  options: dict | None = None, timings: dict | None = None,
+                  execution: dict | None = None, staged: bool = True) -> dict:
+    """Write the products, figures and summaries of stage results into ``folder``.
+
+    The one route from results to files, used by ``result.write()``, the config runner
+    and the demo.  With ``staged`` (the default) files are written into a staging folder
+    and moved in only when all were written (``folder`` must be empty unless
+    ``overwrite``); ``staged=False`` writes straight into an already staged folder.
+
+    Returns the manifest (a dict).
+    """
+    results = list(results)
+    if not results:
+        raise ValueError("write_results needs at least one result")
+    meta = next((r.meta for r in results if getattr(r, "meta", None) is not None), None)
+    products, figures, summary = [], {}, {}
+    for r in results:
+        products.extend(r.products())
+        s = r.summary()
+        if s:
+            summary[r.name] = s
+        if plots:
+            from kinemap.plotting import figures_for
+
+            figures.update(figures_for(r))
+    if timings is None:
+        timings = {r.name: float(getattr(r, "seconds", 0.0)) for r in results}
+    center = next((c for c in (r.systemic_velocity() for r in reversed(results))
+                   if c is not None), None)
+    kwargs = dict(options=options or {}, timings=timings, figures=figures, plots=plots,
+                  center=center, summary=summary, execution=execution)
+    if not staged:
+        return write_products(folder, meta, products, **kwargs)
+    with StagedOutput(folder, overwrite=overwrite) as stage:
+        return write_products(stage.path, meta, products, **kwargs)
 
 
 def write_products(folder, meta, products, *, options: dict, timings: dict,

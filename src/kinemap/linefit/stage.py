@@ -13,7 +13,8 @@ also gets ``velocity_<k>``, ``dispersion_<k>``, ``amplitude_<k>``, ``integrated_
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
+from typing import ClassVar
 
 import astropy.constants as const
 import astropy.units as u
@@ -23,11 +24,13 @@ from kinemap.units import KMS, to_value
 from kinemap.parallel.blocks import DEFAULT_MAX_MEMORY, map_blocks
 from kinemap.errors import KinemapError
 from kinemap.io.products import Product
+from kinemap.io.results import StageResult
+from kinemap.parallel.blocks import read_rows
 from kinemap.status import STATUS_DESCRIPTIONS, Status
 from kinemap.linefit._result import COMPONENT_QUANTITIES
 from kinemap.linefit.fit import fit_block, model_block, model_spectra
 
-__all__ = ["LineFitMaps", "fit_cube", "instrument_sigma_from"]
+__all__ = ["LineFitMaps", "ModelCubes", "fit_cube", "model_cubes", "instrument_sigma_from"]
 
 FWHM_PER_SIGMA = 2.0 * np.sqrt(2.0 * np.log(2.0))
 RING_MIN_SNR = 5.0  # integrated S/N a pixel needs to enter a ring fit
@@ -63,38 +66,63 @@ def _fit_block_fn(block, *, noise, pixel_mask, velocity, options, ncomp_max, npa
     return out
 
 
-@dataclass(frozen=True)
-class LineFitMaps:
-    """Maps of a Gaussian fit of every spectrum (arrays (k, ny, nx) or (ny, nx))."""
+_PIXEL_KEYS = ("status", "ncomp", "chi2_reduced", "peak_snr")
 
-    velocity: np.ndarray
-    velocity_error: np.ndarray
-    dispersion: np.ndarray
-    dispersion_error: np.ndarray
-    observed_dispersion: np.ndarray
-    observed_dispersion_error: np.ndarray
-    amplitude: np.ndarray
-    amplitude_error: np.ndarray
-    integrated: np.ndarray
-    integrated_error: np.ndarray
-    status: np.ndarray
-    ncomp: np.ndarray
-    chi2_reduced: np.ndarray
-    peak_snr: np.ndarray
+
+@dataclass(frozen=True)
+class LineFitMaps(StageResult):
+    """Gaussian fits of every spectrum of a cube.
+
+    Every product is an attribute, a ``spectral_cube.Projection`` with unit, celestial WCS
+    and beam: ``velocity``, ``velocity_err``, ``dispersion`` (intrinsic sigma),
+    ``dispersion_err``, ``observed_dispersion``, ``amplitude``, ``amplitude_err``,
+    ``integrated``, ``integrated_err``, ``baseline``, ``chi2_reduced``, ``snr``,
+    ``fit_status``, ``n_components``, and per component ``velocity_1``, ``dispersion_1``,
+    ... when more than one is fitted.  The first component is the brightest (or the
+    lowest velocity with ``order='velocity'``).
+
+    Attributes
+    ----------
+    component_arrays : dict of ndarray (k, ny, nx)
+        Per-component values and ``_err`` errors, float64 (km/s or the cube unit).
+    pixel_arrays : dict of ndarray (ny, nx)
+        ``status`` codes (:mod:`kinemap.status`), ``ncomp``, ``chi2_reduced``, ``peak_snr``.
+    params, errors : ndarray (npar, ny, nx)
+        Fitted parameters in ``param_names`` order and their 1-sigma errors.
+    examples : tuple of dict
+        The brightest, median and faintest accepted spectra with their models (for plots).
+    """
+
+    name: ClassVar[str] = "fit"
+
+    component_arrays: dict
+    pixel_arrays: dict
     params: np.ndarray
     errors: np.ndarray
     param_names: tuple
-    bunit: u.UnitBase
+    meta: object
     settings: dict = field(default_factory=dict)
     model_options: dict = field(default_factory=dict)
+    examples: tuple = ()
     seconds: float = 0.0
 
     @property
+    def status(self) -> np.ndarray:
+        """Fit status code per pixel (an int array; see :mod:`kinemap.status`)."""
+        return self.pixel_arrays["status"]
+
+    @property
     def ncomp_max(self) -> int:
-        return int(self.velocity.shape[0])
+        return int(self.component_arrays["velocity"].shape[0])
+
+    def component(self, quantity: str, k: int = 0) -> np.ndarray:
+        """Plain array (ny, nx) of ``quantity`` (e.g. 'velocity', 'dispersion_err') for
+        component ``k`` (0-based)."""
+        return self.component_arrays[quantity][k]
 
     def velocity_field(self, *, min_snr: float = RING_MIN_SNR):
-        """(velocity, velocity error, intensity) of the first component, for a ring fit.
+        """(velocity, velocity error, intensity) arrays of the first component, for a ring
+        fit.
 
         Pixels whose integrated intensity has S/N below ``min_snr`` are left out (NaN): a
         noise spike fitted at the edge of the emission has a deceptively small velocity
@@ -103,79 +131,79 @@ class LineFitMaps:
         tot, err = self.integrated_total()
         with np.errstate(invalid="ignore", divide="ignore"):
             keep = (self.status == Status.OK) & (tot / err >= min_snr)
-        return (np.where(keep, self.velocity[0], np.nan), np.where(keep, self.velocity_error[0], np.nan),
-                tot)
+        return (np.where(keep, self.component("velocity"), np.nan),
+                np.where(keep, self.component("velocity_err"), np.nan), tot)
 
     def integrated_total(self):
         """Sum of the components' integrated intensities and its error (independent errors)."""
-        total = np.where(self.ncomp > 0, np.nansum(self.integrated, axis=0), np.nan)
-        err = np.where(self.ncomp > 0, np.sqrt(np.nansum(self.integrated_error ** 2, axis=0)), np.nan)
+        c, n = self.component_arrays, self.pixel_arrays["ncomp"]
+        total = np.where(n > 0, np.nansum(c["integrated"], axis=0), np.nan)
+        err = np.where(n > 0, np.sqrt(np.nansum(c["integrated_err"] ** 2, axis=0)), np.nan)
         return total, err
 
     def products(self) -> list[Product]:
-        b = self.bunit
+        b = self.meta.bunit
+        c, px = self.component_arrays, self.pixel_arrays
         tot, tot_err = self.integrated_total()
-        codes = "; ".join(f"{int(c)} {c.name.lower()}" for c in Status)
+        codes = "; ".join(f"{int(code)} {code.name.lower()}" for code in Status)
         out = [
-            Product("velocity", self.velocity[0], KMS, "line-of-sight velocity (Gaussian fit)", "velocity"),
-            Product("velocity_err", self.velocity_error[0], KMS, "1-sigma error of the velocity", "error"),
-            Product("dispersion", self.dispersion[0], KMS,
+            Product("velocity", c["velocity"][0], KMS, "line-of-sight velocity (Gaussian fit)", "velocity"),
+            Product("velocity_err", c["velocity_err"][0], KMS, "1-sigma error of the velocity", "error"),
+            Product("dispersion", c["dispersion"][0], KMS,
                     "intrinsic dispersion sigma (instrument and channel response removed)", "dispersion"),
-            Product("dispersion_err", self.dispersion_error[0], KMS, "1-sigma error of the dispersion", "error"),
-            Product("observed_dispersion", self.observed_dispersion[0], KMS,
+            Product("dispersion_err", c["dispersion_err"][0], KMS, "1-sigma error of the dispersion", "error"),
+            Product("observed_dispersion", c["observed_dispersion"][0], KMS,
                     "dispersion with the instrument (before channel averaging)", "dispersion", plot=False),
-            Product("amplitude", self.amplitude[0], b, "peak of the fitted Gaussian", "intensity"),
-            Product("amplitude_err", self.amplitude_error[0], b, "1-sigma error of the amplitude", "error",
+            Product("amplitude", c["amplitude"][0], b, "peak of the fitted Gaussian", "intensity"),
+            Product("amplitude_err", c["amplitude_err"][0], b, "1-sigma error of the amplitude", "error",
                     plot=False),
             Product("integrated", tot, b * KMS, "integrated intensity of the fitted components", "intensity"),
             Product("integrated_err", tot_err, b * KMS, "1-sigma error of the integrated intensity",
                     "error", plot=False),
-            Product("chi2_reduced", self.chi2_reduced, u.one, "reduced chi-square of the fit", "other"),
-            Product("snr", self.peak_snr, u.one, "peak signal-to-noise of the spectrum", "other"),
+            Product("chi2_reduced", px["chi2_reduced"], u.one, "reduced chi-square of the fit", "other"),
+            Product("snr", px["peak_snr"], u.one, "peak signal-to-noise of the spectrum", "other"),
             Product("fit_status", self.status.astype(np.int16), u.one,
                     "fit status code (kinemap.status)", "status",
                     extra_header={"STATCODE": codes[:68]}),
-            Product("ncomp", self.ncomp.astype(np.int16), u.one, "number of Gaussian components", "count"),
+            Product("n_components", px["ncomp"].astype(np.int16), u.one,
+                    "number of Gaussian components", "count"),
+            self._baseline_product(),
         ]
-        if "baseline" in self.param_names:
-            i = self.param_names.index("baseline")
-            out.append(Product("baseline", self.params[i], b, "fitted baseline level (centre channel)",
-                               "intensity", plot=False))
-        else:  # the key is always there, so scripts need not branch on the option
-            fitted = np.isin(self.status, (Status.OK, Status.AT_BOUND))
-            out.append(Product("baseline", np.where(fitted, 0.0, np.nan), b,
-                               "baseline level: none fitted (zero by assumption)", "intensity",
-                               plot=False))
         if self.ncomp_max > 1:
             for k in range(self.ncomp_max):
                 n = k + 1
                 out += [
-                    Product(f"velocity_{n}", self.velocity[k], KMS, f"velocity of component {n}", "velocity"),
-                    Product(f"dispersion_{n}", self.dispersion[k], KMS, f"dispersion of component {n}",
+                    Product(f"velocity_{n}", c["velocity"][k], KMS, f"velocity of component {n}", "velocity"),
+                    Product(f"dispersion_{n}", c["dispersion"][k], KMS, f"dispersion of component {n}",
                             "dispersion"),
-                    Product(f"amplitude_{n}", self.amplitude[k], b, f"amplitude of component {n}",
+                    Product(f"amplitude_{n}", c["amplitude"][k], b, f"amplitude of component {n}",
                             "intensity", plot=False),
-                    Product(f"integrated_{n}", self.integrated[k], b * KMS,
+                    Product(f"integrated_{n}", c["integrated"][k], b * KMS,
                             f"integrated intensity of component {n}", "intensity", plot=False),
                 ]
         return out
+
+    def _baseline_product(self) -> Product:
+        b = self.meta.bunit
+        if "baseline" in self.param_names:
+            i = self.param_names.index("baseline")
+            return Product("baseline", self.params[i], b, "fitted baseline level (centre channel)",
+                           "intensity", plot=False)
+        # the key is always there, so scripts need not branch on the option
+        fitted = np.isin(self.status, (Status.OK, Status.AT_BOUND))
+        return Product("baseline", np.where(fitted, 0.0, np.nan), b,
+                       "baseline level: none fitted (zero by assumption)", "intensity", plot=False)
 
     def summary(self) -> dict:
         counts = {c.name.lower(): int((self.status == c).sum()) for c in Status
                   if (self.status == c).any()}
         ok = self.status == Status.OK
+        n = self.pixel_arrays["ncomp"]
         return {"status_counts": counts,
-                "median_dispersion_kms": float(np.nanmedian(self.dispersion[0][ok])) if ok.any() else None,
-                "components_used": {str(k): int((self.ncomp == k).sum()) for k in range(0, self.ncomp_max + 1)},
+                "median_dispersion_kms": float(np.nanmedian(self.component("dispersion")[ok]))
+                if ok.any() else None,
+                "components_used": {str(k): int((n == k).sum()) for k in range(0, self.ncomp_max + 1)},
                 "seconds": self.seconds}
-
-    def figures(self, state) -> dict:
-        from kinemap.plotting.linefit import plot_example_spectra
-
-        fig = plot_example_spectra(state.cube, self)
-        return {} if fig is None else {
-            "example_spectra": (fig, "brightest, median and faintest fitted spectra with their "
-                                     "fits and residuals")}
 
     def _axes(self, velocity):
         axes = self.settings.get("velocity_axes")
@@ -190,7 +218,44 @@ class LineFitMaps:
         return model_spectra(self.params[:, y, x], self._axes(velocity), **self.model_options)
 
 
-def fit_cube(cube, noise, *, mask=None, components=1, baseline: str = "none",
+def _noise_and_mask(cube, noise, mask, *, channel_response, max_memory, progress, client):
+    """The caller's noise and mask, or estimates with the defaults."""
+    from kinemap.maps import as_mask, estimate_noise, make_mask
+
+    if noise is None:
+        noise = estimate_noise(cube, channel_response=channel_response, max_memory=max_memory,
+                               progress=progress, client=client)
+    if mask is None:
+        mask = make_mask(cube, noise=noise, channel_response=channel_response,
+                         max_memory=max_memory)
+    return noise, as_mask(mask, cube)
+
+
+def _example_pixels(status, total) -> list[tuple[str, int, int]]:
+    """(label, y, x) of the brightest, median and faintest accepted pixel."""
+    vals = np.where(status == Status.OK, total, np.nan)
+    flat = np.flatnonzero(np.isfinite(vals))
+    if flat.size == 0:
+        return []
+    order = flat[np.argsort(vals.ravel()[flat])]
+    picks = [("brightest", order[-1]), ("median", order[order.size // 2]), ("faintest", order[0])]
+    nx = status.shape[1]
+    return [(label, int(i // nx), int(i % nx)) for label, i in picks]
+
+
+def _examples(fit: LineFitMaps, cube) -> tuple:
+    """Three spectra with their fits, kept on the result so plots need not read the cube."""
+    out = []
+    for label, y, x in _example_pixels(fit.status, fit.integrated_total()[0]):
+        spec = read_rows(cube, slice(y, y + 1), dtype=np.float64)[:, 0, x]
+        out.append({"label": label, "y": y, "x": x, "axis": np.asarray(cube.velocity),
+                    "data": spec, "model": fit.model_spectrum(cube.velocity, y, x),
+                    **{q: float(fit.component(q)[y, x]) for q in
+                       ("velocity", "velocity_err", "dispersion", "dispersion_err")}})
+    return tuple(out)
+
+
+def fit_cube(cube, *, noise=None, mask=None, components=1, baseline: str = "none",
              channel_response: str = "tophat", instrument_sigma: float = 0.0,
              order: str = "flux", snr_threshold: float = 3.0, min_separation: float = 1.0,
              min_component_snr: float = 3.0, model=None, velocity_axes=None,
@@ -200,9 +265,13 @@ def fit_cube(cube, noise, *, mask=None, components=1, baseline: str = "none",
 
     Parameters
     ----------
-    cube : kinemap.io.cube.Cube
-    noise : kinemap.maps.noise.NoiseMap
-    mask : kinemap.maps.masks.SignalMask, optional
+    cube : kinemap.io.Cube
+    noise : kinemap.maps.NoiseMap, optional
+        Per-pixel noise; estimated with :func:`kinemap.estimate_noise` when not given.
+    mask : SignalMask or boolean array (nchan, ny, nx) or (ny, nx), optional
+        Which spectra to fit (pixels with any signal voxel); default: a smooth-and-mask
+        mask made with :func:`kinemap.make_mask`.  ``make_mask(cube, method='none')`` fits
+        every spectrum above ``snr_threshold``.
     components : 1, 2, 3 or 'auto'
         'auto' compares 1-3 components by BIC (Schwarz 1978).
     baseline : {'none', 'constant', 'linear'}
@@ -218,6 +287,8 @@ def fit_cube(cube, noise, *, mask=None, components=1, baseline: str = "none",
         One velocity axis per line of ``model`` (km/s); default the cube's velocity axis.
     """
     t0 = time.perf_counter()
+    noise, mask = _noise_and_mask(cube, noise, mask, channel_response=channel_response,
+                                  max_memory=max_memory, progress=progress, client=client)
     comps = components if components == "auto" else int(components)
     if comps not in (1, 2, 3, "auto"):
         raise KinemapError(f"'components' must be 1, 2, 3 or auto, got {components!r}")
@@ -239,7 +310,7 @@ def fit_cube(cube, noise, *, mask=None, components=1, baseline: str = "none",
     names = tuple(probe.param_names)
     npar = len(names)
     pixel_mask_full = None
-    if mask is not None and mask.method == "smooth":
+    if mask is not None and mask.mask is not None:
         pixel_mask_full = mask.mask.any(axis=0)
     if cube.footprint is not None:
         pixel_mask_full = cube.footprint if pixel_mask_full is None else pixel_mask_full & cube.footprint
@@ -264,6 +335,39 @@ def fit_cube(cube, noise, *, mask=None, components=1, baseline: str = "none",
     settings = {k: v for k, v in options.items() if k != "model"}
     settings.update({k: v for k, v in settings_extra.items() if v is not None})
     settings["descriptions"] = {int(k): v for k, v in STATUS_DESCRIPTIONS.items()}
-    return LineFitMaps(param_names=names, bunit=cube.meta.bunit, settings=settings,
-                       model_options=model_options, seconds=time.perf_counter() - t0,
-                       **{k: out[k] for k in outputs})
+    comp = {}
+    for q in COMPONENT_QUANTITIES:
+        comp[q], comp[q + "_err"] = out[q], out[q + "_error"]
+    fit = LineFitMaps(component_arrays=comp, pixel_arrays={k: out[k] for k in _PIXEL_KEYS},
+                      params=out["params"], errors=out["errors"], param_names=names,
+                      meta=cube.meta, settings=settings, model_options=model_options)
+    return replace(fit, examples=_examples(fit, cube), seconds=time.perf_counter() - t0)
+
+
+@dataclass(frozen=True)
+class ModelCubes(StageResult):
+    """Model and residual cubes of the line fits (held in memory: ``--write-model`` only).
+
+    ``model`` and ``residual`` are arrays (nchan, ny, nx) in the cube's unit, on the
+    channels of the fitted cube (``meta.wcs3d``)."""
+
+    name: ClassVar[str] = "model"
+
+    model: np.ndarray
+    residual: np.ndarray
+    meta: object = None
+
+    def products(self) -> list[Product]:
+        wcs = None if self.meta is None else self.meta.wcs3d
+        b = self.meta.bunit
+        return [Product("model", self.model, b, "model cube of the Gaussian fits", "cube",
+                        plot=False, wcs=wcs),
+                Product("residual", self.residual, b, "data minus model cube", "cube",
+                        plot=False, wcs=wcs)]
+
+
+def model_cubes(fit: LineFitMaps, cube) -> ModelCubes:
+    """The model cube of ``fit`` on ``cube``'s channels and the residual data - model."""
+    data = read_rows(cube, slice(0, cube.shape[1]))
+    model = fit.model_cube(cube)
+    return ModelCubes(model=model, residual=(data - model).astype(np.float32), meta=cube.meta)

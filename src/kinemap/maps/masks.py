@@ -25,7 +25,7 @@ import numpy as np
 from kinemap.errors import KinemapError
 from kinemap.spectral.response import noise_correlation, variance_of_sum
 
-__all__ = ["SignalMask", "make_mask", "MASK_METHODS"]
+__all__ = ["SignalMask", "make_mask", "as_mask", "MASK_METHODS"]
 
 MASK_METHODS = ("smooth", "threshold", "none")
 
@@ -37,10 +37,10 @@ class SignalMask:
     Attributes
     ----------
     method : str
-        'smooth', 'threshold' or 'none'.
+        'smooth', 'threshold', 'none' or 'given' (a boolean array from the caller).
     mask : ndarray of bool (nchan, ny, nx) or None
-        Precomputed mask ('smooth'); None for 'threshold' (evaluated per block from
-        ``threshold`` and the noise map) and 'none'.
+        Precomputed mask ('smooth', 'given'); None for 'threshold' (evaluated per block
+        from ``threshold`` and the noise map) and 'none'.
     threshold : float
         S/N threshold used by 'threshold' (and the seed threshold of 'smooth').
     settings : dict
@@ -58,7 +58,7 @@ class SignalMask:
         finite = np.isfinite(data)
         if self.method == "none":
             out = finite
-        elif self.method == "threshold":
+        elif self.mask is None:  # threshold: evaluated on the block
             with np.errstate(invalid="ignore"):
                 out = finite & (data > self.threshold * noise_sigma[None])
         else:
@@ -93,7 +93,26 @@ def _smoothing_noise_factor(filled, finite, sig, nbox, rho, nplanes=24):
     return f_space * f_spec
 
 
-def make_mask(cube, noise, *, method: str = "smooth", threshold: float | None = None,
+def as_mask(mask, cube) -> SignalMask | None:
+    """A :class:`SignalMask` from what a caller passes as ``mask``: None, a SignalMask,
+    or a boolean array of shape (nchan, ny, nx) (voxels) or (ny, nx) (whole spectra),
+    True where the data count as signal."""
+    if mask is None or isinstance(mask, SignalMask):
+        return mask
+    arr = np.asarray(mask)
+    if arr.dtype != bool:
+        raise KinemapError(f"'mask' must be a SignalMask or a boolean array, got an array of "
+                           f"{arr.dtype}; use mask > 0 to make one")
+    shape = tuple(cube.shape)
+    if arr.shape == shape[1:]:
+        arr = np.broadcast_to(arr[None], shape)
+    elif arr.shape != shape:
+        raise KinemapError(f"'mask' has shape {arr.shape}; give (nchan, ny, nx) = {shape} or "
+                           f"(ny, nx) = {shape[1:]}")
+    return SignalMask(method="given", mask=arr, threshold=float("nan"))
+
+
+def make_mask(cube, *, noise=None, method: str = "smooth", threshold: float | None = None,
               grow_threshold: float = 2.0, smooth_beams: float = 1.5,
               smooth_pixels: float = 3.0, smooth_channels: int = 3, min_pixels: int | None = None,
               min_channels: int = 2, channel_response: str = "tophat",
@@ -102,6 +121,10 @@ def make_mask(cube, noise, *, method: str = "smooth", threshold: float | None = 
 
     Parameters
     ----------
+    cube : kinemap.io.Cube
+    noise : kinemap.maps.NoiseMap, optional
+        Needed by 'smooth' (and by the stages that evaluate a 'threshold' mask); estimated
+        with :func:`kinemap.estimate_noise` defaults when not given.
     method : {'smooth', 'threshold', 'none'}
     threshold : float
         S/N of a signal voxel (default 3 for 'threshold', 5 for the seeds of 'smooth', whose
@@ -149,7 +172,9 @@ def make_mask(cube, noise, *, method: str = "smooth", threshold: float | None = 
         # so a real source must cover more.  1.1331 = pi / (4 ln 2), Gaussian area / FWHM^2.
         min_pixels = int(max(1, round(1.1331 * (beam_fwhm_pix ** 2 + fwhm_pix ** 2))))
     if noise is None:
-        raise KinemapError("the smooth mask needs a noise map; estimate the noise first")
+        from kinemap.maps.noise import estimate_noise
+
+        noise = estimate_noise(cube, channel_response=channel_response)
     need = 3 * 4 * int(np.prod(cube.shape))
     if max_memory is not None and need > max_memory:
         raise KinemapError(

@@ -28,70 +28,83 @@ sigma) and NaN for moment 2.
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass, field
+import warnings
+from dataclasses import dataclass, field, replace
+from typing import ClassVar
 
 import astropy.units as u
 import numpy as np
 
 from kinemap.units import KMS
 from kinemap.parallel.blocks import DEFAULT_MAX_MEMORY, map_blocks
+from kinemap.errors import KinemapError, NoiseWarning
 from kinemap.io.products import Product
+from kinemap.io.results import StageResult
+from kinemap.maps.masks import as_mask
+from kinemap.maps.noise import estimate_noise
 from kinemap.maps._moments_kernel import USE_FINITE, USE_MASK, USE_THRESHOLD, moments_kernel
 from kinemap.spectral.response import check_response, noise_correlation
 
 __all__ = ["MomentMaps", "compute_moments"]
 
 
-@dataclass(frozen=True)
-class MomentMaps:
-    """Moment maps of a cube (arrays (ny, nx); velocities km/s, intensities in the cube unit).
+# key -> (unit kind: 'b' cube unit, 'bv' cube unit x km/s, 'v' km/s, '1'), description, kind
+_PRODUCTS = {
+    "moment0": ("bv", "integrated intensity (moment 0)", "intensity"),
+    "moment1": ("v", "intensity-weighted velocity (moment 1)", "velocity"),
+    "moment2": ("v", "intensity-weighted dispersion (moment 2, a Gaussian sigma)", "dispersion"),
+    "moment0_err": ("bv", "1-sigma error of moment 0", "error"),
+    "moment1_err": ("v", "1-sigma error of moment 1", "error"),
+    "moment2_err": ("v", "1-sigma error of moment 2", "error"),
+    "peak": ("b", "peak intensity", "intensity"),
+    "velocity_at_peak": ("v", "velocity of the peak channel", "velocity"),
+    "nchan": ("1", "number of channels used", "count"),
+}
 
-    ``moment0`` is in cube unit x km/s.  NaN where undefined.
+
+@dataclass(frozen=True)
+class MomentMaps(StageResult):
+    """Moment maps of a cube.
+
+    Every product is an attribute: ``moment0`` (cube unit x km/s), ``moment1``,
+    ``moment2`` (km/s, moment 2 is a Gaussian sigma), their ``_err`` maps, ``peak``,
+    ``velocity_at_peak``, ``nchan``, ``noise`` and ``mask``; each a
+    ``spectral_cube.Projection`` with the cube's celestial WCS and beam, NaN where
+    undefined.  ``arrays`` holds the same maps as plain float64 arrays (ny, nx).
     """
 
-    moment0: np.ndarray
-    moment1: np.ndarray
-    moment2: np.ndarray
-    moment0_err: np.ndarray
-    moment1_err: np.ndarray
-    moment2_err: np.ndarray
-    peak: np.ndarray
-    velocity_at_peak: np.ndarray
-    nchan: np.ndarray
-    bunit: u.UnitBase
+    name: ClassVar[str] = "moments"
+
+    arrays: dict
+    meta: object
     channel_response: str
-    noise: np.ndarray | None = None
-    signal_footprint: np.ndarray | None = None
     settings: dict = field(default_factory=dict)
     seconds: float = 0.0
 
     def velocity_field(self, *, min_snr: float = 5.0):
-        """(velocity, velocity error, intensity) maps for a ring fit; pixels whose moment 0
-        has S/N below ``min_snr`` are left out (NaN)."""
+        """(velocity, velocity error, intensity) arrays for a ring fit (km/s, km/s, cube
+        unit x km/s); pixels whose moment 0 has S/N below ``min_snr`` are NaN."""
+        a = self.arrays
         with np.errstate(invalid="ignore", divide="ignore"):
-            keep = self.moment0 / self.moment0_err >= min_snr
-        return (np.where(keep, self.moment1, np.nan), np.where(keep, self.moment1_err, np.nan),
-                self.moment0)
+            keep = a["moment0"] / a["moment0_err"] >= min_snr
+        return (np.where(keep, a["moment1"], np.nan), np.where(keep, a["moment1_err"], np.nan),
+                a["moment0"])
+
+    def systemic_velocity(self) -> float | None:
+        v = self.arrays["moment1"]
+        return float(np.nanmedian(v)) if np.isfinite(v).any() else None
 
     def products(self) -> list[Product]:
-        b = self.bunit
-        out = [
-            Product("moment0", self.moment0, b * KMS, "integrated intensity (moment 0)", "intensity"),
-            Product("moment1", self.moment1, KMS, "intensity-weighted velocity (moment 1)", "velocity"),
-            Product("moment2", self.moment2, KMS,
-                    "intensity-weighted dispersion (moment 2, a Gaussian sigma)", "dispersion"),
-            Product("moment0_err", self.moment0_err, b * KMS, "1-sigma error of moment 0", "error"),
-            Product("moment1_err", self.moment1_err, KMS, "1-sigma error of moment 1", "error"),
-            Product("moment2_err", self.moment2_err, KMS, "1-sigma error of moment 2", "error"),
-            Product("peak", self.peak, b, "peak intensity", "intensity"),
-            Product("velocity_at_peak", self.velocity_at_peak, KMS,
-                    "velocity of the peak channel", "velocity"),
-            Product("nchan", self.nchan.astype(np.int16), u.one, "number of channels used", "count"),
-        ]
-        if self.noise is not None:
-            out.append(Product("noise", self.noise, b, "1-sigma noise per channel", "noise"))
-        if self.signal_footprint is not None:
-            out.append(Product("mask", self.signal_footprint.astype(np.uint8), u.one,
+        b = self.meta.bunit
+        units = {"b": b, "bv": b * KMS, "v": KMS, "1": u.one}
+        out = [Product(k, self.arrays[k], units[uk], desc, kind)
+               for k, (uk, desc, kind) in _PRODUCTS.items()]
+        out[-1] = replace(out[-1], data=self.arrays["nchan"].astype(np.int16))
+        if self.arrays.get("noise") is not None:
+            out.append(Product("noise", self.arrays["noise"], b, "1-sigma noise per channel",
+                               "noise"))
+        if self.arrays.get("mask") is not None:
+            out.append(Product("mask", self.arrays["mask"].astype(np.uint8), u.one,
                                f"1 where the spectrum has channels in the signal mask "
                                f"({self.settings.get('mask', 'none')})", "mask"))
         return out
@@ -115,6 +128,16 @@ def _moments_block(block, *, sigma, footprint, mask, velocity, dv, mode, thresho
     return {k: res[i].reshape(rows, nx) for i, k in enumerate(_KEYS)}
 
 
+def _noise_or_none(cube, **kwargs):
+    """The default noise estimate for the error maps, or None (errors NaN, with a warning)
+    when the cube holds no noise to measure (a noiseless model, too few channels)."""
+    try:
+        return estimate_noise(cube, **kwargs)
+    except KinemapError as exc:
+        warnings.warn(f"moment errors are NaN: {exc}", NoiseWarning, stacklevel=3)
+        return None
+
+
 def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "tophat",
                     max_memory: int = DEFAULT_MAX_MEMORY, progress: bool = False,
                     client=None) -> MomentMaps:
@@ -122,11 +145,14 @@ def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "top
 
     Parameters
     ----------
-    cube : kinemap.io.cube.Cube
-    mask : kinemap.maps.masks.SignalMask, optional
-        None uses every finite channel.
-    noise : kinemap.maps.noise.NoiseMap, optional
-        Needed for the error maps and for a 'threshold' mask; without it errors are NaN.
+    cube : kinemap.io.Cube
+    mask : SignalMask or boolean array (nchan, ny, nx) or (ny, nx), optional
+        Which voxels count as signal (True = use); None uses every finite channel (as
+        spectral-cube's moments do).
+    noise : kinemap.maps.NoiseMap, optional
+        Per-pixel noise for the error maps and a 'threshold' mask; estimated with
+        :func:`kinemap.estimate_noise` defaults when not given (when no noise can be
+        measured, the errors are NaN and a ``NoiseWarning`` says why).
     channel_response : {'tophat', 'hanning', 'none'}
         Sets the channel-to-channel noise correlation in the errors.
     client : distributed.Client, optional
@@ -139,6 +165,10 @@ def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "top
     t0 = time.perf_counter()
     response = check_response(channel_response)
     rho = noise_correlation(response)
+    mask = as_mask(mask, cube)
+    if noise is None:
+        noise = _noise_or_none(cube, channel_response=response, max_memory=max_memory,
+                               progress=progress, client=client)
     nchan, ny, nx = cube.shape
     v = np.ascontiguousarray(cube.velocity, dtype=np.float64)
     dv = np.ascontiguousarray(cube.channel_width, dtype=np.float64)
@@ -146,7 +176,7 @@ def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "top
     mode, threshold = USE_FINITE, 0.0
     if mask is not None and mask.method == "threshold":
         mode, threshold = USE_THRESHOLD, float(mask.threshold)
-    elif mask is not None and mask.method == "smooth":
+    elif mask is not None and mask.mask is not None:
         mode = USE_MASK
 
     def block_args(ys):
@@ -158,10 +188,9 @@ def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "top
                      max_memory=max_memory, factor=2.5, block_args=block_args,
                      progress=progress and "moments", client=client, velocity=v, dv=dv,
                      mode=mode, threshold=threshold, rho=np.ascontiguousarray(rho, np.float64))
-    footprint = out["nchan"] > 0
-    return MomentMaps(**out, bunit=cube.meta.bunit, channel_response=response,
-                      noise=noise.sigma if noise is not None else None,
-                      signal_footprint=footprint,
+    out["noise"] = noise.sigma if noise is not None else None
+    out["mask"] = out["nchan"] > 0
+    return MomentMaps(arrays=out, meta=cube.meta, channel_response=response,
                       settings={"mask": mask.method if mask is not None else "none",
                                 "channel_response": response},
                       seconds=time.perf_counter() - t0)

@@ -6,16 +6,13 @@ import numpy as np
 
 from kinemap.io.reader import read_cube
 from kinemap.maps.noise import estimate_noise
-from kinemap.pipeline.runner import _line_free, _vrange
+from kinemap.pipeline import adapters as ad
 
 __all__ = ["describe"]
 
 
 def describe(cfg: dict) -> str:
-    inp = cfg["input"]
-    cube = read_cube(inp["cube"], convention=inp["convention"], rest_value=inp["rest_value"],
-                     frame=inp["frame"], vrange=_vrange(inp["vrange"]), box=inp["box"],
-                     region=inp["region"], beams=inp["beams"], bunit=inp["bunit"])
+    cube = read_cube(cfg["input"]["cube"], **ad.read_kwargs(cfg))
     m = cube.meta
     nchan, ny, nx = cube.shape
     v = cube.velocity
@@ -38,7 +35,7 @@ def describe(cfg: dict) -> str:
     ]
     if m.subset:
         lines.append(f"subset          {m.subset}")
-    noise = estimate_noise(cube, line_free=_line_free(cfg["noise"]["line_free"]))
+    noise = estimate_noise(cube, **ad.noise_kwargs(cfg))
     lines.append(f"noise           median {noise.median:.4g} {m.bunit.to_string() or ''} per "
                  f"channel ({noise.method})")
     if m.repairs:

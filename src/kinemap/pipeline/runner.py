@@ -1,9 +1,9 @@
-"""Config-driven runs: wire the stages together, time them, hand products to the exporter.
+"""Config-driven runs: wire the stages together, time them, hand the results to the writer.
 
-The flow is one-way: read -> noise -> mask -> per-pixel maps -> (later stages) -> export.
-Each stage is a plain function of the :class:`RunState` built so far that returns a result
-object with ``products()`` (and optionally ``figures()`` and ``summary()``); the pipeline
-only calls them in order and collects what they return.  No stage writes files.
+The flow is one-way: read -> noise -> mask -> per-pixel maps -> rotation curve / width
+budget -> write.  Each stage here calls the public function of its capability with the
+keyword arguments :mod:`kinemap.pipeline.adapters` builds from the config, and keeps the
+result; :func:`kinemap.io.writer.write_results` writes them all.  No stage writes files.
 """
 from __future__ import annotations
 
@@ -11,19 +11,19 @@ import time
 from dataclasses import dataclass, field, replace
 
 import astropy.units as u
-import numpy as np
 
-from kinemap.pipeline.config import parse_size
-from kinemap.parallel.cluster import open_client
-from kinemap.io.reader import read_cube
-from kinemap.io.maps import read_map
-from kinemap.io.subset import select_channels
 from kinemap.errors import KinemapError
-from kinemap.io.outdir import StagedOutput, check_output_dir
-from kinemap.io.writer import write_products
+from kinemap.io.maps import read_map
+from kinemap.io.outdir import check_output_dir
+from kinemap.io.reader import read_cube
+from kinemap.io.subset import select_channels
+from kinemap.io.writer import write_results
 from kinemap.maps.masks import make_mask
 from kinemap.maps.moments import compute_moments
 from kinemap.maps.noise import estimate_noise
+from kinemap.parallel.cluster import open_client
+from kinemap.pipeline import adapters as ad
+from kinemap.pipeline.config import parse_size
 
 # The fitting, ring and width stages import scipy.optimize, numba kernels and more; they
 # are imported inside their stage functions so a moments-only run starts faster.
@@ -45,6 +45,7 @@ class RunState:
     client: object = None
     execution: dict = field(default_factory=dict)
     window: tuple | None = None
+    manifest: dict | None = None
 
     @property
     def meta(self):
@@ -52,12 +53,11 @@ class RunState:
         return self.cube.meta if self.cube is not None else self.velocity_map.meta
 
     @property
-    def max_memory(self) -> int:
-        return parse_size(self.config["run"]["max_memory"])
-
-    @property
-    def progress(self) -> bool:
-        return bool(self.config["run"]["progress"])
+    def blocks(self) -> dict:
+        """Keyword arguments of every block-wise stage: memory bound, progress, cluster."""
+        run = self.config["run"]
+        return dict(max_memory=parse_size(run["max_memory"]), progress=bool(run["progress"]),
+                    client=self.client)
 
 
 def _timed(state, stage, fn, *args, **kwargs):
@@ -67,48 +67,14 @@ def _timed(state, stage, fn, *args, **kwargs):
     return out
 
 
-def _vrange(value):
-    if value is None:
-        return None
-    if isinstance(value, str):
-        parts = [p for p in value.replace(" ", "").split(",") if p]
-        if len(parts) != 2:
-            raise KinemapError(f"'vrange' must be two velocities like '-50,120', got {value!r}")
-        return parts
-    return list(value)
-
-
-def _line_free(value):
-    if value is None or (isinstance(value, str) and value.strip().lower() == "auto"):
-        return None
-    if isinstance(value, str):  # "v1,v2;v3,v4"
-        try:
-            return [tuple(float(x) for x in part.split(",")) for part in value.split(";") if part]
-        except ValueError:
-            raise KinemapError(f"'line_free' must look like '-300,-200;250,400' (km/s), got {value!r}") from None
-    return value
-
-
 def prepare(cfg: dict, state: RunState | None = None) -> RunState:
     """Read the cube, estimate the noise and build the mask (the shared first stages)."""
     state = state or RunState(config=cfg)
-    inp = cfg["input"]
-    state.cube = _timed(state, "read", read_cube, inp["cube"], convention=inp["convention"],
-                        rest_value=inp["rest_value"], frame=inp["frame"],
-                        vrange=_vrange(inp["vrange"]), box=inp["box"], region=inp["region"],
-                        beams=inp["beams"], bunit=inp["bunit"], hdu=inp["hdu"])
-    response = cfg["maps"]["channel_response"]
-    state.noise = _timed(state, "noise", estimate_noise, state.cube,
-                         line_free=_line_free(cfg["noise"]["line_free"]),
-                         channel_response=response, max_memory=state.max_memory,
-                         progress=state.progress, client=state.client)
-    m = cfg["mask"]
-    state.mask = _timed(state, "mask", make_mask, state.cube, state.noise, method=m["method"],
-                        threshold=m["threshold"], grow_threshold=m["grow_threshold"],
-                        smooth_beams=m["smooth_beams"], smooth_pixels=m["smooth_pixels"],
-                        smooth_channels=m["smooth_channels"], min_pixels=m["min_pixels"],
-                        min_channels=m["min_channels"], channel_response=response,
-                        max_memory=state.max_memory)
+    state.cube = _timed(state, "read", read_cube, cfg["input"]["cube"], **ad.read_kwargs(cfg))
+    state.noise = _timed(state, "noise", estimate_noise, state.cube, **ad.noise_kwargs(cfg),
+                         **state.blocks)
+    state.mask = _timed(state, "mask", make_mask, state.cube, noise=state.noise,
+                        **ad.mask_kwargs(cfg), max_memory=state.blocks["max_memory"])
     return state
 
 
@@ -120,7 +86,7 @@ def _maps_window(state):
         if window is None:
             state.window = (state.cube, state.mask)
         else:
-            cube, cs = select_channels(state.cube, _vrange(window))
+            cube, cs = select_channels(state.cube, ad.parse_vrange(window))
             mask = state.mask
             if mask is not None and mask.mask is not None:
                 mask = replace(mask, mask=mask.mask[cs])
@@ -128,111 +94,83 @@ def _maps_window(state):
     return state.window
 
 
+def _wants_fit(state) -> bool:
+    cfg, sections = state.config, set(state.config.get("_sections", ()))
+    if cfg["maps"]["method"] == "gauss":
+        return True
+    rings = cfg.get("rings", {})
+    return "rings" in sections and rings.get("velocity_field", "gauss") == "gauss"
+
+
 def stage_moments(state: RunState):
-    cfg = state.config["maps"]
     cube, mask = _maps_window(state)
-    return _timed(state, "moments", compute_moments, cube, mask=mask,
-                  noise=state.noise, channel_response=cfg["channel_response"],
-                  max_memory=state.max_memory, progress=state.progress, client=state.client)
+    return _timed(state, "moments", compute_moments, cube, mask=mask, noise=state.noise,
+                  **ad.moments_kwargs(state.config), **state.blocks)
 
 
 def stage_fit(state: RunState):
-    cfg = state.config["maps"]
-    if cfg["method"] != "gauss":
+    if not _wants_fit(state):
         return None
-    from kinemap.linefit.stage import fit_cube, instrument_sigma_from
-    sigma_instr = instrument_sigma_from(instrument_sigma=cfg["instrument_sigma"],
-                                        resolving_power=cfg["resolving_power"])
+    from kinemap.linefit.stage import fit_cube
+
     cube, mask = _maps_window(state)
-    return _timed(state, "fit", fit_cube, cube, state.noise, mask=mask,
-                  components=cfg["components"], baseline=cfg["baseline"],
-                  channel_response=cfg["channel_response"], instrument_sigma=sigma_instr,
-                  order=cfg["order"], snr_threshold=cfg["snr_threshold"],
-                  min_separation=cfg["min_separation"],
-                  min_component_snr=cfg["min_component_snr"], max_memory=state.max_memory,
-                  progress=state.progress, client=state.client)
-
-
-@dataclass(frozen=True)
-class ModelCubes:
-    """Model and residual cubes of the line fits (held in memory: --write-model only)."""
-
-    model: np.ndarray
-    residual: np.ndarray
-    bunit: object
-    meta: object = None
-
-    def products(self):
-        from kinemap.io.products import Product
-
-        wcs = None if self.meta is None else self.meta.wcs3d
-        return [Product("model", self.model, self.bunit, "model cube of the Gaussian fits", "cube",
-                        plot=False, wcs=wcs),
-                Product("residual", self.residual, self.bunit, "data minus model cube", "cube",
-                        plot=False, wcs=wcs)]
+    return _timed(state, "fit", fit_cube, cube, noise=state.noise, mask=mask,
+                  **ad.fit_kwargs(state.config), **state.blocks)
 
 
 def stage_model(state: RunState):
     fit = state.results.get("fit")
     if fit is None or not state.config["maps"]["write_model"]:
         return None
-    from kinemap.parallel.blocks import read_rows
+    from kinemap.linefit.stage import model_cubes
 
-    cube, _ = _maps_window(state)
-    data = read_rows(cube, slice(0, cube.shape[1]))
-    model = fit.model_cube(cube)
-    return ModelCubes(model=model, residual=(data - model).astype(np.float32),
-                      bunit=cube.meta.bunit, meta=cube.meta)
+    return _timed(state, "model", model_cubes, fit, _maps_window(state)[0])
 
 
-def _velocity_field(state):
-    """(velocity, error, intensity) for the ring fit: from the maps stage or from FITS maps."""
+def _velocity_input(state):
+    """(velocity, error, intensity, meta) for the ring fit: FITS maps or the maps stage."""
     if state.velocity_map is not None:
         inp = state.config["input"]
+        err_path = inp.get("velocity_err", inp.get("velocity_error"))
         err = inten = None
-        if inp["velocity_error"]:
-            err = read_map(inp["velocity_error"], unit="km/s", like=state.velocity_map,
+        if err_path:
+            err = read_map(err_path, unit="km/s", like=state.velocity_map,
                            name="velocity error map").data
         if inp["intensity"]:
             inten = read_map(inp["intensity"], unit="", like=state.velocity_map,
                              name="intensity map").data
         vmap = state.velocity_map
         v = vmap.data if vmap.unit == u.one else (vmap.data * vmap.unit).to_value(u.km / u.s)
-        return v, err, inten
-    fit = state.results.get("fit")
-    return (fit or state.results["moments"]).velocity_field()
+        return v, err, inten, vmap.meta
+    fit = state.results.get("fit") if _wants_fit(state) else None
+    source = fit or state.results["moments"]
+    return (*source.velocity_field(), source.meta)
 
 
 def stage_rings(state: RunState):
-    from kinemap.rings.stage import run_rings
+    from kinemap.rings.stage import fit_velocity_arrays
 
-    v, err, inten = _velocity_field(state)
-    return _timed(state, "rings", run_rings, v, err, inten, state.meta, state.config["rings"],
-                  cube=state.cube, progress=state.progress)
+    v, err, inten, meta = _velocity_input(state)
+    return _timed(state, "rings", fit_velocity_arrays, v, err, inten, meta,
+                  cube=state.cube, progress=state.blocks["progress"],
+                  **ad.rings_kwargs(state.config))
 
 
 def stage_widths(state: RunState):
-    from kinemap.linefit.stage import instrument_sigma_from
-    from kinemap.widths.stage import run_widths
+    from kinemap.widths.stage import line_widths
 
-    w = state.config["widths"]
-    maps = state.config["maps"]
-    tmap = None
-    if w["temperature_map"]:
-        tmap = read_map(w["temperature_map"], unit="K", name="temperature map")
-        if tmap.data.shape != state.cube.shape[1:]:
-            raise KinemapError(f"the temperature map has shape {tmap.data.shape}, the cube's "
-                               f"maps {state.cube.shape[1:]}; give a map on the cube's pixel grid")
+    kwargs = ad.widths_kwargs(state.config)
+    tpath = state.config["widths"]["temperature_map"]
+    if tpath:
+        if kwargs["temperature"] is not None:
+            raise KinemapError("give either --temperature or --temperature-map, not both")
+        tmap = read_map(tpath, unit="K", name="temperature map")
         if not tmap.unit.is_equivalent(u.K, equivalencies=u.temperature()):
             raise KinemapError(f"the temperature map's BUNIT is {tmap.unit}, not a temperature; "
                                "fix BUNIT (K)")
-        tmap = (tmap.data * tmap.unit).to_value(u.K, equivalencies=u.temperature())
-    sigma_instr = instrument_sigma_from(instrument_sigma=maps["instrument_sigma"],
-                                        resolving_power=maps["resolving_power"])
-    return _timed(state, "widths_fit", run_widths, state.cube, state.noise, state.mask, w,
-                  temperature_map=tmap, instrument_sigma=sigma_instr,
-                  channel_response=maps["channel_response"], max_memory=state.max_memory,
-                  progress=state.progress, client=state.client)
+        kwargs["temperature"] = (tmap.data * tmap.unit).to(u.K, equivalencies=u.temperature())
+    return _timed(state, "widths_fit", line_widths, state.cube, noise=state.noise,
+                  mask=state.mask, **kwargs, **state.blocks)
 
 
 # (config section, result name, stage function).  A stage runs when its section is in the
@@ -257,25 +195,10 @@ def run_config(cfg: dict, *, stage_dir=None) -> RunState:
         check_output_dir(out["dir"], overwrite=out["overwrite"])
     with open_client(scheduler=cfg["run"]["scheduler"], workers=cfg["run"]["workers"]) as client:
         state = _run_stages(cfg, client)
-    products, figures, summary = [], {}, {}
-    for name, res in state.results.items():
-        products.extend(res.products())
-        if hasattr(res, "figures") and out["plots"]:
-            figures.update(res.figures(state))
-        if hasattr(res, "summary"):
-            summary[name] = res.summary()
-    center = _systemic(state)
-    if stage_dir is not None:
-        state.manifest = write_products(stage_dir, state.meta, products,
-                                        options=_options(cfg), timings=state.timings,
-                                        figures=figures, plots=out["plots"], center=center,
-                                        summary=summary, execution=state.execution)
-        return state
-    with StagedOutput(out["dir"], overwrite=out["overwrite"]) as staged:
-        state.manifest = write_products(staged.path, state.meta, products,
-                                        options=_options(cfg), timings=state.timings,
-                                        figures=figures, plots=out["plots"], center=center,
-                                        summary=summary, execution=state.execution)
+    state.manifest = write_results(
+        state.results.values(), stage_dir if stage_dir is not None else out["dir"],
+        overwrite=out["overwrite"], plots=out["plots"], options=_options(cfg),
+        timings=state.timings, execution=state.execution, staged=stage_dir is None)
     return state
 
 
@@ -302,23 +225,12 @@ def _execution(cfg, state) -> dict:
     """How the run was executed, for the manifest."""
     from kinemap.parallel.blocks import task_rows
 
+    blocks = state.blocks
     info = {"scheduler": cfg["run"]["scheduler"] or ("local cluster" if cfg["run"]["workers"]
                                                       else "in-process threads"),
-            "workers": cfg["run"]["workers"], "max_memory_bytes": state.max_memory}
+            "workers": cfg["run"]["workers"], "max_memory_bytes": blocks["max_memory"]}
     if state.cube is not None:
-        info["block_rows"] = task_rows(state.cube.shape, max_memory=state.max_memory,
+        info["block_rows"] = task_rows(state.cube.shape, max_memory=blocks["max_memory"],
                                        factor=2.5, client=state.client)
         info["cube_shape"] = list(state.cube.shape)
     return info
-
-
-def _systemic(state) -> float | None:
-    """Centre for velocity colour scales: the median moment-1 velocity of signal pixels."""
-    rings = state.results.get("rings")
-    if rings is not None:
-        return rings.summary()["v_sys_kms"]
-    maps = state.results.get("moments")
-    v = getattr(maps, "moment1", None)
-    if v is None or not np.isfinite(v).any():
-        return None
-    return float(np.nanmedian(v))

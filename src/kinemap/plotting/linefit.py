@@ -1,54 +1,42 @@
-"""Figures of the line-fit stage: example spectra with their fits and residuals."""
+"""Figures of the per-pixel Gaussian fits: example spectra with their fits and residuals."""
 from __future__ import annotations
 
-import matplotlib
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
 
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
-
-from kinemap.parallel.blocks import read_rows  # noqa: E402
-from kinemap.status import Status  # noqa: E402
-
-__all__ = ["plot_example_spectra", "example_pixels"]
+__all__ = ["figures", "plot_example_spectra"]
 
 
-def example_pixels(fit) -> list[tuple[str, int, int]]:
-    """(label, y, x) of the brightest, median and faintest accepted pixel."""
-    ok = fit.status == Status.OK
-    if not ok.any():
-        return []
-    tot, _ = fit.integrated_total()
-    vals = np.where(ok, tot, np.nan)
-    flat = np.flatnonzero(np.isfinite(vals))
-    if flat.size == 0:
-        return []
-    order = flat[np.argsort(vals.ravel()[flat])]
-    picks = [("brightest", order[-1]), ("median", order[order.size // 2]), ("faintest", order[0])]
-    nx = fit.status.shape[1]
-    return [(label, int(i // nx), int(i % nx)) for label, i in picks]
+def figures(fit) -> dict:
+    """``{name: (Figure, description)}`` for a :class:`kinemap.LineFitMaps`."""
+    fig = plot_example_spectra(fit)
+    return {} if fig is None else {
+        "example_spectra": (fig, "brightest, median and faintest fitted spectra with their "
+                                 "fits and residuals")}
 
 
-def plot_example_spectra(cube, fit):
-    """Three spectra (brightest, median, faintest accepted fit), model over data, residuals."""
-    picks = example_pixels(fit)
+def plot_example_spectra(fit):
+    """Three spectra (brightest, median, faintest accepted fit), model over data, residuals.
+    Uses the spectra the fit kept (``fit.examples``); None when no spectrum was fitted."""
+    picks = fit.examples
     if not picks:
         return None
-    v = cube.velocity
-    fig, axes = plt.subplots(2, len(picks), figsize=(4.2 * len(picks), 4.6), sharex=True,
-                             gridspec_kw={"height_ratios": [3, 1]}, squeeze=False)
-    unit = cube.meta.bunit.to_string() or "arbitrary"
-    for j, (label, y, x) in enumerate(picks):
-        spec = read_rows(cube, slice(y, y + 1), dtype=np.float64)[:, 0, x]
-        model = fit.model_spectrum(v, y, x)
+    fig = Figure(figsize=(4.2 * len(picks), 4.6))
+    FigureCanvasAgg(fig)
+    axes = fig.subplots(2, len(picks), sharex=True, gridspec_kw={"height_ratios": [3, 1]},
+                        squeeze=False)
+    unit = fit.meta.bunit.to_string() or "arbitrary"
+    for j, ex in enumerate(picks):
+        v, spec, model = ex["axis"], ex["data"], ex["model"]
         top, bottom = axes[0, j], axes[1, j]
         top.step(v, spec, where="mid", color="0.3", lw=0.9, label="data")
         top.plot(v, model, color="C3", lw=1.4, label="fit")
-        top.set_title(f"{label}: pixel (x={x}, y={y})\n"
-                      f"v = {fit.velocity[0, y, x]:.2f} +- {fit.velocity_error[0, y, x]:.2f}, "
-                      f"sigma = {fit.dispersion[0, y, x]:.2f} +- {fit.dispersion_error[0, y, x]:.2f} km/s",
+        top.set_title(f"{ex['label']}: pixel (x={ex['x']}, y={ex['y']})\n"
+                      f"v = {ex['velocity']:.2f} +- {ex['velocity_err']:.2f}, "
+                      f"sigma = {ex['dispersion']:.2f} +- {ex['dispersion_err']:.2f} km/s",
                       fontsize=8.5)
-        bottom.step(v, spec - model, where="mid", color="0.3", lw=0.8)
+        bottom.step(v, np.asarray(spec) - np.asarray(model), where="mid", color="0.3", lw=0.8)
         bottom.axhline(0, color="C3", lw=0.8)
         bottom.set_xlabel("velocity [km/s]")
         if j == 0:

@@ -6,16 +6,15 @@ with percentile limits; status maps a discrete map with a legend of the codes.
 """
 from __future__ import annotations
 
+import astropy.units as u
 import matplotlib
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.colors import BoundaryNorm, ListedColormap
+from matplotlib.figure import Figure
+from matplotlib.patches import Ellipse
 
-matplotlib.use("Agg")
-import astropy.units as u  # noqa: E402
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
-from matplotlib.colors import BoundaryNorm, ListedColormap  # noqa: E402
-from matplotlib.patches import Ellipse  # noqa: E402
-
-from kinemap.status import Status  # noqa: E402
+from kinemap.status import Status
 
 __all__ = ["plot_map", "CMAPS"]
 
@@ -46,7 +45,8 @@ def _add_beam(ax, meta):
 def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float | None = None,
              figsize=(6.0, 5.2)):
     """Figure of one map with the cube's celestial WCS.  Returns a matplotlib Figure."""
-    fig = plt.figure(figsize=figsize)
+    fig = Figure(figsize=figsize)
+    FigureCanvasAgg(fig)
     ax = fig.add_subplot(111, projection=meta.wcs)
     vals = _finite(data)
     label = title
@@ -65,7 +65,7 @@ def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float
         cb.ax.set_yticklabels([f"{int(c)} {c.name.lower()}" for c in codes], fontsize=7)
         cb.set_label("status")
     else:
-        cmap = plt.get_cmap(CMAPS.get(kind, "viridis")).copy()
+        cmap = matplotlib.colormaps[CMAPS.get(kind, "viridis")].copy()
         cmap.set_bad("#e8e8e8")
         if vals.size == 0:
             vmin, vmax = 0.0, 1.0
@@ -99,4 +99,3 @@ def _axis_label(wcs, i):
 
 def save(fig, path, *, dpi=120):
     fig.savefig(path, dpi=dpi)
-    plt.close(fig)

@@ -14,11 +14,10 @@ from matplotlib.colors import TwoSlopeNorm
 from matplotlib.figure import Figure
 
 from kinemap.units import KMS
-from kinemap.rings._geometry import ring_ellipse
-from kinemap.rings.pv import major_axis_pv
 from kinemap.status import Status
 
 __all__ = [
+    "figures",
     "plot_rotation_curve",
     "plot_ring_geometry",
     "plot_velocity_fields",
@@ -130,11 +129,10 @@ def plot_ring_geometry(result, *, title: str | None = None) -> Figure:
 
 def _draw_rings(ax, result, every: int):
     t = result.table
-    inv = np.linalg.inv(result.grid.matrix)
     ok = np.asarray(t["status"]) == Status.OK
     rows = np.nonzero(ok)[0][::max(1, every)]
     for k in rows:
-        x, y = ring_ellipse(inv, t["x_center"][k], t["y_center"][k], _vals(t["position_angle"], u.deg)[k],
+        x, y = result.grid.ring_ellipse(t["x_center"][k], t["y_center"][k], _vals(t["position_angle"], u.deg)[k],
                             _vals(t["inclination"], u.deg)[k], _vals(t["radius"], u.arcsec)[k])
         ax.plot(x, y, color="black", lw=0.5, alpha=0.6)
     # receding half of the major axis of the outermost drawn ring
@@ -189,18 +187,16 @@ def plot_velocity_fields(result, *, rings_every: int = 1, title: str | None = No
     return fig
 
 
-def plot_pv_diagram(cube, velocity_axis, result, *, width=None, title: str | None = None) -> Figure:
+def plot_pv_diagram(pv, result, *, title: str | None = None) -> Figure:
     """Position-velocity diagram along the global major axis with the projected model.
 
     Parameters
     ----------
-    cube : array or Quantity, shape (n_channel, ny, nx)
-    velocity_axis : Quantity or array (km/s), shape (n_channel,)
+    pv : kinemap.rings.PositionVelocitySlice
+        The slice (from :func:`kinemap.rings.major_axis_pv`).
     result : RingFitResult
-    width : Quantity or float, optional
-        Strip width (arcsec) averaged across the slice.
+        The ring fit (its global v_sys is marked).
     """
-    pv = major_axis_pv(cube, velocity_axis, result, width=width)
     off = pv.offset.to_value(u.arcsec)
     vax = pv.velocity.to_value(KMS)
     fig = _figure(6.4, 4.6)
@@ -249,3 +245,19 @@ def plot_harmonics(result, *, title: str | None = None) -> Figure:
     if title:
         fig.suptitle(title)
     return fig
+
+
+def figures(rings) -> dict:
+    """``{name: (Figure, description)}`` for a :class:`kinemap.RingFit`."""
+    r = rings.result
+    figs = {
+        "rotation_curve": (plot_rotation_curve(r),
+                           "rotation curve with approaching and receding halves"),
+        "ring_geometry": (plot_ring_geometry(r), "ring geometry against radius"),
+        "velocity_fields": (plot_velocity_fields(r), "velocity field, ring model and residual"),
+        "harmonics": (plot_harmonics(r), "harmonic terms per ring"),
+    }
+    if rings.pv is not None:
+        figs["pv_major_axis"] = (plot_pv_diagram(rings.pv, r),
+                                 "position-velocity diagram along the major axis with the model")
+    return figs

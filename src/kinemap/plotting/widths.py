@@ -13,9 +13,8 @@ from matplotlib.figure import Figure
 from matplotlib.ticker import NullFormatter
 
 from kinemap.errors import KinemapError
-from kinemap.widths.budget import WidthBudget
 
-__all__ = ["plot_width_maps", "plot_width_histograms", "plot_dispersion_vs_intensity"]
+__all__ = ["figures", "plot_width_maps", "plot_width_histograms", "plot_dispersion_vs_intensity"]
 
 _LABELS = {
     "nonthermal_dispersion": (r"$\sigma_{\rm nt}$", "km/s"),
@@ -35,7 +34,7 @@ def _new_figure(figsize) -> Figure:
 
 
 def _check_budget(budget) -> None:
-    if not isinstance(budget, WidthBudget):
+    if not all(hasattr(budget, k) for k in ("nonthermal_dispersion", "mach_number")):
         raise KinemapError(
             f"'budget' must be a WidthBudget from kinemap.widths.width_budget, got {type(budget).__name__}"
         )
@@ -47,7 +46,7 @@ def _label(key: str) -> str:
 
 
 def plot_width_maps(
-    budget: WidthBudget,
+    budget,
     *,
     wcs=None,
     keys: tuple[str, ...] = ("nonthermal_dispersion", "temperature", "mach_number"),
@@ -105,7 +104,7 @@ def plot_width_maps(
     return fig
 
 
-def plot_width_histograms(budget: WidthBudget, *, bins="auto") -> Figure:
+def plot_width_histograms(budget, *, bins="auto") -> Figure:
     """Histograms of sigma_nt and of the Mach number, medians marked by dashed lines.
 
     Mach number 1 (transonic) is marked by a dotted line for reference.
@@ -131,7 +130,7 @@ def plot_width_histograms(budget: WidthBudget, *, bins="auto") -> Figure:
 
 
 def plot_dispersion_vs_intensity(
-    budget: WidthBudget,
+    budget,
     intensity,
     *,
     log_intensity: bool = True,
@@ -188,3 +187,16 @@ def plot_dispersion_vs_intensity(
         # labelled minor ticks crowd a log axis spanning less than a few decades
         ax.xaxis.set_minor_formatter(NullFormatter())
     return fig
+
+
+def figures(widths) -> dict:
+    """``{name: (Figure, description)}`` for a :class:`kinemap.WidthBudget`."""
+    b = widths.budget
+    figs = {"width_maps": (plot_width_maps(b, wcs=widths.meta.wcs),
+                           "non-thermal dispersion, temperature and Mach number maps"),
+            "width_histograms": (plot_width_histograms(b),
+                                 "distributions of the non-thermal dispersion and Mach number")}
+    if widths.intensity is not None:
+        figs["width_vs_intensity"] = (plot_dispersion_vs_intensity(b, widths.intensity),
+                                      "non-thermal dispersion against integrated intensity")
+    return figs

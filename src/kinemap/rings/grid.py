@@ -155,6 +155,13 @@ class SkyGrid:
         inv = np.linalg.inv(self.matrix)
         return inv[0, 0] * east + inv[0, 1] * north, inv[1, 0] * east + inv[1, 1] * north
 
+    def ring_ellipse(self, x0, y0, pa_deg, incl_deg, radius, n: int = 181):
+        """Pixel coordinates (x, y) of a circle of ``radius`` arcsec in a disk centred on
+        pixel (x0, y0) with position angle and inclination in degrees (for drawing)."""
+        from kinemap.rings._geometry import ring_ellipse
+
+        return ring_ellipse(np.linalg.inv(self.matrix), x0, y0, pa_deg, incl_deg, radius, n)
+
     def __repr__(self) -> str:
         return (
             f"SkyGrid(pixel_scale={self.pixel_scale.value:.6g} arcsec, "

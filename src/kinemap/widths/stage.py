@@ -11,6 +11,7 @@ are intrinsic and go into :func:`kinemap.widths.width_budget` with ``intrinsic=T
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import ClassVar
 
 import astropy.units as u
 import numpy as np
@@ -19,13 +20,14 @@ from kinemap.units import KMS
 from kinemap.spectral.axes import to_velocity
 from kinemap.errors import KinemapError
 from kinemap.linefit import LineModel
-from kinemap.linefit.stage import fit_cube
+from kinemap.linefit.stage import fit_cube, instrument_sigma_from
 from kinemap.io.products import Product
+from kinemap.io.results import StageResult
 from kinemap.status import Status
 from kinemap.widths.budget import width_budget
 from kinemap.spectral.catalogue import check_line_in_range, get_line, load_catalogue
 
-__all__ = ["WidthStage", "run_widths", "DEFAULT_RATIOS"]
+__all__ = ["WidthBudget", "line_widths", "DEFAULT_RATIOS"]
 
 # fixed flux ratios set by atomic physics (strong, weak): ratio of the strong to the weak
 # line; [N II] 6583/6548 = 3.0 (common practice; the transition probabilities give ~2.9-3.05)
@@ -114,15 +116,40 @@ def build_model(names, *, ratios=None, free_velocity=False) -> tuple[LineModel, 
 
 
 @dataclass(frozen=True)
-class WidthStage:
-    """Per-line fits and the width budget."""
+class WidthBudget(StageResult):
+    """The line-width budget of a cube: a joint fit of the named lines, then the split of
+    each line's width into instrumental, thermal and non-thermal parts.
+
+    Every product is an attribute, a ``spectral_cube.Projection``:
+    ``nonthermal_dispersion``, ``nonthermal_dispersion_err``, ``thermal_dispersion``
+    (km/s), ``temperature``, ``temperature_err`` (K), ``sound_speed`` (km/s),
+    ``mach_number`` (sqrt(3) sigma_nt / c_s), ``width_status`` (:mod:`kinemap.status`),
+    ``line_velocity``, and per line ``dispersion_<LINE>``, ``dispersion_<LINE>_err``,
+    ``integrated_<LINE>``.
+
+    Attributes
+    ----------
+    budget : kinemap.widths.BudgetArrays
+        The same maps as plain arrays, and the per-line dispersions.
+    fit : kinemap.LineFitMaps
+        The joint line fit.
+    names : tuple of str
+        The lines, in the fit's order.
+    """
+
+    name: ClassVar[str] = "widths"
 
     budget: object
     fit: object
     names: tuple
     component_of: dict
+    meta: object = None
     intensity: np.ndarray | None = None
     settings: dict = field(default_factory=dict)
+
+    @property
+    def seconds(self) -> float:
+        return float(getattr(self.fit, "seconds", 0.0))
 
     def products(self) -> list[Product]:
         out = []
@@ -133,23 +160,24 @@ class WidthStage:
                 extra = {"STATCODE": "; ".join(f"{int(c)} {c.name.lower()}" for c in Status)[:68]}
             out.append(Product(key, np.asarray(arr), u.Unit(unit), desc, kind, extra_header=extra))
         f = self.fit
-        k0 = 0
-        out += [Product("line_velocity", f.velocity[k0], KMS,
+        out += [Product("line_velocity", f.component("velocity"), KMS,
                         f"velocity of the joint fit of {', '.join(self.names)}", "velocity"),
-                Product("line_velocity_err", f.velocity_error[k0], KMS,
+                Product("line_velocity_err", f.component("velocity_err"), KMS,
                         "1-sigma error of the joint-fit velocity", "error", plot=False)]
         for name, k in self.component_of.items():
-            out.append(Product(f"dispersion_{name}_err", f.dispersion_error[k], KMS,
+            out.append(Product(f"dispersion_{name}_err", f.component("dispersion_err", k), KMS,
                                f"1-sigma error of the intrinsic dispersion of {name}", "error",
                                plot=False))
-            out.append(Product(f"integrated_{name}", f.integrated[k], f.bunit * KMS,
-                               f"integrated intensity of {name}", "intensity", plot=False))
+            out.append(Product(f"integrated_{name}", f.component("integrated", k),
+                               self.meta.bunit * KMS, f"integrated intensity of {name}",
+                               "intensity", plot=False))
         return out
 
     def summary(self) -> dict:
         b = self.budget
         s = dict(b.summary)
         ok = np.asarray(b.width_status) == Status.OK
+
         def med(a):
             a = np.asarray(a)
             return float(np.nanmedian(a[ok])) if ok.any() and np.isfinite(a[ok]).any() else None
@@ -160,70 +188,104 @@ class WidthStage:
         return {k: (v if isinstance(v, (int, float, str, list, type(None))) else str(v))
                 for k, v in s.items()}
 
-    def figures(self, state) -> dict:
-        from kinemap.plotting.widths import (
-            plot_dispersion_vs_intensity, plot_width_histograms, plot_width_maps
-        )
-
-        figs = {"width_maps": (plot_width_maps(self.budget, wcs=state.meta.wcs),
-                               "non-thermal dispersion, temperature and Mach number maps"),
-                "width_histograms": (plot_width_histograms(self.budget),
-                                     "distributions of the non-thermal dispersion and Mach number")}
-        if self.intensity is not None:
-            figs["width_vs_intensity"] = (plot_dispersion_vs_intensity(self.budget, self.intensity),
-                                          "non-thermal dispersion against integrated intensity")
-        return figs
-
 
 def _temperature(value, name):
+    """A temperature (scalar or map) as a Quantity in K; None stays None."""
     if value is None:
         return None
-    if isinstance(value, np.ndarray):
-        return u.Quantity(value, u.K)
-    q = value if isinstance(value, u.Quantity) else u.Quantity(str(value))
+    if isinstance(value, u.Quantity):
+        q = value
+    elif isinstance(value, np.ndarray):
+        q = u.Quantity(value, u.K)
+    else:
+        try:
+            q = u.Quantity(str(value))
+        except (TypeError, ValueError):
+            raise KinemapError(f"'{name}' must be a temperature like '1e4 K', got {value!r}") from None
     if q.unit == u.one:
         q = q.value * u.K
     try:
-        return q.to(u.K, equivalencies=u.temperature())
+        q = q.to(u.K, equivalencies=u.temperature())
     except u.UnitConversionError:
         raise KinemapError(f"'{name}' must be a temperature like '1e4 K', got {value!r}") from None
+    return u.Quantity(np.asarray(q.value, dtype=np.float64), u.K)
 
 
-def run_widths(cube, noise, mask, opts: dict, *, temperature_map=None, instrument_sigma=0.0,
-               channel_response="tophat", max_memory=None, progress=False, client=None) -> WidthStage:
-    """Fit the lines of ``opts['lines']`` jointly and split their widths (see module docstring)."""
-    names = opts.get("lines")
+def _line_names(lines) -> list[str]:
+    names = lines
     if isinstance(names, str):
         names = [n.strip() for n in names.split(",") if n.strip()]
+    names = list(names or [])
     if not names:
-        raise KinemapError("'lines' needs at least one line name, e.g. --lines Halpha,NII_6583")
-    catalogue = load_catalogue(opts.get("catalogue"))
-    lines = [get_line(n, catalogue=catalogue) for n in names]
+        raise KinemapError("'lines' needs at least one line name, e.g. lines=['Halpha', 'NII_6583']")
     if len(set(names)) != len(names):
         raise KinemapError(f"'lines' lists a line twice: {', '.join(names)}")
-    temperature = _temperature(opts.get("temperature"), "temperature")
-    if temperature_map is not None:
-        if temperature is not None:
-            raise KinemapError("give either --temperature or --temperature-map, not both")
-        temperature = _temperature(temperature_map, "temperature map")
-    if temperature is None and len({round(line.mass_amu, 3) for line in lines}) < 2:
+    return names
+
+
+def line_widths(cube, *, lines, temperature=None, temperature_err=None, mu: float = 2.33,
+                noise=None, mask=None, instrument_sigma=None, resolving_power=None,
+                free_velocity: bool = False, ratios=None, catalogue=None,
+                snr_threshold: float = 3.0, channel_response: str = "tophat",
+                max_memory=None, progress: bool = False, client=None) -> WidthBudget:
+    """Fit the named lines jointly and split their widths (see the module docstring).
+
+    Parameters
+    ----------
+    cube : kinemap.io.Cube
+    lines : list of str or str
+        Catalogue names, brightest first (``['Halpha', 'NII_6583', 'NII_6548']`` or
+        ``'Halpha,NII_6583'``); see :func:`kinemap.widths.load_catalogue`.
+    temperature : Quantity, str or array (K), optional
+        Assumed temperature: a scalar or a map (ny, nx).  Without one, the temperature is
+        solved from lines of different emitter mass.
+    temperature_err : Quantity or str (K), optional
+        1-sigma error of an assumed temperature.
+    mu : float
+        Mean particle mass over m_H for the sound speed (2.33 molecular gas, 0.6 ionised).
+    noise, mask : optional
+        As for :func:`kinemap.fit_cube` (estimated when not given).
+    instrument_sigma : Quantity or str (km/s), optional
+        Gaussian instrumental sigma; or ``resolving_power`` R (FWHM = c/R).
+    free_velocity : bool
+        A velocity per line instead of one shared velocity.
+    ratios : dict, optional
+        Fixed flux ratios ``{'NII_6583/NII_6548': 3.0}`` (the default ratio is always on).
+    catalogue : str, optional
+        Extra catalogue TOML file.
+
+    Returns
+    -------
+    WidthBudget
+    """
+    names = _line_names(lines)
+    cat = load_catalogue(catalogue)
+    line_list = [get_line(n, catalogue=cat) for n in names]
+    temp = _temperature(temperature, "temperature")
+    if temp is None and len({round(line.mass_amu, 3) for line in line_list}) < 2:
         raise KinemapError(
             "a temperature can only be solved from lines of different emitter mass "
-            f"({', '.join(names)} share one); give --temperature or add a line of another mass")
-    axes = line_axes(cube, lines)
-    ratios = parse_ratios(opts.get("ratios"))
-    model, _ = build_model(names, ratios=ratios, free_velocity=bool(opts.get("free_velocity")))
+            f"({', '.join(names)} share one); give a temperature or add a line of another mass")
+    if temp is not None and temp.ndim == 2 and temp.shape != cube.shape[1:]:
+        raise KinemapError(f"the temperature map has shape {temp.shape}, the cube's maps "
+                           f"{cube.shape[1:]}; give a map on the cube's pixel grid")
+    axes = line_axes(cube, line_list)
+    model, _ = build_model(names, ratios=parse_ratios(ratios), free_velocity=bool(free_velocity))
+    sigma_instr = instrument_sigma_from(instrument_sigma=instrument_sigma,
+                                        resolving_power=resolving_power)
     kw = {} if max_memory is None else {"max_memory": max_memory}
-    fit = fit_cube(cube, noise, mask=mask, model=model, velocity_axes=axes,
-                   channel_response=channel_response, instrument_sigma=instrument_sigma,
-                   snr_threshold=float(opts.get("snr_threshold", 3.0)), progress=progress,
-                   client=client, **kw)
+    fit = fit_cube(cube, noise=noise, mask=mask, model=model, velocity_axes=axes,
+                   channel_response=channel_response, instrument_sigma=sigma_instr,
+                   snr_threshold=float(snr_threshold), progress=progress, client=client, **kw)
     component_of = {names[c[0]]: k for k, c in enumerate(model.components)}
-    disp = {n: fit.dispersion[k] * KMS for n, k in component_of.items()}
-    err = {n: fit.dispersion_error[k] * KMS for n, k in component_of.items()}
-    status = {n: fit.status for n in component_of}
-    budget = width_budget(disp, err, intrinsic=True, temperature=temperature,
-                          temperature_err=_temperature(opts.get("temperature_err"), "temperature_err"),
-                          mu=float(opts.get("mu", 2.33)), input_status=status, catalogue=catalogue)
-    return WidthStage(budget=budget, fit=fit, names=tuple(names), component_of=component_of,
-                      intensity=fit.integrated_total()[0], settings=dict(opts))
+    disp = {n: fit.component("dispersion", k) * KMS for n, k in component_of.items()}
+    err = {n: fit.component("dispersion_err", k) * KMS for n, k in component_of.items()}
+    budget = width_budget(disp, err, intrinsic=True, temperature=temp,
+                          temperature_err=_temperature(temperature_err, "temperature_err"),
+                          mu=float(mu), input_status={n: fit.status for n in component_of},
+                          catalogue=cat)
+    settings = dict(lines=names, temperature=None if temp is None or temp.ndim else str(temp),
+                    mu=float(mu), free_velocity=bool(free_velocity), ratios=ratios,
+                    instrument_sigma_kms=sigma_instr)
+    return WidthBudget(budget=budget, fit=fit, names=tuple(names), component_of=component_of,
+                       meta=cube.meta, intensity=fit.integrated_total()[0], settings=settings)

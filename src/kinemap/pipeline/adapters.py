@@ -1,0 +1,93 @@
+"""From config sections to the keyword arguments of the public stage functions.
+
+The config schema (:mod:`kinemap.pipeline.config`) is the one source of defaults; these
+adapters only rename and parse (strings like '-50,120' into ranges), so a TOML file, the
+command line and a Python call with the same values run the same code.
+"""
+from __future__ import annotations
+
+from kinemap.errors import KinemapError
+
+__all__ = ["read_kwargs", "noise_kwargs", "mask_kwargs", "moments_kwargs", "fit_kwargs",
+           "rings_kwargs", "widths_kwargs", "parse_vrange", "parse_line_free"]
+
+
+def parse_vrange(value):
+    """'-50,120' or [v1, v2] -> [v1, v2] (strings keep their units); None stays None."""
+    if value is None:
+        return None
+    if isinstance(value, str):
+        parts = [p for p in value.replace(" ", "").split(",") if p]
+        if len(parts) != 2:
+            raise KinemapError(f"'vrange' must be two velocities like '-50,120', got {value!r}")
+        return parts
+    return list(value)
+
+
+def parse_line_free(value):
+    """'v1,v2;v3,v4' (km/s) or [[v1, v2], ...] -> list of pairs; 'auto' or None -> None."""
+    if value is None or (isinstance(value, str) and value.strip().lower() == "auto"):
+        return None
+    if isinstance(value, str):
+        try:
+            return [tuple(float(x) for x in part.split(",")) for part in value.split(";") if part]
+        except ValueError:
+            raise KinemapError(f"'line_free' must look like '-300,-200;250,400' (km/s), "
+                               f"got {value!r}") from None
+    return value
+
+
+def read_kwargs(cfg: dict) -> dict:
+    inp = cfg["input"]
+    return dict(convention=inp["convention"], rest_value=inp["rest_value"], frame=inp["frame"],
+                vrange=parse_vrange(inp["vrange"]), box=inp["box"], region=inp["region"],
+                beams=inp["beams"], bunit=inp["bunit"], hdu=inp["hdu"], beam=inp.get("beam"))
+
+
+def noise_kwargs(cfg: dict) -> dict:
+    return dict(line_free=parse_line_free(cfg["noise"]["line_free"]),
+                channel_response=cfg["maps"]["channel_response"])
+
+
+def mask_kwargs(cfg: dict) -> dict:
+    m = cfg["mask"]
+    return dict(method=m["method"], threshold=m["threshold"], grow_threshold=m["grow_threshold"],
+                smooth_beams=m["smooth_beams"], smooth_pixels=m["smooth_pixels"],
+                smooth_channels=m["smooth_channels"], min_pixels=m["min_pixels"],
+                min_channels=m["min_channels"], channel_response=cfg["maps"]["channel_response"])
+
+
+def moments_kwargs(cfg: dict) -> dict:
+    return dict(channel_response=cfg["maps"]["channel_response"])
+
+
+def fit_kwargs(cfg: dict) -> dict:
+    from kinemap.linefit.stage import instrument_sigma_from
+
+    m = cfg["maps"]
+    return dict(components=m["components"], baseline=m["baseline"],
+                channel_response=m["channel_response"],
+                instrument_sigma=instrument_sigma_from(instrument_sigma=m["instrument_sigma"],
+                                                       resolving_power=m["resolving_power"]),
+                order=m["order"], snr_threshold=m["snr_threshold"],
+                min_separation=m["min_separation"], min_component_snr=m["min_component_snr"])
+
+
+def rings_kwargs(cfg: dict) -> dict:
+    r = cfg["rings"]
+    return dict(center=r["center"], position_angle=r.get("position_angle", r.get("pa")),
+                inclination=r["inclination"], v_sys=r.get("v_sys", r.get("vsys")), ring_width=r["ring_width"],
+                distance=r["distance"], weighting=r["weighting"],
+                exclude_minor_axis=r["exclude_minor_axis"], stages=r["stages"],
+                final_geometry=r["final_geometry"], fix=r["fix"], min_points=r["min_points"],
+                bootstrap=r["bootstrap"], seed=r["seed"],
+                expansion_in_geometry=r["expansion_in_geometry"], pv_diagram=r["pv_diagram"])
+
+
+def widths_kwargs(cfg: dict) -> dict:
+    w, m = cfg["widths"], cfg["maps"]
+    return dict(lines=w["lines"], temperature=w["temperature"],
+                temperature_err=w["temperature_err"], mu=w["mu"],
+                free_velocity=w["free_velocity"], ratios=w["ratios"], catalogue=w["catalogue"],
+                snr_threshold=w["snr_threshold"], instrument_sigma=m["instrument_sigma"],
+                resolving_power=m["resolving_power"], channel_response=m["channel_response"])
