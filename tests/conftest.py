@@ -16,14 +16,12 @@ import pytest
 from astropy.io import fits
 
 def _real_cube() -> Path:
-    """The shared real cube: $KINEMAP_TEST_DATA, else ../shared/data next to the checkout,
-    else the workplace's shared folder (a CI checkout may live elsewhere)."""
+    """The shared real cube: $KINEMAP_TEST_DATA, else ../shared/data next to the checkout."""
     name = "l1448_13co.fits"
     candidates = []
     if os.environ.get("KINEMAP_TEST_DATA"):
         candidates.append(Path(os.environ["KINEMAP_TEST_DATA"]) / name)
-    candidates += [Path(__file__).resolve().parents[1].parent / "shared" / "data" / name,
-                   Path("/work/shared/data") / name]
+    candidates.append(Path(__file__).resolve().parents[1].parent / "shared" / "data" / name)
     for path in candidates:
         if path.exists():
             return path

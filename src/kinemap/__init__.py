@@ -1,15 +1,68 @@
 """kinemap: kinematics from spectral-line cubes.
 
-Data flow (one direction): read -> noise & mask -> per-pixel maps -> rotation curve /
-line-width budget -> export.  See README.md for the conventions used everywhere.
+Data flow (one direction)::
+
+    cube = kinemap.read_cube("cube.fits")                    # path, HDU, SpectralCube, ...
+    noise = kinemap.estimate_noise(cube)                     # NoiseMap
+    mask = kinemap.make_mask(cube, noise=noise)              # SignalMask
+    moments = kinemap.compute_moments(cube, mask=mask, noise=noise)     # MomentMaps
+    fit = kinemap.fit_cube(cube, noise=noise, mask=mask)     # LineFitMaps
+    rings = kinemap.fit_rings(fit, distance="10 Mpc")        # RingFit
+    widths = kinemap.line_widths(cube, lines=["13CO_1-0"], temperature="10 K")  # WidthBudget
+    moments.moment1                                          # a Projection in km/s
+    rings.table                                              # a QTable, one row per ring
+    fit.write("out")                                         # FITS, PNG, manifest.json
+
+or the whole run from a TOML file or a dict: ``kinemap.run("config.toml")``.
+Conventions (velocities positive receding, dispersion = Gaussian sigma, position angle
+east of north to the receding side, ...) are in README.md.  Errors a user can cause raise
+:class:`KinemapError`; warnings derive from :class:`KinemapWarning`.
+
+The functions are imported on first use, so ``import kinemap`` stays cheap for the
+command line.
 """
-from importlib.metadata import PackageNotFoundError, version as _version
+from importlib import import_module
 
-try:
-    __version__ = _version("kinemap")
-except PackageNotFoundError:  # running from a source tree that is not installed
-    __version__ = "0.0.0+unknown"
+from kinemap._version import __version__
+from kinemap.errors import KinemapError, KinemapWarning
 
-from kinemap.errors import KinemapError, KinemapWarning  # noqa: E402
+# public name -> module that defines it (imported on first access, PEP 562)
+_API = {
+    "read_cube": "kinemap.io.reader",
+    "read_map": "kinemap.io.maps",
+    "Cube": "kinemap.io.cube",
+    "estimate_noise": "kinemap.maps.noise",
+    "NoiseMap": "kinemap.maps.noise",
+    "make_mask": "kinemap.maps.masks",
+    "SignalMask": "kinemap.maps.masks",
+    "compute_moments": "kinemap.maps.moments",
+    "MomentMaps": "kinemap.maps.moments",
+    "fit_cube": "kinemap.linefit.stage",
+    "LineFitMaps": "kinemap.linefit.stage",
+    "fit_rings": "kinemap.rings.stage",
+    "RingFit": "kinemap.rings.stage",
+    "line_widths": "kinemap.widths.stage",
+    "WidthBudget": "kinemap.widths.stage",
+    "run": "kinemap.pipeline.runner",
+    "Status": "kinemap.status",
+}
 
-__all__ = ["__version__", "KinemapError", "KinemapWarning"]
+__all__ = ["__version__", "KinemapError", "KinemapWarning", *_API]
+
+
+_SUBPACKAGES = ("io", "spectral", "parallel", "maps", "linefit", "rings", "widths",
+                "plotting", "pipeline", "datasets", "status", "units", "errors")
+
+
+def __getattr__(name):
+    if name in _API:
+        value = getattr(import_module(_API[name]), name)
+        globals()[name] = value
+        return value
+    if name in _SUBPACKAGES:
+        return import_module(f"kinemap.{name}")
+    raise AttributeError(f"module 'kinemap' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_API))

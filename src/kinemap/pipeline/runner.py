@@ -28,7 +28,7 @@ from kinemap.pipeline.config import parse_size
 # The fitting, ring and width stages import scipy.optimize, numba kernels and more; they
 # are imported inside their stage functions so a moments-only run starts faster.
 
-__all__ = ["RunState", "run_config", "prepare", "STAGES"]
+__all__ = ["RunState", "run", "run_config", "prepare", "STAGES"]
 
 
 @dataclass
@@ -200,6 +200,36 @@ def run_config(cfg: dict, *, stage_dir=None) -> RunState:
         overwrite=out["overwrite"], plots=out["plots"], options=_options(cfg),
         timings=state.timings, execution=state.execution, staged=stage_dir is None)
     return state
+
+
+def run(config, *, out=None, overwrite: bool | None = None, plots: bool | None = None,
+        progress: bool | None = None) -> RunState:
+    """Run the stages a config describes and write their products, as ``kinemap run`` does.
+
+    Parameters
+    ----------
+    config : str, path-like or dict
+        A TOML file (relative paths in it are relative to the file) or a dict with the
+        same sections (``{"input": {"cube": "cube.fits"}, "maps": {"method": "gauss"}}``);
+        see :mod:`kinemap.pipeline.config` for every section, key and default.
+    out, overwrite, plots, progress : optional
+        Override ``[output] dir``, ``[output] overwrite``, ``[output] plots`` and
+        ``[run] progress``.
+
+    Returns
+    -------
+    RunState
+        ``.results`` maps stage names ('moments', 'fit', 'rings', 'widths') to their
+        result objects; ``.manifest`` is what was written; ``.cube`` the cube read.
+    """
+    from kinemap.pipeline.config import load_config, validate_config
+
+    cfg = validate_config(config) if isinstance(config, dict) else load_config(config)
+    for section, key, value in (("output", "dir", out), ("output", "overwrite", overwrite),
+                                ("output", "plots", plots), ("run", "progress", progress)):
+        if value is not None:
+            cfg[section][key] = value if key != "dir" else str(value)
+    return run_config(cfg)
 
 
 def _run_stages(cfg, client) -> RunState:

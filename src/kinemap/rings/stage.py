@@ -53,7 +53,10 @@ class RingFit(StageResult):
 
     @property
     def table(self):
-        return self.result.table
+        """The ring table as a QTable (columns with units are Quantities)."""
+        from astropy.table import QTable
+
+        return QTable(self.result.table)
 
     @property
     def seconds(self) -> float:
@@ -142,7 +145,10 @@ def _meta_of(velocity, wcs):
         raise KinemapError("the velocity map carries no WCS; give a Projection, a map read "
                            "with kinemap.io.read_map, or wcs=")
     info = meta if isinstance(meta, dict) else {}
-    beam = getattr(velocity, "beam", None)
+    try:
+        beam = getattr(velocity, "beam", None)
+    except Exception:  # spectral-cube raises NoBeamError for a Projection without a beam
+        beam = None
     if beam is not None:
         from kinemap.io.beams import as_beam
 
