@@ -14,7 +14,7 @@ import astropy.units as u
 
 from kinemap.errors import BeamWarning, KinemapError
 
-__all__ = ["Beam", "read_beam", "BEAM_POLICIES"]
+__all__ = ["Beam", "read_beam", "parse_beam", "BEAM_POLICIES"]
 
 
 @dataclass(frozen=True)
@@ -49,6 +49,38 @@ class Beam:
     def __str__(self) -> str:
         return (f"{self.major.to_value(u.arcsec):.4g} x {self.minor.to_value(u.arcsec):.4g} "
                 f"arcsec, PA {self.pa.to_value(u.deg):.1f} deg")
+
+
+_BEAM_FORM = "'46arcsec' (circular) or '30arcsec,20arcsec,45deg' (major, minor, position angle)"
+
+
+def parse_beam(text) -> Beam:
+    """A beam written as text: '46arcsec' (circular, FWHM) or '30arcsec,20arcsec,45deg'
+    (FWHM major and minor axes, position angle east of north).  Every value needs an angle
+    unit; the axes must be positive and the minor axis no larger than the major."""
+    parts = [p.strip() for p in str(text).split(",")]
+    bad = KinemapError(f"'beam' must look like {_BEAM_FORM}, got {text!r}")
+    if len(parts) not in (1, 3) or not all(parts):
+        raise bad
+    try:
+        values = [u.Quantity(p) for p in parts]
+    except (TypeError, ValueError):
+        raise bad from None
+    if not all(v.unit.physical_type == "angle" and v.isscalar for v in values):
+        raise KinemapError(f"'beam' values need angle units (arcsec, deg), got {text!r}; "
+                           f"write it like {_BEAM_FORM}")
+    major = values[0].to(u.deg)
+    minor = values[1].to(u.deg) if len(values) == 3 else major
+    pa = values[2].to(u.deg) if len(values) == 3 else 0.0 * u.deg
+    if not (math.isfinite(major.value) and math.isfinite(minor.value) and math.isfinite(pa.value)):
+        raise bad
+    if not (major.value > 0 and minor.value > 0):
+        raise KinemapError(f"'beam' axes must be positive, got {text!r}")
+    if minor > major:
+        raise KinemapError(f"'beam' minor axis {values[1]} is larger than the major axis "
+                           f"{values[0]}; give the major axis first")
+    return Beam(major, minor, pa)
+
 
 BEAM_POLICIES = ("common", "refuse")
 
