@@ -138,7 +138,9 @@ def stage_moments(state: RunState):
 
 def stage_fit(state: RunState):
     cfg = state.config["maps"]
-    if cfg["method"] != "gauss":
+    rings_fit = ("rings" in state.config.get("_sections", ())
+                 and state.config["rings"]["velocity_field"] == "gauss")
+    if cfg["method"] != "gauss" and not rings_fit:
         return None
     from kinemap.linefit.stage import fit_cube, instrument_sigma_from
     sigma_instr = instrument_sigma_from(instrument_sigma=cfg["instrument_sigma"],
@@ -190,8 +192,8 @@ def _velocity_field(state):
     if state.velocity_map is not None:
         inp = state.config["input"]
         err = inten = None
-        if inp["velocity_error"]:
-            err = read_map(inp["velocity_error"], unit="km/s", like=state.velocity_map,
+        if inp["velocity_err"]:
+            err = read_map(inp["velocity_err"], unit="km/s", like=state.velocity_map,
                            name="velocity error map").data
         if inp["intensity"]:
             inten = read_map(inp["intensity"], unit="", like=state.velocity_map,
@@ -199,7 +201,8 @@ def _velocity_field(state):
         vmap = state.velocity_map
         v = vmap.data if vmap.unit == u.one else (vmap.data * vmap.unit).to_value(u.km / u.s)
         return v, err, inten
-    fit = state.results.get("fit")
+    use_fit = state.config["rings"]["velocity_field"] == "gauss"
+    fit = state.results.get("fit") if use_fit else None
     return (fit or state.results["moments"]).velocity_field()
 
 

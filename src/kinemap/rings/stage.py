@@ -109,8 +109,8 @@ def run_rings(velocity, velocity_error, intensity, meta, opts: dict, *, cube=Non
     fix = list(opts.get("fix") or [])
     result = fit_rings(
         velocity, grid, intensity=intensity, velocity_error=velocity_error,
-        x_center=x0, y_center=y0, position_angle=q("pa", u.deg),
-        inclination=q("inclination", u.deg), v_sys=q("vsys", KMS), fix=fix,
+        x_center=x0, y_center=y0, position_angle=q("position_angle", u.deg),
+        inclination=q("inclination", u.deg), v_sys=q("v_sys", KMS), fix=fix,
         ring_width=q("ring_width", u.arcsec), beam_fwhm=beam_fwhm,
         distance=q("distance", u.Mpc), stages=tuple(opts.get("stages") or (1, 2, 3)),
         final_geometry=opts.get("final_geometry", "median"), weighting=opts.get("weighting", "cos"),
