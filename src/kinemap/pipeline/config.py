@@ -409,6 +409,11 @@ SCHEMA: dict[str, dict[str, Option]] = {
 }
 
 
+# keys renamed so that one concept has one name everywhere: old (section, key) -> new key
+RENAMED = {("rings", "pa"): "position_angle", ("rings", "vsys"): "v_sys",
+           ("input", "velocity_error"): "velocity_err"}
+
+
 def option_default(section: str, key: str, sections=()):
     """The default of ``[section] key`` in a config that has ``sections``."""
     return SCHEMA[section][key].resolved_default(sections)
@@ -470,6 +475,9 @@ def validate_config(user: dict, *, base_dir: str | None = None) -> dict:
            for sec, keys in SCHEMA.items()}
     for sec, values in user.items():
         for key, value in values.items():
+            if (sec, key) in RENAMED:
+                raise KinemapError(f"[{sec}] {key} is now called {RENAMED[sec, key]}; "
+                                   f"rename the key")
             if key not in SCHEMA[sec]:
                 raise KinemapError(f"unknown key '{key}' in [{sec}]{_suggest(key, SCHEMA[sec])}; "
                                    f"known keys: {', '.join(SCHEMA[sec])}")
