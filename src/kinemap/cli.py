@@ -38,7 +38,10 @@ class _Parser(argparse.ArgumentParser):
         self._value_flags: set[str] = set()
 
     def add_argument(self, *args, **kwargs):
-        action = super().add_argument(*args, **kwargs)
+        return self._note(super().add_argument(*args, **kwargs))
+
+    def _note(self, action):
+        """Remember the flags of an option that takes one value."""
         if action.option_strings and action.nargs is None and action.const is None:
             self._value_flags.update(action.option_strings)
         return action
@@ -65,19 +68,12 @@ class _Parser(argparse.ArgumentParser):
         self.exit(EXIT_USAGE, f"kinemap: error: {message} (see '{self.prog} --help')\n")
 
 
-# Groups share the parser's add_argument through argparse's container machinery, but the
-# value-flag bookkeeping above lives on the parser, so groups register through it too.
-def _group(p, title):
+def _group(p: _Parser, title):
+    """An option group whose options the parser remembers too (a group's add_argument does
+    not go through the parser's)."""
     g = p.add_argument_group(title)
     base = g.add_argument
-
-    def add_argument(*args, **kwargs):
-        action = base(*args, **kwargs)
-        if action.option_strings and action.nargs is None and action.const is None:
-            p._value_flags.update(action.option_strings)
-        return action
-
-    g.add_argument = add_argument
+    g.add_argument = lambda *args, **kwargs: p._note(base(*args, **kwargs))
     return g
 
 
