@@ -107,6 +107,24 @@ def test_rings_from_demo_galaxy_cube_recover_truth(tmp_path):
     truth = np.interp(tab["radius"][use], demo.truth["radius_arcsec"],
                       demo.truth["rotation_velocity_kms"])
     assert np.max(np.abs(tab["v_rot"][use] - truth)) < 5.0
-    summary = json.loads((out / "manifest.json").read_text())["summary"]["rings"]
+    manifest = json.loads((out / "manifest.json").read_text())
+    summary = manifest["summary"]["rings"]
     assert abs(summary["position_angle_deg"] - demo.truth["position_angle_deg"]) < 2.0
     assert abs(summary["inclination_deg"] - demo.truth["inclination_deg"]) < 4.0
+    # the default velocity field of a cube is the Gaussian fit ([rings] velocity_field)
+    assert "fit" in manifest["timings"] and "fit_status" in manifest["products"]
+    assert manifest["options"]["rings"]["velocity_field"] == "gauss"
+
+
+def test_rings_velocity_field_from_moments(tmp_path):
+    """--velocity-field moments: no Gaussian fit runs, the rings use moment 1."""
+    from kinemap.datasets.generate import make_disk_galaxy
+
+    path = tmp_path / "galaxy.fits"
+    make_disk_galaxy().hdu.writeto(path)
+    out = tmp_path / "o"
+    assert main(["rings", str(path), "--velocity-field", "moments", "--stages", "1",
+                 "--out", str(out), "--no-plots", "--no-progress"]) == 0
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert "fit" not in manifest["timings"] and "fit_status" not in manifest["products"]
+    assert "rings" in manifest["timings"]

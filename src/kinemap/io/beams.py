@@ -14,7 +14,7 @@ import astropy.units as u
 
 from kinemap.errors import BeamWarning, KinemapError
 
-__all__ = ["Beam", "as_beam", "read_beam", "BEAM_POLICIES"]
+__all__ = ["Beam", "as_beam", "parse_beam", "read_beam", "BEAM_POLICIES"]
 
 
 @dataclass(frozen=True)
@@ -60,7 +60,7 @@ def as_beam(value) -> Beam:
     if all(hasattr(value, a) for a in ("major", "minor", "pa")):  # radio_beam.Beam
         return Beam.from_radio_beam(value)
     if isinstance(value, str):
-        return _parse_beam_text(value)
+        return parse_beam(value)
     if isinstance(value, u.Quantity) and value.unit.is_equivalent(u.deg) and value.isscalar:
         if not value.value > 0:
             raise KinemapError(f"'beam' must be positive, got {value}")
@@ -69,20 +69,35 @@ def as_beam(value) -> Beam:
                        f"'30arcsec,20arcsec,45deg' or a beam object, got {value!r}")
 
 
-def _parse_beam_text(text: str) -> Beam:
-    parts = [p.strip() for p in text.split(",") if p.strip()]
+_BEAM_FORM = "'46arcsec' (circular) or '30arcsec,20arcsec,45deg' (major, minor, position angle)"
+
+
+def parse_beam(text) -> Beam:
+    """A beam written as text: '46arcsec' (circular, FWHM) or '30arcsec,20arcsec,45deg'
+    (FWHM major and minor axes, position angle east of north).  Every value needs an angle
+    unit; the axes must be positive and the minor axis no larger than the major."""
+    parts = [p.strip() for p in str(text).split(",")]
+    bad = KinemapError(f"'beam' must look like {_BEAM_FORM}, got {text!r}")
+    if len(parts) not in (1, 3) or not all(parts):
+        raise bad
     try:
-        qs = [u.Quantity(p) for p in parts]
+        values = [u.Quantity(p) for p in parts]
     except (TypeError, ValueError):
-        qs = []
-    if len(qs) == 1:
-        qs = [qs[0], qs[0], 0 * u.deg]
-    if (len(qs) != 3 or not all(q.unit.is_equivalent(u.deg) for q in qs)
-            or not (qs[0].value > 0 and qs[1].value > 0)):
-        raise KinemapError(f"'beam' must look like '46arcsec' or '30arcsec,20arcsec,45deg' "
-                           f"(major, minor FWHM, position angle), got {text!r}")
-    major, minor = max(qs[0], qs[1]), min(qs[0], qs[1])
-    return Beam(major.to(u.deg), minor.to(u.deg), qs[2].to(u.deg))
+        raise bad from None
+    if not all(v.unit.physical_type == "angle" and v.isscalar for v in values):
+        raise KinemapError(f"'beam' values need angle units (arcsec, deg), got {text!r}; "
+                           f"write it like {_BEAM_FORM}")
+    major = values[0].to(u.deg)
+    minor = values[1].to(u.deg) if len(values) == 3 else major
+    pa = values[2].to(u.deg) if len(values) == 3 else 0.0 * u.deg
+    if not (math.isfinite(major.value) and math.isfinite(minor.value) and math.isfinite(pa.value)):
+        raise bad
+    if not (major.value > 0 and minor.value > 0):
+        raise KinemapError(f"'beam' axes must be positive, got {text!r}")
+    if minor > major:
+        raise KinemapError(f"'beam' minor axis {values[1]} is larger than the major axis "
+                           f"{values[0]}; give the major axis first")
+    return Beam(major, minor, pa)
 
 
 BEAM_POLICIES = ("common", "refuse")

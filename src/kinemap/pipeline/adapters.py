@@ -41,7 +41,7 @@ def read_kwargs(cfg: dict) -> dict:
     inp = cfg["input"]
     return dict(convention=inp["convention"], rest_value=inp["rest_value"], frame=inp["frame"],
                 vrange=parse_vrange(inp["vrange"]), box=inp["box"], region=inp["region"],
-                beams=inp["beams"], bunit=inp["bunit"], hdu=inp["hdu"], beam=inp.get("beam"))
+                beams=inp["beams"], bunit=inp["bunit"], hdu=inp["hdu"], beam=inp["beam"])
 
 
 def noise_kwargs(cfg: dict) -> dict:
@@ -75,8 +75,9 @@ def fit_kwargs(cfg: dict) -> dict:
 
 def rings_kwargs(cfg: dict) -> dict:
     r = cfg["rings"]
-    return dict(center=r["center"], position_angle=r.get("position_angle", r.get("pa")),
-                inclination=r["inclination"], v_sys=r.get("v_sys", r.get("vsys")), ring_width=r["ring_width"],
+    return dict(center=r["center"], position_angle=r["position_angle"],
+                inclination=r["inclination"], v_sys=r["v_sys"],
+                ring_width=r["ring_width"],
                 distance=r["distance"], weighting=r["weighting"],
                 exclude_minor_axis=r["exclude_minor_axis"], stages=r["stages"],
                 final_geometry=r["final_geometry"], fix=r["fix"], min_points=r["min_points"],

@@ -5,31 +5,41 @@ the other commands build the same dict from their options, so every route runs t
 stages with the same validation.  Unknown sections or keys are errors (a typo must not be
 silently ignored).
 
+:data:`SCHEMA` is the one place that says, for every key: its types, its default, its
+allowed values, its help text and unit, and its command-line flag (the ``kinemap``
+command builds its options from it).  Values given as text (every command-line value, and
+TOML strings) are turned into one canonical form here, so ``--vrange -50,120`` and
+``vrange = [-50, 120]`` give the same config.  ``kinemap widths`` and a TOML file with a
+[widths] section share the widths' mask default through :attr:`Option.default_when`.
+
 Sections and keys (defaults in brackets)::
 
     [input]   cube (required unless velocity_map), convention, rest_value, frame,
-              vrange = [v1, v2], box, region, beams ["common"], bunit, hdu;
-              velocity_map, velocity_error, intensity (2D FITS maps for [rings])
+              vrange = [v1, v2], box, region, beams ["common"], beam ("46arcsec" or
+              "30arcsec,20arcsec,45deg"), bunit, hdu;
+              velocity_map, velocity_err, intensity (2D FITS maps for [rings])
     [noise]   line_free ["auto"] or [[v1, v2], ...]
-    [mask]    method ["smooth"] | "threshold" | "none", threshold, grow_threshold [2.0],
-              smooth_beams [1.5], smooth_pixels [3.0], smooth_channels [3], min_pixels,
-              min_channels [2]
+    [mask]    method ["smooth"; "none" when the config has [widths]] | "threshold",
+              threshold, grow_threshold [2.0], smooth_beams [1.5], smooth_pixels [3.0],
+              smooth_channels [3], min_pixels, min_channels [2]
     [maps]    method ["moments"] | "gauss", channel_response ["tophat"] | "hanning" | "none";
               for gauss: components [1] | 2 | 3 | "auto", baseline ["none"] | "constant" |
               "linear", instrument_sigma (km/s) or resolving_power, order ["flux"] |
               "velocity", snr_threshold [3], min_separation [1] (sigma),
               min_component_snr [3], write_model [false], vrange (velocity window of the
               moments and fits only; other stages see the whole cube)
-    [rings]   center ("RA,DEC"), pa, inclination, vsys, ring_width (arcsec), distance
-              (Mpc), weighting ["cos"] | "cos2" | "uniform", exclude_minor_axis [20] (deg),
-              stages [[1, 2, 3]], final_geometry ["median"] | "polynomial" | "rings" |
-              "global", fix [[]], min_points [20], bootstrap [0], seed [0],
-              expansion_in_geometry [false], pv_diagram [true]
-    [widths]  lines (names from the catalogue, brightest first), temperature ("1e4 K") or
-              temperature_map (FITS, K), temperature_err, mu [2.33], free_velocity [false],
-              ratios [{"NII_6583/NII_6548" = 3.0}], catalogue (extra TOML file),
-              snr_threshold [3]; the instrument comes from [maps] instrument_sigma /
-              resolving_power, the channel response from [maps] channel_response
+    [rings]   center ("RA,DEC"), position_angle, inclination, v_sys, ring_width (arcsec),
+              distance (Mpc), weighting ["cos"] | "cos2" | "uniform", exclude_minor_axis
+              [20] (deg), stages [[1, 2, 3]], final_geometry ["median"] | "polynomial" |
+              "rings" | "global", fix [[]], min_points [20], bootstrap [0], seed [0],
+              expansion_in_geometry [false], pv_diagram [true], velocity_field ["gauss"] |
+              "moments" (for a cube input: Gaussian fits or moment 1)
+    [widths]  lines (required; names from the catalogue, brightest first), temperature
+              ("1e4 K") or temperature_map (FITS, K), temperature_err, mu [2.33],
+              free_velocity [false], ratios [{"NII_6583/NII_6548" = 3.0}], catalogue (extra
+              TOML file), snr_threshold [3]; the instrument comes from [maps]
+              instrument_sigma / resolving_power, the channel response from [maps]
+              channel_response
     [output]  dir ["kinemap-out"], overwrite [false], plots [true]
     [run]     max_memory [a quarter of the machine's memory], progress [true],
               scheduler ["tcp://host:port" of a dask scheduler], workers [N local processes]
@@ -42,63 +52,376 @@ import copy
 import difflib
 import os
 import tomllib
+from dataclasses import dataclass
+from typing import Any, Callable
 
 from kinemap.errors import KinemapError
 
-__all__ = ["SCHEMA", "default_config", "load_config", "validate_config", "parse_size"]
+__all__ = ["SCHEMA", "Option", "default_config", "load_config", "validate_config",
+           "parse_size", "option_default"]
 
-# section -> key -> (allowed python types, default)
-SCHEMA: dict[str, dict[str, tuple]] = {
+_NONE = type(None)
+
+
+@dataclass(frozen=True)
+class Option:
+    """One configuration key: what it accepts, its default, and how the command offers it.
+
+    types : the Python types a value may have (``NoneType`` when it may be left unset).
+    default : the default (deep-copied before use).
+    help : one line for ``--help``; the unit and the default are appended by :meth:`help_text`.
+    choices : the allowed values (for a list-valued key: of each entry).
+    metavar, unit : how ``--help`` writes the value, and its unit.
+    cli : True for ``--key-with-dashes``, a string for another flag name, False for a
+        TOML-only key.  A boolean defaulting to True becomes ``--no-<name>``.
+    aliases : further flags accepted on the command line (older spellings).
+    shortcuts : ``(flag, value)`` flags that set a fixed value (``--no-mask``).
+    parse : turns a value (text from the command line or a TOML value) into the canonical
+        form; raises ValueError with the reason.  Without it, text becomes a whole number or
+        a number when the key accepts numbers, and stays text otherwise.
+    check : validates a canonical value; raises KinemapError or ValueError.
+    default_when : ``(section, value)`` pairs: the default when the config has that section
+        (the first that matches wins).
+    required : the key must be given when its section is in the config.
+    repeat : the flag may be repeated; its values are collected into a list.
+    path : a file path; relative paths in a TOML file are relative to the file.
+    """
+
+    types: tuple
+    default: Any = None
+    help: str = ""
+    choices: tuple | None = None
+    metavar: str | None = None
+    unit: str | None = None
+    cli: bool | str = True
+    aliases: tuple = ()
+    shortcuts: tuple = ()
+    parse: Callable | None = None
+    check: Callable | None = None
+    default_when: tuple = ()
+    required: bool = False
+    repeat: bool = False
+    path: bool = False
+
+    def flag(self, key: str) -> str | None:
+        """The main command-line flag of this option (None for a TOML-only key)."""
+        if self.cli is False:
+            return None
+        name = (key if self.cli is True else self.cli).replace("_", "-")
+        if bool in self.types and self.default is True:
+            return f"--no-{name}"
+        return f"--{name}"
+
+    def resolved_default(self, sections=()):
+        for section, value in self.default_when:
+            if section in sections:
+                return copy.deepcopy(value)
+        return copy.deepcopy(self.default)
+
+    def canonical(self, value):
+        """``value`` in canonical form (ValueError with the reason when it cannot be)."""
+        if value is None:
+            return None
+        if self.parse is not None:
+            return self.parse(value)
+        if not isinstance(value, str):
+            return value
+        return _text_value(value, self.types)
+
+    def help_text(self, sections=()) -> str:
+        text = self.help
+        if self.choices is not None and list in self.types:
+            text += f"; any of {_show(self.choices)}"
+        if self.unit:
+            text += f"; numbers in {self.unit}"
+        default = self.resolved_default(sections)
+        if default is not None and not isinstance(default, bool) and default != []:
+            if isinstance(default, list):
+                default = ",".join(str(d) for d in default)
+            text += f"; default: {default}"
+        return text.replace("%", "%%")  # argparse formats help text with %
+
+
+def _text_value(text: str, types: tuple):
+    numeric = int in types or float in types
+    t = text.strip()
+    if numeric:
+        try:
+            return int(t)
+        except ValueError:
+            pass
+        if float in types:
+            try:
+                return float(t)
+            except ValueError:
+                pass
+    if str in types:
+        return text
+    raise ValueError(f"must be {'a number' if float in types else 'a whole number'}, got {text!r}")
+
+
+def _number_or_text(text: str):
+    return _text_value(text, (int, float, str))
+
+
+def _pair(value):
+    """'-50,120' or [-50, 120] -> [-50, 120]; entries may carry units ('-50 km/s')."""
+    parts = ([p.strip() for p in value.split(",")] if isinstance(value, str) else list(value))
+    if len(parts) != 2 or any(p == "" for p in parts):
+        raise ValueError(f"must be two velocities like '-50,120' (km/s), got {value!r}")
+    return [_number_or_text(p) if isinstance(p, str) else p for p in parts]
+
+
+def _ranges(value):
+    """'auto', '-300,-200;250,400' or [[-300, -200], [250, 400]] -> 'auto' or a list of pairs."""
+    if isinstance(value, str):
+        if value.strip().lower() == "auto":
+            return "auto"
+        value = [part for part in value.split(";") if part.strip()]
+    try:
+        out = [_pair(p) for p in value]
+    except (ValueError, TypeError):
+        out = []
+    if not out:
+        raise ValueError(f"must be 'auto' or velocity ranges like '-300,-200;250,400' (km/s), "
+                         f"got {value!r}")
+    return out
+
+
+def _names(value):
+    """'a,b' or ['a', 'b'] -> ['a', 'b']."""
+    if isinstance(value, str):
+        return [p.strip() for p in value.split(",") if p.strip()]
+    return list(value)
+
+
+def _stage_numbers(value):
+    items = _names(value)
+    try:
+        return [int(s) for s in items]
+    except (TypeError, ValueError):
+        raise ValueError(f"must be stage numbers like '1,2,3', got {value!r}") from None
+
+
+def _ratios(value):
+    """{'NII_6583/NII_6548': 3.0}, ['NII_6583/NII_6548=3.0', ...] or that text -> dict."""
+    if isinstance(value, dict):
+        items = list(value.items())
+    else:
+        texts = _names(value) if isinstance(value, str) else [str(v) for v in value]
+        items = [t.split("=", 1) if "=" in t else (t, "") for t in texts]
+    out = {}
+    for key, ratio in items:
+        names = [p.strip() for p in str(key).split("/")]
+        try:
+            r = float(ratio)
+        except (TypeError, ValueError):
+            r = None
+        if len(names) != 2 or not all(names) or r is None:
+            raise ValueError(f"must be flux ratios like 'NII_6583/NII_6548=3.0', got "
+                             f"{key!r}={ratio!r}")
+        out["/".join(names)] = r
+    return out
+
+
+def _check_beam(value):
+    from kinemap.io.beams import parse_beam
+
+    parse_beam(value)
+
+
+def _check_size(value):
+    parse_size(value)
+
+
+SCHEMA: dict[str, dict[str, Option]] = {
     "input": {
-        "cube": ((str, type(None)), None), "convention": ((str, type(None)), None),
-        "rest_value": ((str, type(None)), None), "frame": ((str, type(None)), None),
-        "vrange": ((list, tuple, str, type(None)), None), "box": ((list, tuple, str, type(None)), None),
-        "region": ((str, type(None)), None), "beams": ((str,), "common"),
-        "bunit": ((str, type(None)), None), "hdu": ((int, str, type(None)), None),
-        "velocity_map": ((str, type(None)), None), "velocity_error": ((str, type(None)), None),
-        "intensity": ((str, type(None)), None),
+        "cube": Option((str, _NONE), help="the spectral-line cube (FITS)", cli=False, path=True),
+        "convention": Option(
+            (str, _NONE), choices=("radio", "optical", "relativistic"),
+            help="velocity convention (default: radio for frequency axes, optical for "
+                 "wavelength axes, a velocity axis keeps its own)"),
+        "rest_value": Option(
+            (str, _NONE), metavar="QUANTITY",
+            help="rest frequency or wavelength, e.g. '1420.405751768 MHz' (overrides the header)"),
+        "frame": Option(
+            (str, _NONE), metavar="SPECSYS",
+            help="spectral frame of the output velocities (TOPOCENT, BARYCENT, LSRK); "
+                 "default: the cube's"),
+        "vrange": Option((list, tuple, str, _NONE), parse=_pair, metavar="V1,V2", unit="km/s",
+                         help="keep channels in this velocity range"),
+        "box": Option((list, tuple, str, _NONE), metavar="X0:X1,Y0:Y1",
+                      help="pixel box (0-based, end exclusive)"),
+        "region": Option((str, _NONE), metavar="FILE", help="DS9 or CRTF region file", path=True),
+        "beams": Option((str,), "common", choices=("common", "refuse"),
+                        help="cube with a beam per channel: convolve to a common beam or refuse"),
+        "beam": Option((str, _NONE), metavar="MAJOR[,MINOR,PA]", check=_check_beam,
+                       help="the cube's beam when the header has none or a wrong one: "
+                            "'46arcsec' (circular) or '30arcsec,20arcsec,45deg' (FWHM major, "
+                            "minor, position angle)"),
+        "bunit": Option((str, _NONE), metavar="UNIT", help="unit of the cube values when BUNIT is missing or wrong"),
+        "hdu": Option((int, str, _NONE), cli=False, help="the HDU that holds the cube"),
+        "velocity_map": Option((str, _NONE), cli=False, path=True,
+                               help="a velocity map (2D FITS, km/s) instead of a cube, for [rings]"),
+        "velocity_err": Option((str, _NONE), metavar="FITS", aliases=("--velocity-error",),
+                               path=True, help="error map for a velocity-map input"),
+        "intensity": Option((str, _NONE), metavar="FITS", path=True,
+                            help="intensity map for a velocity-map input"),
     },
-    "noise": {"line_free": ((str, list, tuple, type(None)), "auto")},
+    "noise": {
+        "line_free": Option((str, list, tuple, _NONE), "auto", parse=_ranges,
+                            metavar="V1,V2[;V3,V4]", unit="km/s",
+                            help="line-free velocity ranges for the noise, or auto"),
+    },
     "mask": {
-        "method": ((str,), "smooth"), "threshold": ((int, float, type(None)), None),
-        "grow_threshold": ((int, float), 2.0), "smooth_beams": ((int, float), 1.5),
-        "smooth_pixels": ((int, float), 3.0), "smooth_channels": ((int,), 3),
-        "min_pixels": ((int, type(None)), None), "min_channels": ((int,), 2),
+        "method": Option((str,), "smooth", choices=("smooth", "threshold", "none"), cli="mask",
+                         default_when=(("widths", "none"),), shortcuts=(("--no-mask", "none"),),
+                         help="signal mask: smooth-and-mask, a plain S/N threshold, or none "
+                              "(every finite channel; the default for line widths, whose fit "
+                              "has its own S/N threshold)"),
+        "threshold": Option((int, float, _NONE), metavar="SNR",
+                            help="S/N threshold (default 5 smooth, 3 plain)"),
+        "grow_threshold": Option((int, float), 2.0, metavar="SNR",
+                                 help="smooth mask grows into voxels above this smoothed S/N"),
+        "smooth_beams": Option((int, float), 1.5, cli=False,
+                               help="spatial smoothing of the smooth mask (beams FWHM)"),
+        "smooth_pixels": Option((int, float), 3.0, cli=False,
+                                help="spatial smoothing when the cube has no beam (pixels FWHM)"),
+        "smooth_channels": Option((int,), 3, metavar="N",
+                                  help="spectral boxcar of the smooth mask (channels)"),
+        "min_pixels": Option((int, _NONE), metavar="N",
+                             help="smallest island footprint kept (pixels)"),
+        "min_channels": Option((int,), 2, cli=False,
+                               help="smallest island spectral extent kept (channels)"),
     },
-    "maps": {"method": ((str,), "moments"), "channel_response": ((str,), "tophat"),
-             "components": ((int, str), 1), "baseline": ((str,), "none"),
-             "instrument_sigma": ((int, float, str, type(None)), None),
-             "resolving_power": ((int, float, type(None)), None), "order": ((str,), "flux"),
-             "snr_threshold": ((int, float), 3.0), "min_separation": ((int, float), 1.0),
-             "min_component_snr": ((int, float), 3.0), "write_model": ((bool,), False),
-             "vrange": ((list, tuple, str, type(None)), None)},
+    "maps": {
+        "method": Option((str,), "moments", choices=("moments", "gauss"),
+                         help="moments: moment maps with analytic errors; gauss: also a "
+                              "Gaussian fit of every spectrum"),
+        "channel_response": Option((str,), "tophat", choices=("tophat", "hanning", "none"),
+                                   help="how channels sample the spectrum (sets noise "
+                                        "correlation)"),
+        "components": Option((int, str), 1, choices=(1, 2, 3, "auto"),
+                             help="Gaussian components per spectrum; auto chooses 1-3 by BIC"),
+        "baseline": Option((str,), "none", choices=("none", "constant", "linear"),
+                           help="baseline fitted with the lines (none: cubes are usually "
+                                "continuum-subtracted, and a free baseline trades off against "
+                                "the wings of lines that fill the band)"),
+        "instrument_sigma": Option((int, float, str, _NONE), metavar="VELOCITY", unit="km/s",
+                                   help="Gaussian instrumental sigma, e.g. '5 km/s'"),
+        "resolving_power": Option((int, float, _NONE), metavar="R",
+                                  help="instrumental resolution R (FWHM = c/R)"),
+        "order": Option((str,), "flux", choices=("flux", "velocity"),
+                        help="component order: brightest first or by velocity"),
+        "snr_threshold": Option((int, float), 3.0, metavar="SNR",
+                                help="spectra with a lower peak S/N are not fitted"),
+        "min_separation": Option((int, float), 1.0, cli=False, unit="sigma",
+                                 help="closest two components may be"),
+        "min_component_snr": Option((int, float), 3.0, cli=False,
+                                    help="weakest component kept (peak S/N)"),
+        "write_model": Option((bool,), False, help="also write model and residual cubes"),
+        "vrange": Option((list, tuple, str, _NONE), parse=_pair, cli=False, unit="km/s",
+                         help="velocity window of the moments and fits only"),
+    },
     "rings": {
-        "center": ((str, type(None)), None), "pa": ((int, float, str, type(None)), None),
-        "inclination": ((int, float, str, type(None)), None),
-        "vsys": ((int, float, str, type(None)), None),
-        "ring_width": ((int, float, str, type(None)), None),
-        "distance": ((int, float, str, type(None)), None), "weighting": ((str,), "cos"),
-        "exclude_minor_axis": ((int, float, str), 20.0), "stages": ((list,), [1, 2, 3]),
-        "final_geometry": ((str,), "median"), "fix": ((list,), []), "min_points": ((int,), 20),
-        "bootstrap": ((int,), 0), "seed": ((int,), 0), "expansion_in_geometry": ((bool,), False),
-        "pv_diagram": ((bool,), True),
+        "center": Option((str, _NONE), metavar="RA,DEC",
+                         help="centre, degrees or sexagesimal; guessed when not given"),
+        "position_angle": Option((int, float, str, _NONE), metavar="ANGLE", unit="deg",
+                                 aliases=("--pa",),
+                                 help="position angle, east of north to the receding side; "
+                                      "guessed when not given"),
+        "inclination": Option((int, float, str, _NONE), metavar="ANGLE", unit="deg",
+                              help="0 face-on, 90 edge-on; guessed when not given"),
+        "v_sys": Option((int, float, str, _NONE), metavar="VELOCITY", unit="km/s",
+                        aliases=("--vsys",),
+                        help="systemic velocity (a number or with a unit); guessed when not "
+                             "given"),
+        "ring_width": Option((int, float, str, _NONE), metavar="WIDTH", unit="arcsec",
+                             help="ring width; default: about one beam"),
+        "distance": Option((int, float, str, _NONE), metavar="DIST", unit="Mpc",
+                           help="e.g. '10 Mpc': radii in kpc and M(<R)"),
+        "weighting": Option((str,), "cos", choices=("uniform", "cos", "cos2"),
+                            help="angular weight |cos theta|, cos^2 theta, or none (uniform)"),
+        "exclude_minor_axis": Option((int, float, str), 20.0, metavar="ANGLE", unit="deg",
+                                     help="half-width of the wedge around the minor axis "
+                                          "left out"),
+        "stages": Option((list, str), [1, 2, 3], parse=_stage_numbers, choices=(1, 2, 3),
+                         metavar="N[,N...]", help="stages to run"),
+        "final_geometry": Option((str,), "median",
+                                 choices=("median", "polynomial", "rings", "global"),
+                                 help="stage 3: how the ring geometry is smoothed"),
+        "fix": Option((list, str), [], parse=_names, metavar="NAMES",
+                      choices=("center", "x_center", "y_center", "position_angle",
+                               "inclination", "v_sys", "v_exp"),
+                      help="comma-separated parameters held fixed"),
+        "min_points": Option((int,), 20, cli=False, help="fewest points a ring needs"),
+        "bootstrap": Option((int,), 0, metavar="N",
+                            help="number of bootstrap resamples for the errors (0: formal)"),
+        "seed": Option((int,), 0, cli=False, help="seed of the bootstrap resampling"),
+        "expansion_in_geometry": Option((bool,), False, cli=False,
+                                        help="fit v_exp in the geometry stages too"),
+        "pv_diagram": Option((bool,), True, cli=False,
+                             help="plot the position-velocity diagram of a cube input"),
+        "velocity_field": Option((str,), "gauss", choices=("gauss", "moments"),
+                                 aliases=("--method",),
+                                 help="for a cube input: velocity field from Gaussian fits "
+                                      "or moment 1"),
     },
     "widths": {
-        "lines": ((list, str), []), "temperature": ((int, float, str, type(None)), None),
-        "temperature_map": ((str, type(None)), None),
-        "temperature_err": ((int, float, str, type(None)), None), "mu": ((int, float), 2.33),
-        "free_velocity": ((bool,), False), "ratios": ((dict, list, type(None)), None),
-        "catalogue": ((str, type(None)), None), "snr_threshold": ((int, float), 3.0),
+        "lines": Option((list, str), [], parse=_names, metavar="NAME[,NAME...]", required=True,
+                        help="catalogue names, brightest first (e.g. Halpha,NII_6583,NII_6548)"),
+        "temperature": Option((int, float, str, _NONE), metavar="T", unit="K",
+                              help="assumed temperature, e.g. '1e4 K'"),
+        "temperature_map": Option((str, _NONE), metavar="FITS", path=True,
+                                  help="assumed temperature per pixel (K)"),
+        "temperature_err": Option((int, float, str, _NONE), metavar="T", unit="K",
+                                  help="1-sigma error of the assumed temperature"),
+        "mu": Option((int, float), 2.33, metavar="MU",
+                     help="mean particle mass / m_H for the sound speed (2.33 molecular, "
+                          "0.6 ionized)"),
+        "free_velocity": Option((bool,), False, help="a velocity per line"),
+        "ratios": Option((dict, list, str, _NONE), parse=_ratios, cli="ratio", repeat=True,
+                         metavar="STRONG/WEAK=R",
+                         help="fixed flux ratio (NII_6583/NII_6548=3.0 always applies unless "
+                              "given another value); repeatable"),
+        "catalogue": Option((str, _NONE), metavar="TOML", path=True,
+                            help="extra lines (same schema as the built-in)"),
+        "snr_threshold": Option((int, float), 3.0, metavar="SNR",
+                                help="spectra with a lower peak S/N are not fitted"),
     },
-    "output": {"dir": ((str,), "kinemap-out"), "overwrite": ((bool,), False),
-               "plots": ((bool,), True)},
-    "run": {"max_memory": ((str, int, float, type(None)), None), "progress": ((bool,), True),
-            "scheduler": ((str, type(None)), None), "workers": ((int, type(None)), None)},
+    "output": {
+        "dir": Option((str,), "kinemap-out", cli="out", metavar="DIR", path=True,
+                      help="output folder"),
+        "overwrite": Option((bool,), False, help="write into a non-empty folder"),
+        "plots": Option((bool,), True, help="skip PNG plots"),
+    },
+    "run": {
+        "max_memory": Option((str, int, float, _NONE), metavar="SIZE", check=_check_size,
+                             help="working-set bound of the block-wise stages, e.g. 1GB "
+                                  "(default: a quarter of the machine's memory)"),
+        "progress": Option((bool,), True, help="no progress bars"),
+        "scheduler": Option((str, _NONE), metavar="ADDRESS",
+                            help="run the blocks on a running dask.distributed scheduler "
+                                 "(tcp://host:port)"),
+        "workers": Option((int, _NONE), metavar="N",
+                          help="start a local cluster of N worker processes for this run"),
+    },
 }
 
 
+# keys renamed so that one concept has one name everywhere: old (section, key) -> new key
+RENAMED = {("rings", "pa"): "position_angle", ("rings", "vsys"): "v_sys",
+           ("input", "velocity_error"): "velocity_err"}
+
+
+def option_default(section: str, key: str, sections=()):
+    """The default of ``[section] key`` in a config that has ``sections``."""
+    return SCHEMA[section][key].resolved_default(sections)
+
+
 def default_config() -> dict:
-    return {sec: {k: copy.deepcopy(v[1]) for k, v in keys.items()} for sec, keys in SCHEMA.items()}
+    return {sec: {k: opt.resolved_default() for k, opt in keys.items()}
+            for sec, keys in SCHEMA.items()}
 
 
 def _suggest(word, choices):
@@ -106,28 +429,65 @@ def _suggest(word, choices):
     return f" (did you mean '{close[0]}'?)" if close else ""
 
 
+def _show(choices) -> str:
+    return ", ".join(str(c) for c in choices)
+
+
+def check_value(sec: str, key: str, value):
+    """``value`` for ``[sec] key`` in canonical form, or a KinemapError naming the problem."""
+    opt = SCHEMA[sec][key]
+    where = f"[{sec}] {key}"
+    if value is not None and not (isinstance(value, bool) and bool in opt.types):
+        try:
+            value = opt.canonical(value)
+        except (ValueError, TypeError) as exc:
+            raise KinemapError(f"{where} {exc}") from None
+    types = opt.types
+    if isinstance(value, bool) and bool not in types:
+        ok = False
+    else:
+        ok = isinstance(value, types) or (float in types and isinstance(value, int))
+    if not ok:
+        names = "/".join(t.__name__ for t in types if t is not _NONE)
+        raise KinemapError(f"{where} must be {names}, got {value!r}")
+    if opt.choices is not None and value is not None:
+        for v in (value if isinstance(value, list) else [value]):
+            if v not in opt.choices or isinstance(v, bool):
+                raise KinemapError(f"{where} must be one of {_show(opt.choices)}, got {v!r}")
+    if opt.check is not None and value is not None:
+        try:
+            opt.check(value)
+        except ValueError as exc:
+            raise KinemapError(f"{where} {exc}") from None
+    return value
+
+
 def validate_config(user: dict, *, base_dir: str | None = None) -> dict:
-    """Merge ``user`` over the defaults, checking every section, key and type."""
-    cfg = default_config()
+    """Merge ``user`` over the defaults, checking every section, key, type and value."""
     for sec, values in user.items():
         if sec not in SCHEMA:
             raise KinemapError(f"unknown config section [{sec}]{_suggest(sec, SCHEMA)}; "
                                f"known sections: {', '.join(SCHEMA)}")
         if not isinstance(values, dict):
             raise KinemapError(f"config section [{sec}] must be a table of keys")
+    sections = set(user)
+    cfg = {sec: {k: opt.resolved_default(sections) for k, opt in keys.items()}
+           for sec, keys in SCHEMA.items()}
+    for sec, values in user.items():
         for key, value in values.items():
+            if (sec, key) in RENAMED:
+                raise KinemapError(f"[{sec}] {key} is now called {RENAMED[sec, key]}; "
+                                   f"rename the key")
             if key not in SCHEMA[sec]:
                 raise KinemapError(f"unknown key '{key}' in [{sec}]{_suggest(key, SCHEMA[sec])}; "
                                    f"known keys: {', '.join(SCHEMA[sec])}")
-            types = SCHEMA[sec][key][0]
-            if isinstance(value, bool) and bool not in types:
-                ok = False
-            else:
-                ok = isinstance(value, types) or (float in types and isinstance(value, int))
-            if not ok:
-                names = "/".join(t.__name__ for t in types if t is not type(None))
-                raise KinemapError(f"[{sec}] {key} must be {names}, got {value!r}")
-            cfg[sec][key] = value
+            cfg[sec][key] = check_value(sec, key, value)
+    for sec in sections:
+        for key, opt in SCHEMA[sec].items():
+            if opt.required and not cfg[sec][key]:
+                flag = opt.flag(key)
+                raise KinemapError(f"[{sec}] needs {key}" + (f" ({flag})" if flag else "")
+                                   + f": {opt.help}")
     if not cfg["input"]["cube"] and not cfg["input"]["velocity_map"]:
         raise KinemapError("the config needs [input] cube = \"path/to/cube.fits\" (or "
                            "velocity_map = \"map.fits\" for a rotation curve from a map)")
@@ -135,14 +495,14 @@ def validate_config(user: dict, *, base_dir: str | None = None) -> dict:
         raise KinemapError("[input] velocity_map is only used by [rings]; add a [rings] section "
                            "or give a cube")
     if base_dir:
-        for sec, key in (("input", "cube"), ("input", "region"), ("output", "dir"),
-                         ("input", "velocity_map"), ("input", "velocity_error"),
-                         ("input", "intensity"), ("widths", "temperature_map"),
-                         ("widths", "catalogue")):
-            v = cfg[sec][key]
-            if v and not os.path.isabs(v):
-                cfg[sec][key] = os.path.normpath(os.path.join(base_dir, v))
-    cfg["_sections"] = sorted(set(user) | {"input", "noise", "mask", "output", "run"})
+        for sec, keys in SCHEMA.items():
+            for key, opt in keys.items():
+                v = cfg[sec][key]
+                if opt.path and v and not os.path.isabs(v):
+                    cfg[sec][key] = os.path.normpath(os.path.join(base_dir, v))
+    # a cube always gets the maps stages (moment maps come with every cube run)
+    cfg["_sections"] = sorted(sections | {"input", "noise", "mask", "output", "run"}
+                              | ({"maps"} if cfg["input"]["cube"] else set()))
     return cfg
 
 

@@ -98,8 +98,7 @@ def _wants_fit(state) -> bool:
     cfg, sections = state.config, set(state.config.get("_sections", ()))
     if cfg["maps"]["method"] == "gauss":
         return True
-    rings = cfg.get("rings", {})
-    return "rings" in sections and rings.get("velocity_field", "gauss") == "gauss"
+    return "rings" in sections and cfg["rings"]["velocity_field"] == "gauss"
 
 
 def stage_moments(state: RunState):
@@ -131,7 +130,7 @@ def _velocity_input(state):
     """(velocity, error, intensity, meta) for the ring fit: FITS maps or the maps stage."""
     if state.velocity_map is not None:
         inp = state.config["input"]
-        err_path = inp.get("velocity_err", inp.get("velocity_error"))
+        err_path = inp["velocity_err"]
         err = inten = None
         if err_path:
             err = read_map(err_path, unit="km/s", like=state.velocity_map,
@@ -142,8 +141,9 @@ def _velocity_input(state):
         vmap = state.velocity_map
         v = vmap.data if vmap.unit == u.one else (vmap.data * vmap.unit).to_value(u.km / u.s)
         return v, err, inten, vmap.meta
-    fit = state.results.get("fit") if _wants_fit(state) else None
-    source = fit or state.results["moments"]
+    use_fit = state.config["rings"]["velocity_field"] == "gauss"
+    source = state.results.get("fit") if use_fit else None
+    source = source or state.results["moments"]
     return (*source.velocity_field(), source.meta)
 
 
