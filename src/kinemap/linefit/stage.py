@@ -256,7 +256,7 @@ def _examples(fit: LineFitMaps, cube) -> tuple:
 
 
 def fit_cube(cube, *, noise=None, mask=None, components=1, baseline: str = "none",
-             channel_response: str = "tophat", instrument_sigma: float = 0.0,
+             channel_response: str = "tophat", instrument_sigma=None, resolving_power=None,
              order: str = "flux", snr_threshold: float = 3.0, min_separation: float = 1.0,
              min_component_snr: float = 3.0, model=None, velocity_axes=None,
              max_memory: int = DEFAULT_MAX_MEMORY, progress: bool = False,
@@ -276,8 +276,9 @@ def fit_cube(cube, *, noise=None, mask=None, components=1, baseline: str = "none
         'auto' compares 1-3 components by BIC (Schwarz 1978).
     baseline : {'none', 'constant', 'linear'}
     channel_response : {'tophat', 'hanning', 'none'}
-    instrument_sigma : float
-        Gaussian instrumental sigma in km/s (0: none).
+    instrument_sigma : Quantity, str or float (km/s), optional
+        Gaussian instrumental sigma (none by default); or ``resolving_power`` R, with
+        FWHM = c / R.
     order : {'flux', 'velocity'}
         Order of components: brightest first (default) or by increasing velocity.
     model : kinemap.linefit.LineModel, optional
@@ -295,8 +296,10 @@ def fit_cube(cube, *, noise=None, mask=None, components=1, baseline: str = "none
     if order not in ("flux", "velocity"):
         raise KinemapError(f"'order' must be 'flux' or 'velocity', got {order!r}")
     ncomp_max = 3 if comps == "auto" else comps
+    sigma_instr = instrument_sigma_from(instrument_sigma=instrument_sigma,
+                                        resolving_power=resolving_power)
     options = dict(ncomp=comps, baseline=baseline, response=channel_response,
-                   instrument_sigma=float(instrument_sigma), order=order,
+                   instrument_sigma=sigma_instr, order=order,
                    snr_threshold=float(snr_threshold), min_separation=float(min_separation),
                    min_component_snr=float(min_component_snr))
     velocity = np.ascontiguousarray(cube.velocity if velocity_axes is None else velocity_axes,

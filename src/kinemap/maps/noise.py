@@ -105,7 +105,7 @@ def _noise_block(block, *, fixed, factor_2nd, clip, correction):
             "finite": (nf > 0).reshape(rows, nx)}
 
 
-def estimate_noise(cube, *, line_free=None, channel_response: str = "tophat",
+def estimate_noise(cube, *, line_free="auto", channel_response: str = "tophat",
                    max_memory: int = DEFAULT_MAX_MEMORY, progress: bool = False,
                    client=None) -> NoiseMap:
     """Estimate the noise of every spectrum of ``cube``.

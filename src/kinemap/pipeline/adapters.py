@@ -62,14 +62,10 @@ def moments_kwargs(cfg: dict) -> dict:
 
 
 def fit_kwargs(cfg: dict) -> dict:
-    from kinemap.linefit.stage import instrument_sigma_from
-
     m = cfg["maps"]
     return dict(components=m["components"], baseline=m["baseline"],
-                channel_response=m["channel_response"],
-                instrument_sigma=instrument_sigma_from(instrument_sigma=m["instrument_sigma"],
-                                                       resolving_power=m["resolving_power"]),
-                order=m["order"], snr_threshold=m["snr_threshold"],
+                channel_response=m["channel_response"], instrument_sigma=m["instrument_sigma"],
+                resolving_power=m["resolving_power"], order=m["order"], snr_threshold=m["snr_threshold"],
                 min_separation=m["min_separation"], min_component_snr=m["min_component_snr"])
 
 
