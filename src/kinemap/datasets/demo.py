@@ -29,12 +29,16 @@ def demo_cube_dir() -> Path:
     one folder per version of the generator's code."""
     import hashlib
 
-    from kinemap.datasets import generate as demo_data
-
     base = os.environ.get("KINEMAP_CACHE") or os.path.join(
         os.environ.get("XDG_CACHE_HOME") or os.path.join(Path.home(), ".cache"), "kinemap")
-    # keyed on the generator's source, so a changed generator never reuses stale cubes
-    key = hashlib.sha256(Path(demo_data.__file__).read_bytes()).hexdigest()[:12]
+    # keyed on the source of every module of this package but this one (the generator is
+    # split over several, and a scenario added later lands here too), so a changed
+    # generator never reuses stale cubes
+    digest = hashlib.sha256()
+    for source in sorted(Path(__file__).parent.glob("*.py")):
+        if source.name != Path(__file__).name:
+            digest.update(source.name.encode() + b"\0" + source.read_bytes())
+    key = digest.hexdigest()[:12]
     path = Path(base) / f"demo-cubes-{key}"
     try:
         path.mkdir(parents=True, exist_ok=True)
