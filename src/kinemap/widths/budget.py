@@ -22,7 +22,7 @@ from kinemap.widths import _solve
 from kinemap.spectral.catalogue import Line, _resolve, load_catalogue
 from kinemap.widths.thermal import HYDROGEN_MASS_AMU, MU_MOLECULAR, mu_value, temperature_kelvin
 
-__all__ = ["WidthBudget", "width_budget"]
+__all__ = ["BudgetArrays", "width_budget"]
 
 # Input status codes that make a pixel unusable; they are carried into width_status.
 _CARRIED = (Status.NOT_CONVERGED, Status.TOO_FAINT, Status.MASKED, Status.NO_DATA, Status.FAILED,
@@ -38,7 +38,7 @@ def _frozen(a):
 
 
 @dataclass(frozen=True)
-class WidthBudget:
+class BudgetArrays:
     """Per-pixel line-width budget. Maps are numpy arrays with the pixel shape of the input.
 
     Units: dispersions and sound speed in km/s, temperature in K, Mach number
@@ -185,7 +185,7 @@ def width_budget(
     mu: float = MU_MOLECULAR,
     input_status: Mapping | None = None,
     catalogue: Mapping[str, Line] | None = None,
-) -> WidthBudget:
+) -> BudgetArrays:
     """Thermal / non-thermal decomposition of line widths, per pixel.
 
     Parameters
@@ -224,7 +224,7 @@ def width_budget(
 
     Returns
     -------
-    WidthBudget
+    BudgetArrays
 
     Notes
     -----
@@ -455,7 +455,7 @@ def _flag_unphysical(status, at_bound, y, a, b, solve) -> _Flags:
 
 
 def _assemble(maps, chi2, status, flags: _Flags, shape, names, lines, *, solve, has_t_err, intrinsic,
-              mu) -> WidthBudget:
+              mu) -> BudgetArrays:
     """The frozen result: value maps NaN outside the good pixels, status and pixel counts."""
     def out(v):
         v = np.where(flags.good, v, np.nan)
@@ -468,7 +468,7 @@ def _assemble(maps, chi2, status, flags: _Flags, shape, names, lines, *, solve, 
     summary["unphysical_negative_temperature"] = int(np.count_nonzero(flags.neg_t))
     summary["unphysical_below_thermal"] = int(np.count_nonzero(flags.below_th))
 
-    return WidthBudget(
+    return BudgetArrays(
         nonthermal_dispersion=out(maps["snt"]),
         nonthermal_dispersion_err=out(maps["snt_err"]),
         thermal_dispersion=out(maps["th"]),
