@@ -17,7 +17,7 @@ from kinemap.errors import KinemapError
 from kinemap.io.beams import parse_beam
 from kinemap.pipeline.config import SCHEMA, load_config, option_default, validate_config
 
-README = Path(__file__).resolve().parents[1] / "README.md"
+README = Path(__file__).resolve().parents[2] / "README.md"
 
 
 def _subparsers():

@@ -27,7 +27,7 @@ from scipy.optimize import curve_fit
 from kinemap.datasets.generate import DemoCube, make_disk_galaxy, make_nebula, write_demo_cubes
 from kinemap.errors import KinemapError
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 C_KMS = const.c.to_value(u.km / u.s)
 # HI 21 cm rest frequency (Hellwig et al. 1970; from memory).
 HI_REST = 1420.405751768 * u.MHz

@@ -6,7 +6,7 @@ import pytest
 from kinemap.cli import main
 from kinemap.pipeline.config import load_config
 
-CONFIGS = sorted((Path(__file__).resolve().parents[1] / "configs").glob("*.toml"))
+CONFIGS = sorted((Path(__file__).resolve().parents[2] / "configs").glob("*.toml"))
 
 
 def test_there_is_one_config_per_use_case():
@@ -27,7 +27,7 @@ def test_demo_configs_run(tmp_path, name, maker):
 
     cube = tmp_path / "cube.fits"
     getattr(dd, maker)().hdu.writeto(cube)
-    text = (Path(__file__).resolve().parents[1] / "configs" / f"{name}.toml").read_text()
+    text = (Path(__file__).resolve().parents[2] / "configs" / f"{name}.toml").read_text()
     text = "\n".join(f'cube = "{cube}"' if line.startswith("cube =") else line
                      for line in text.splitlines())
     cfg = tmp_path / f"{name}.toml"
