@@ -121,8 +121,8 @@ def main():
     print(f"    same on 1 thread: {rate_km1:,.0f} spectra/s = {1e6 / rate_km1:.2f} us per spectrum "
           f"(all threads: {1e6 / rate_km:.2f} us wall per spectrum; parallel speed-up {rate_km / rate_km1:.2f}x "
           f"on this machine)")
-    pull_v = (res.velocity[:, 0] - truth["v0"]) / res.velocity_error[:, 0]
-    pull_s = (res.dispersion[:, 0] - truth["sig"]) / res.dispersion_error[:, 0]
+    pull_v = (res.velocity[:, 0] - truth["v0"]) / res.velocity_err[:, 0]
+    pull_s = (res.dispersion[:, 0] - truth["sig"]) / res.dispersion_err[:, 0]
     print(f"    recovery: std of (fit - truth)/error: velocity {np.nanstd(pull_v):.3f}, dispersion {np.nanstd(pull_s):.3f}")
 
     # ---- (b) curve_fit loop on a subset, same model
@@ -153,8 +153,8 @@ def main():
           f"{sub.size} spectra and scaled per spectrum: {t_cf:.2f} s -> {rate_cf:,.0f} spectra/s "
           f"(whole cube would take {nspec / rate_cf:.0f} s)")
     ok = np.isfinite(cf[:, 1]) & (res.status[sub] == 0)
-    dv_err = np.abs(res.velocity[sub, 0] - cf[:, 1])[ok] / res.velocity_error[sub, 0][ok]
-    ds_err = np.abs(res.dispersion[sub, 0] - cf[:, 2])[ok] / res.dispersion_error[sub, 0][ok]
+    dv_err = np.abs(res.velocity[sub, 0] - cf[:, 1])[ok] / res.velocity_err[sub, 0][ok]
+    ds_err = np.abs(res.dispersion[sub, 0] - cf[:, 2])[ok] / res.dispersion_err[sub, 0][ok]
     print(f"    agreement kinemap vs curve_fit on {ok.sum()} spectra: median |dv|/err = {np.median(dv_err):.2e}, "
           f"max {np.max(dv_err):.2e}; median |dsigma|/err = {np.median(ds_err):.2e}")
 
@@ -216,9 +216,9 @@ def main():
     rn = fit_spectra(bflat, np.ones(nsub), v, baseline="constant", response="none")
     ok = (rn.status == 0) & np.isfinite(ap_v)
     print(f"    agreement kinemap (response='none', same sampled model) vs astropy on {ok.sum()} spectra: "
-          f"median |dv|/err = {np.median(np.abs(rn.velocity[ok, 0] - ap_v[ok]) / rn.velocity_error[ok, 0]):.2e}, "
+          f"median |dv|/err = {np.median(np.abs(rn.velocity[ok, 0] - ap_v[ok]) / rn.velocity_err[ok, 0]):.2e}, "
           f"median |dsigma|/err = "
-          f"{np.median(np.abs(rn.dispersion[ok, 0] - np.abs(ap_s[ok])) / rn.dispersion_error[ok, 0]):.2e}")
+          f"{np.median(np.abs(rn.dispersion[ok, 0] - np.abs(ap_s[ok])) / rn.dispersion_err[ok, 0]):.2e}")
 
     print()
     print(f"speed ratio kinemap / curve_fit loop: {rate_km / rate_cf:,.0f}x  (1 thread: {rate_km1 / rate_cf:,.0f}x)")

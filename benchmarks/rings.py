@@ -1,6 +1,6 @@
 """Benchmark of the tilted-ring fitter on a 512 x 512 velocity field with 25 rings.
 
-Runs ``kinemap.rings.fit_rings`` with no geometry given (automatic first guesses, all
+Runs ``kinemap.rings.fit_velocity_field`` with no geometry given (automatic first guesses, all
 three stages) and prints the wall time of each step and the total (goal: < 10 s on
 2 cores).  As a baseline measured in the same run, stage 1 is repeated the naive way:
 one scipy.optimize.least_squares call over all parameters at once (5 geometry + 25 v_rot,
@@ -21,7 +21,7 @@ import astropy.units as u
 import numpy as np
 from scipy.optimize import least_squares
 
-from kinemap.rings import fit_rings
+from kinemap.rings import fit_velocity_field
 from kinemap.rings._geometry import angular_weight, disk_coords
 from kinemap.rings.grid import SkyGrid
 from kinemap.rings.guess import guess_geometry
@@ -113,7 +113,7 @@ def main():
 
     t0 = time.perf_counter()
     radii = (np.arange(N_RING) + 0.5) * BEAM * u.arcsec  # ring radii only; no geometry given
-    res = fit_rings(v, PIXEL * u.arcsec, intensity=inten, beam_fwhm=BEAM * u.arcsec, radii=radii,
+    res = fit_velocity_field(v, PIXEL * u.arcsec, intensity=inten, beam_fwhm=BEAM * u.arcsec, radii=radii,
                     ring_width=BEAM * u.arcsec, progress=False)
     total = time.perf_counter() - t0
     n = len(res.table)

@@ -395,10 +395,10 @@ def test_pulls_tophat_white_noise():
     ok = res.status == Status.OK
     integ = truth[:, 0] * np.sqrt(2 * np.pi) * truth[:, 2]
     for fit, tr, err in (
-        (res.velocity[ok, 0], truth[ok, 1], res.velocity_error[ok, 0]),
-        (res.dispersion[ok, 0], truth[ok, 2], res.dispersion_error[ok, 0]),
-        (res.amplitude[ok, 0], truth[ok, 0], res.amplitude_error[ok, 0]),
-        (res.integrated[ok, 0], integ[ok], res.integrated_error[ok, 0]),
+        (res.velocity[ok, 0], truth[ok, 1], res.velocity_err[ok, 0]),
+        (res.dispersion[ok, 0], truth[ok, 2], res.dispersion_err[ok, 0]),
+        (res.amplitude[ok, 0], truth[ok, 0], res.amplitude_err[ok, 0]),
+        (res.integrated[ok, 0], integ[ok], res.integrated_err[ok, 0]),
     ):
         assert 0.9 < _pull(fit, tr, err) < 1.1
     # reduced chi2 of correct fits follows chi2/(n-k): median near 1
@@ -417,22 +417,22 @@ def test_pulls_hanning_correlated_noise():
     res = fit_spectra(y, noise, v, response="hanning")
     ok = res.status == Status.OK
     assert ok.mean() > 0.999
-    assert 0.9 < _pull(res.velocity[ok, 0], truth[ok, 1], res.velocity_error[ok, 0]) < 1.1
-    assert 0.9 < _pull(res.dispersion[ok, 0], truth[ok, 2], res.dispersion_error[ok, 0]) < 1.1
+    assert 0.9 < _pull(res.velocity[ok, 0], truth[ok, 1], res.velocity_err[ok, 0]) < 1.1
+    assert 0.9 < _pull(res.dispersion[ok, 0], truth[ok, 2], res.dispersion_err[ok, 0]) < 1.1
     # the effective number of data points makes chi2_reduced ~ 1 for correlated noise too
     assert np.median(res.chi2_reduced[ok]) == pytest.approx(1.0, abs=0.03)
     # ignoring the correlation underestimates the errors (pulls ~ sqrt(8/3) ~ 1.6)
     naive = fit_spectra(y, noise, v, response="hanning", noise_correlation="none")
     ok2 = naive.status == Status.OK
-    assert _pull(naive.velocity[ok2, 0], truth[ok2, 1], naive.velocity_error[ok2, 0]) > 1.3
+    assert _pull(naive.velocity[ok2, 0], truth[ok2, 1], naive.velocity_err[ok2, 0]) > 1.3
     # missing channels: the correlation matrix of the remaining channels (gaps included)
     sub = y[:3000].copy()
     sub[:, [10, 11, 30, 47]] = np.nan
     gap = fit_spectra(sub, noise, v, response="hanning")
     ok3 = gap.status == Status.OK
     assert np.all(gap.n_channels == 60)
-    assert 0.9 < _pull(gap.velocity[ok3, 0], truth[:3000][ok3, 1], gap.velocity_error[ok3, 0]) < 1.1
-    assert 0.9 < _pull(gap.dispersion[ok3, 0], truth[:3000][ok3, 2], gap.dispersion_error[ok3, 0]) < 1.1
+    assert 0.9 < _pull(gap.velocity[ok3, 0], truth[:3000][ok3, 1], gap.velocity_err[ok3, 0]) < 1.1
+    assert 0.9 < _pull(gap.dispersion[ok3, 0], truth[:3000][ok3, 2], gap.dispersion_err[ok3, 0]) < 1.1
 
 
 # ----------------------------------------------------------------------------- components
@@ -452,8 +452,8 @@ def test_auto_separates_two_blended_components_and_keeps_one_for_a_single_line()
     assert np.all(np.isnan(res.velocity[two, 2]))
     # ordered by velocity; recovered within errors
     assert np.all(res.velocity[two, 0] < res.velocity[two, 1])
-    assert 0.85 < _pull(res.velocity[two, 0], truth[two, 1], res.velocity_error[two, 0]) < 1.15
-    assert 0.85 < _pull(res.velocity[two, 1], truth[two, 4], res.velocity_error[two, 1]) < 1.15
+    assert 0.85 < _pull(res.velocity[two, 0], truth[two, 1], res.velocity_err[two, 0]) < 1.15
+    assert 0.85 < _pull(res.velocity[two, 1], truth[two, 4], res.velocity_err[two, 1]) < 1.15
     # a single Gaussian: one component in most spectra
     y1 = model_spectra(truth[:, :3], v) + rng.normal(size=(n, v.size))
     res1 = fit_spectra(y1, 1.0, v, ncomp="auto")
@@ -585,8 +585,8 @@ def test_instrumental_dispersion_is_removed():
     res = fit_spectra(y, 1.0, v, instrument_sigma=20 * u.km / u.s)
     ok = res.status == Status.OK
     assert ok.mean() > 0.98
-    assert np.median(res.dispersion[ok, 0]) == pytest.approx(10.0, abs=3 * np.median(res.dispersion_error[ok, 0]) / np.sqrt(ok.sum()) + 0.05)
-    assert 0.85 < _pull(res.dispersion[ok, 0], 10.0, res.dispersion_error[ok, 0]) < 1.15
+    assert np.median(res.dispersion[ok, 0]) == pytest.approx(10.0, abs=3 * np.median(res.dispersion_err[ok, 0]) / np.sqrt(ok.sum()) + 0.05)
+    assert 0.85 < _pull(res.dispersion[ok, 0], 10.0, res.dispersion_err[ok, 0]) < 1.15
     np.testing.assert_allclose(res.observed_dispersion[ok, 0] ** 2, res.dispersion[ok, 0] ** 2 + 400.0)
 
 

@@ -22,7 +22,7 @@ from kinemap.rings import (
     SkyGrid,
     dynamical_mass,
     first_guess,
-    fit_rings,
+    fit_velocity_field,
     harmonic_expansion,
     major_axis_pv,
     model_velocity_field,
@@ -105,7 +105,7 @@ def flat_field():
 @pytest.fixture(scope="module")
 def flat_fit(flat_field):
     v, r = flat_field
-    return fit_rings(v, 1.0 * u.arcsec, intensity=np.exp(-r / 15.0), ring_width=4 * u.arcsec,
+    return fit_velocity_field(v, 1.0 * u.arcsec, intensity=np.exp(-r / 15.0), ring_width=4 * u.arcsec,
                      beam_fwhm=2.0 * u.arcsec, distance=10 * u.Mpc)
 
 
@@ -130,7 +130,7 @@ def test_receding_side_on_mirrored_grid():
     # east to the right (CDELT1 > 0): for PA 30 the receding side is up and to the RIGHT
     v, _ = begeman_field(SHAPE, x0=CX, y0=CY, v_sys=0.0, v_rot=150.0, pa=30.0, incl=60.0, east_left=False, r_max=50)
     assert v[int(CY + 17), int(CX + 10)] > 100.0
-    res = fit_rings(v, SkyGrid.from_scale(1 * u.arcsec, east_left=False), ring_width=5)
+    res = fit_velocity_field(v, SkyGrid.from_scale(1 * u.arcsec, east_left=False), ring_width=5)
     assert res.global_geometry["position_angle"].to_value(u.deg) == pytest.approx(30.0, abs=0.1)
 
 
@@ -169,7 +169,7 @@ def test_fit_on_rotated_grid_recovers_sky_pa():
     v, _ = begeman_field(SHAPE, x0=CX, y0=CY, v_sys=300.0, v_rot=120.0, pa=250.0, incl=50.0, north_angle=40.0,
                          pixel=2.0, r_max=100)
     grid = SkyGrid.from_scale(2 * u.arcsec, north_angle=40 * u.deg)
-    res = fit_rings(v, grid, ring_width=8)
+    res = fit_velocity_field(v, grid, ring_width=8)
     assert res.global_geometry["position_angle"].to_value(u.deg) == pytest.approx(250.0, abs=0.1)
     assert res.global_geometry["inclination"].to_value(u.deg) == pytest.approx(50.0, abs=0.2)
 
@@ -203,7 +203,7 @@ def test_flat_rotation_curve_recovered(flat_fit):
 
 def test_rising_rotation_curve_recovered():
     v, _ = begeman_field(SHAPE, x0=CX, y0=CY, v_sys=-50.0, v_rot=rising, pa=145.0, incl=62.0, r_max=52)
-    res = fit_rings(v, 1 * u.arcsec, radii=np.arange(2.0, 50.0, 4.0) * u.arcsec, ring_width=4 * u.arcsec)
+    res = fit_velocity_field(v, 1 * u.arcsec, radii=np.arange(2.0, 50.0, 4.0) * u.arcsec, ring_width=4 * u.arcsec)
     t = res.table
     r = vals(t["radius"], u.arcsec)
     outer = r >= 12
@@ -222,7 +222,7 @@ def test_warped_disk_recovered():
 
     v, _ = begeman_field((136, 136), x0=68.2, y0=67.6, v_sys=500.0, v_rot=180.0, pa=pa, incl=incl, r_max=62)
     radii = np.arange(6.0, 60.0, 4.0)
-    res = fit_rings(v, 1 * u.arcsec, radii=radii, ring_width=4)
+    res = fit_velocity_field(v, 1 * u.arcsec, radii=radii, ring_width=4)
     stage2 = res.stages["rings"]
     ok = np.asarray(stage2["status"]) <= Status.AT_BOUND
     assert ok.sum() >= radii.size - 2
@@ -246,7 +246,7 @@ def test_final_geometry_modes(mode):
 
     v, _ = begeman_field(SHAPE, x0=CX, y0=CY, v_sys=0.0, v_rot=170.0, pa=pa, incl=55.0, r_max=54)
     radii = np.arange(6.0, 52.0, 4.0)
-    res = fit_rings(v, 1 * u.arcsec, radii=radii, ring_width=4, final_geometry=mode, polynomial_degree=2)
+    res = fit_velocity_field(v, 1 * u.arcsec, radii=radii, ring_width=4, final_geometry=mode, polynomial_degree=2)
     final = vals(res.table["position_angle"], u.deg)
     stage2 = vals(res.stages["rings"]["position_angle"], u.deg)
     assert res.table.meta["geometry"] == mode
@@ -261,7 +261,7 @@ def test_final_geometry_modes(mode):
 
 def test_expanding_disk_recovered():
     v, _ = begeman_field(SHAPE, x0=CX, y0=CY, v_sys=200.0, v_rot=150.0, pa=120.0, incl=50.0, v_exp=20.0, r_max=50)
-    res = fit_rings(v, 1 * u.arcsec, ring_width=5, expansion_in_geometry=True)
+    res = fit_velocity_field(v, 1 * u.arcsec, ring_width=5, expansion_in_geometry=True)
     t = res.table
     ok = np.asarray(t["status"]) == Status.OK
     np.testing.assert_allclose(vals(t["v_exp"], u.km / u.s)[ok], 20.0, atol=0.3)
@@ -282,7 +282,7 @@ def noisy_case():
     v[rng.random(v.shape) < 0.2] = np.nan  # scattered holes
     v[40:52, 70:88] = np.nan  # one big hole
     radii = np.arange(4.0, 60.0, 5.0)
-    res = fit_rings(v, 1 * u.arcsec, intensity=np.exp(-r / 18.0), radii=radii, ring_width=5)
+    res = fit_velocity_field(v, 1 * u.arcsec, intensity=np.exp(-r / 18.0), radii=radii, ring_width=5)
     return v, res
 
 
@@ -306,7 +306,7 @@ def test_noise_and_holes_recovered(noisy_case):
 def test_input_not_modified(noisy_case):
     v, res = noisy_case
     before = v.copy()
-    fit_rings(v, 1 * u.arcsec, ring_width=5, stages=(1,))
+    fit_velocity_field(v, 1 * u.arcsec, ring_width=5, stages=(1,))
     np.testing.assert_array_equal(np.isnan(v), np.isnan(before))
     np.testing.assert_array_equal(v[np.isfinite(v)], before[np.isfinite(before)])
     assert np.isnan(res.velocity.value).sum() == np.isnan(v).sum()
@@ -320,7 +320,7 @@ def test_unfittable_rings_kept_with_status():
     v2[(r > 18) & (r < 24) & (v < 0)] = np.nan
     radii = np.array([5.0, 10.0, 15.0, 21.0, 27.0, 40.0, 45.0])
     with pytest.warns(FitWarning, match="not fitted cleanly"):
-        res = fit_rings(v2, 1 * u.arcsec, radii=radii, ring_width=5)
+        res = fit_velocity_field(v2, 1 * u.arcsec, radii=radii, ring_width=5)
     t = res.table
     assert len(t) == radii.size
     st = np.asarray(t["status"])
@@ -333,7 +333,7 @@ def test_unfittable_rings_kept_with_status():
 @pytest.mark.parametrize("weighting", ["uniform", "cos", "cos2"])
 def test_weighting_options(weighting):
     v, _ = begeman_field(SHAPE, x0=CX, y0=CY, v_sys=10.0, v_rot=100.0, pa=200.0, incl=45.0, r_max=45)
-    res = fit_rings(v, 1 * u.arcsec, ring_width=5, weighting=weighting, exclude_minor_axis=10 * u.deg,
+    res = fit_velocity_field(v, 1 * u.arcsec, ring_width=5, weighting=weighting, exclude_minor_axis=10 * u.deg,
                     stages=(1, 3))
     t = res.table
     ok = np.asarray(t["status"]) == Status.OK
@@ -344,7 +344,7 @@ def test_weighting_options(weighting):
 def test_fixed_parameters_stay_fixed():
     v, _ = begeman_field(SHAPE, x0=CX, y0=CY, v_sys=0.0, v_rot=180.0, pa=60.0, incl=60.0, r_max=45)
     # only points within 15 deg of the major axis, where cos(theta) ~ 1 whatever the inclination
-    res = fit_rings(v, 1 * u.arcsec, ring_width=5, inclination=50 * u.deg, v_sys=0.0, fix=["inclination", "v_sys"],
+    res = fit_velocity_field(v, 1 * u.arcsec, ring_width=5, inclination=50 * u.deg, v_sys=0.0, fix=["inclination", "v_sys"],
                     exclude_minor_axis=75 * u.deg, min_points=8)
     for name in ("global", "rings", "final"):
         t = res.stages[name]
@@ -362,10 +362,10 @@ def test_error_map_and_bootstrap_errors():
     v = v + rng.normal(0.0, 5.0, v.shape)
     radii = np.arange(8.0, 44.0, 6.0)
     kw = dict(radii=radii, ring_width=6, stages=(1, 3), progress=False)
-    formal = fit_rings(v, 1 * u.arcsec, **kw)
-    with_map = fit_rings(v, 1 * u.arcsec, velocity_error=np.full(v.shape, 5.0), **kw)
-    boot = fit_rings(v, 1 * u.arcsec, n_bootstrap=25, seed=3, **kw)
-    boot2 = fit_rings(v, 1 * u.arcsec, n_bootstrap=25, seed=3, **kw)
+    formal = fit_velocity_field(v, 1 * u.arcsec, **kw)
+    with_map = fit_velocity_field(v, 1 * u.arcsec, velocity_err=np.full(v.shape, 5.0), **kw)
+    boot = fit_velocity_field(v, 1 * u.arcsec, bootstrap=25, seed=3, **kw)
+    boot2 = fit_velocity_field(v, 1 * u.arcsec, bootstrap=25, seed=3, **kw)
     e_formal = vals(formal.table["v_rot_err"], u.km / u.s)
     e_map = vals(with_map.table["v_rot_err"], u.km / u.s)
     e_boot = vals(boot.table["v_rot_err"], u.km / u.s)
@@ -380,8 +380,8 @@ def test_error_map_and_bootstrap_errors():
 
 def test_velocity_units_accepted(flat_field):
     v, _ = flat_field
-    a = fit_rings(v, 1 * u.arcsec, ring_width=6, stages=(1,))
-    b = fit_rings(v * 1000.0 * u.m / u.s, 1 / 3600 * u.deg, ring_width=6 * u.arcsec, stages=(1,))
+    a = fit_velocity_field(v, 1 * u.arcsec, ring_width=6, stages=(1,))
+    b = fit_velocity_field(v * 1000.0 * u.m / u.s, 1 / 3600 * u.deg, ring_width=6 * u.arcsec, stages=(1,))
     np.testing.assert_allclose(vals(a.table["v_rot"], u.km / u.s), vals(b.table["v_rot"], u.km / u.s), rtol=1e-9)
 
 
@@ -399,7 +399,7 @@ def test_first_guess_with_exponential_intensity(pa, incl):
     assert g.x_center == pytest.approx(61.4, abs=0.5) and g.y_center == pytest.approx(58.7, abs=0.5)
     assert g.v_sys.to_value(u.km / u.s) == pytest.approx(1500.0, abs=1.0)
     # the full fit with nothing given does better still
-    res = fit_rings(v, 1 * u.arcsec, intensity=inten, ring_width=5, stages=(1,))
+    res = fit_velocity_field(v, 1 * u.arcsec, intensity=inten, ring_width=5, stages=(1,))
     assert abs(res.global_geometry["position_angle"].to_value(u.deg) - pa) < 0.5
     assert res.global_geometry["inclination"].to_value(u.deg) == pytest.approx(incl, abs=1.0)
 
@@ -454,7 +454,7 @@ def test_harmonics_recover_m2_term():
     v = v + rng.normal(0.0, 2.0, v.shape)
     radii = np.arange(10.0, 50.0, 5.0)
     h = harmonic_expansion(v, _truth_table(radii, 5.0, 20.0, 50.0, CX, CY), 1 * u.arcsec,
-                           velocity_error=np.full(v.shape, 2.0))
+                           velocity_err=np.full(v.shape, 2.0))
     c2, s2 = vals(h["c2"], u.km / u.s), vals(h["s2"], u.km / u.s)
     c2e, s2e = vals(h["c2_err"], u.km / u.s), vals(h["s2_err"], u.km / u.s)
     assert np.all(np.abs(c2 - 8.0) < 4 * c2e) and np.all(np.abs(s2 + 5.0) < 4 * s2e)
@@ -502,7 +502,7 @@ def test_model_field_matches_input(flat_field, flat_fit):
 
 def test_model_of_rising_curve_interpolates_between_rings():
     v, r = begeman_field(SHAPE, x0=CX, y0=CY, v_sys=0.0, v_rot=rising, pa=145.0, incl=62.0, r_max=52)
-    res = fit_rings(v, 1 * u.arcsec, radii=np.arange(2.0, 50.0, 4.0), ring_width=4, stages=(1,))
+    res = fit_velocity_field(v, 1 * u.arcsec, radii=np.arange(2.0, 50.0, 4.0), ring_width=4, stages=(1,))
     model = res.model.to_value(u.km / u.s)
     band = (r > 14) & (r < 46) & np.isfinite(v)
     # linear interpolation of v_rot between ring centres (not steps) keeps errors small
@@ -562,7 +562,7 @@ def test_plots_return_figures(flat_field, flat_fit):
         (dict(stages=(2, 3)), r"'stages' must contain 1"),
         (dict(fix=["tilt"]), r"'fix' entries must be among"),
         (dict(ring_free=["v_exp"]), r"'ring_free' lists geometry parameters only"),
-        (dict(n_bootstrap=1), r"'n_bootstrap' must be 0"),
+        (dict(bootstrap=1), r"'bootstrap' must be 0"),
         (dict(exclude_minor_axis=95 * u.deg), r"'exclude_minor_axis' must be"),
         (dict(radii=[5.0, 3.0]), r"'radii' must increase"),
         (dict(radii=[5.0, 10.0], ring_width=8.0), r"'ring_width' .* larger than the ring spacing"),
@@ -575,27 +575,27 @@ def test_plots_return_figures(flat_field, flat_fit):
 def test_bad_input_raises(flat_field, kwargs, match):
     v, _ = flat_field
     with pytest.raises(KinemapError, match=match):
-        fit_rings(v, 1 * u.arcsec, **kwargs)
+        fit_velocity_field(v, 1 * u.arcsec, **kwargs)
 
 
 def test_bad_maps_raise():
     with pytest.raises(KinemapError, match=r"'velocity' has only 10 usable"):
         v = np.full((30, 30), np.nan)
         v.flat[:10] = 1.0
-        fit_rings(v, 1 * u.arcsec)
+        fit_velocity_field(v, 1 * u.arcsec)
     with pytest.raises(KinemapError, match=r"'velocity' must be a 2-D"):
-        fit_rings(np.zeros((3, 10, 10)), 1 * u.arcsec)
+        fit_velocity_field(np.zeros((3, 10, 10)), 1 * u.arcsec)
     with pytest.raises(KinemapError, match=r"'pixel_scale' must be a positive"):
-        fit_rings(np.zeros((10, 10)), -1 * u.arcsec)
+        fit_velocity_field(np.zeros((10, 10)), -1 * u.arcsec)
     with pytest.raises(KinemapError, match=r"'velocity' must be in units convertible to km / s"):
-        fit_rings(np.zeros((10, 10)) * u.K, 1 * u.arcsec)
+        fit_velocity_field(np.zeros((10, 10)) * u.K, 1 * u.arcsec)
 
 
 def test_messages_are_one_line(flat_field):
     v, _ = flat_field
     with pytest.raises(KinemapError) as info:
-        fit_rings(v, 1 * u.arcsec, inclination=120)
+        fit_velocity_field(v, 1 * u.arcsec, inclination=120)
     assert "\n" not in str(info.value)
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # a clean fit emits no warnings
-        fit_rings(v, 1 * u.arcsec, ring_width=6, stages=(1,))
+        fit_velocity_field(v, 1 * u.arcsec, ring_width=6, stages=(1,))

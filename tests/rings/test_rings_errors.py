@@ -1,4 +1,4 @@
-"""Honesty of the tilted-ring fitter's uncertainties (kinemap.rings.fit_rings).
+"""Honesty of the tilted-ring fitter's uncertainties (kinemap.rings.fit_velocity_field).
 
 Velocity fields come from the Begeman (1989, A&A 223, 47) formula for a flat disk,
 
@@ -20,7 +20,7 @@ from scipy.ndimage import gaussian_filter
 
 import kinemap.rings._core as ring_core
 from kinemap.errors import FitWarning
-from kinemap.rings import fit_rings
+from kinemap.rings import fit_velocity_field
 from kinemap.status import Status
 
 GEOM = ("v_sys", "position_angle", "inclination", "x_center", "y_center")
@@ -115,7 +115,7 @@ def test_global_geometry_pulls(noise):
             beam = BEAM * u.arcsec
         # started at the truth (not fixed there): the test is about the error estimate
         # near the minimum, not about how often the first guesses find that minimum
-        res = fit_rings(v, 1 * u.arcsec, velocity_error=sigma, beam_fwhm=beam, radii=RADII, ring_width=5.0,
+        res = fit_velocity_field(v, 1 * u.arcsec, velocity_err=sigma, beam_fwhm=beam, radii=RADII, ring_width=5.0,
                         stages=(1,), progress=False, **TRUTH)
         val, err = _geom(res)
         chi2 = res.stages["global"].meta["chi2_reduced"]
@@ -143,7 +143,7 @@ def noisy_disk():
 def _fit(v, err, **kw):
     opts = dict(beam_fwhm=BEAM * u.arcsec, radii=RADII, ring_width=5.0, stages=(1, 3), progress=False)
     opts.update(kw)
-    return fit_rings(v, 1 * u.arcsec, velocity_error=err, **opts)
+    return fit_velocity_field(v, 1 * u.arcsec, velocity_err=err, **opts)
 
 
 def test_understated_errors_are_inflated_by_chi2(noisy_disk):
@@ -200,7 +200,7 @@ def test_roundoff_zero_errors_do_not_pin_the_fit(noisy_disk):
     err.flat[pick[:25]] = rng.uniform(1e-13, 6e-13, 25)  # float noise of a zero
     err.flat[pick[25:]] = 0.0
     vv.flat[pick] = np.round(vv.flat[pick] / 8.0) * 8.0  # one 8 km/s channel: quantised values
-    with pytest.warns(FitWarning, match="30 pixels .*'velocity_error' 0"):
+    with pytest.warns(FitWarning, match="30 pixels .*'velocity_err' 0"):
         res = _fit(vv, err)
     # the same as leaving those pixels out
     gone = v.copy()
@@ -227,7 +227,7 @@ def test_outermost_ring_error_follows_the_linear_formula():
     """
     v, r = disk_field(v_rot=lambda rr: np.full_like(rr, 150.0))
     sigma = 2.5
-    res = fit_rings(v, 1 * u.arcsec, velocity_error=np.full(SHAPE, sigma), radii=RADII, ring_width=5.0,
+    res = fit_velocity_field(v, 1 * u.arcsec, velocity_err=np.full(SHAPE, sigma), radii=RADII, ring_width=5.0,
                     fix=["center", "position_angle", "inclination", "v_sys"],
                     x_center=TRUTH["x_center"], y_center=TRUTH["y_center"],
                     position_angle=TRUTH["position_angle"] * u.deg, inclination=TRUTH["inclination"] * u.deg,
@@ -305,9 +305,9 @@ def test_harmonic_expansion_errors_follow_the_same_rule(noisy_disk):
 
     v, sigma = noisy_disk
     rings = _fit(v, sigma, stages=(1,)).table
-    right = harmonic_expansion(v, rings, 1 * u.arcsec, velocity_error=sigma)
-    low = harmonic_expansion(v, rings, 1 * u.arcsec, velocity_error=sigma / 3.0)
-    high = harmonic_expansion(v, rings, 1 * u.arcsec, velocity_error=3.0 * sigma)
+    right = harmonic_expansion(v, rings, 1 * u.arcsec, velocity_err=sigma)
+    low = harmonic_expansion(v, rings, 1 * u.arcsec, velocity_err=sigma / 3.0)
+    high = harmonic_expansion(v, rings, 1 * u.arcsec, velocity_err=3.0 * sigma)
     ok = np.isfinite(np.asarray(right["c1_err"]))
     assert ok.sum() >= 5
     for term in ("c0", "c1", "s1", "c3"):
@@ -319,5 +319,5 @@ def test_harmonic_expansion_errors_follow_the_same_rule(noisy_disk):
         assert np.all(e_l > 0.5 * e_r)  # chi2 ~ 1 for the right map: sigma/3 is caught
     err = sigma.copy()
     err[40, 30:36] = 1e-14
-    with pytest.warns(FitWarning, match="6 pixels .*'velocity_error' 0"):
-        harmonic_expansion(v, rings, 1 * u.arcsec, velocity_error=err)
+    with pytest.warns(FitWarning, match="6 pixels .*'velocity_err' 0"):
+        harmonic_expansion(v, rings, 1 * u.arcsec, velocity_err=err)

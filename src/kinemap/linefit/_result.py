@@ -78,15 +78,15 @@ class LineFitResult:
     bic: np.ndarray
     peak_snr: np.ndarray
     velocity: np.ndarray
-    velocity_error: np.ndarray
+    velocity_err: np.ndarray
     dispersion: np.ndarray
-    dispersion_error: np.ndarray
+    dispersion_err: np.ndarray
     observed_dispersion: np.ndarray
-    observed_dispersion_error: np.ndarray
+    observed_dispersion_err: np.ndarray
     amplitude: np.ndarray
-    amplitude_error: np.ndarray
+    amplitude_err: np.ndarray
     integrated: np.ndarray
-    integrated_error: np.ndarray
+    integrated_err: np.ndarray
     model: LineModel
     instrument_sigma: float
     response: str

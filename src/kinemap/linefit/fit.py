@@ -225,16 +225,16 @@ def _derived(mdl: LineModel, params, cov, si):
         integ_e = np.sqrt(np.maximum(var, 0.0))
         integ_e[np.isnan(var)] = np.nan
     return {
-        "velocity": v, "velocity_error": v_e,
-        "dispersion": sg, "dispersion_error": sg_e,
-        "observed_dispersion": so, "observed_dispersion_error": so_e,
-        "amplitude": amp, "amplitude_error": amp_e,
-        "integrated": integ, "integrated_error": integ_e,
+        "velocity": v, "velocity_err": v_e,
+        "dispersion": sg, "dispersion_err": sg_e,
+        "observed_dispersion": so, "observed_dispersion_err": so_e,
+        "amplitude": amp, "amplitude_err": amp_e,
+        "integrated": integ, "integrated_err": integ_e,
     }
 
 
-_COMP_KEYS = ("velocity", "velocity_error", "dispersion", "dispersion_error", "observed_dispersion",
-              "observed_dispersion_error", "amplitude", "amplitude_error", "integrated", "integrated_error")
+_COMP_KEYS = ("velocity", "velocity_err", "dispersion", "dispersion_err", "observed_dispersion",
+              "observed_dispersion_err", "amplitude", "amplitude_err", "integrated", "integrated_err")
 
 
 def _order(out, mdl: LineModel, order):
@@ -338,7 +338,7 @@ def _select(cands, models, noise, axes, *, min_separation, separation_unit, min_
                 if component_snr == "noise":
                     snr = out["amplitude"] / noise[:, None]
                 else:
-                    snr = out["amplitude"] / out["amplitude_error"]
+                    snr = out["amplitude"] / out["amplitude_err"]
                 ok &= np.all(snr >= min_component_snr, axis=1)
         bic = np.where(ok, out["bic"], np.inf)
         take = bic < best_bic
@@ -587,12 +587,12 @@ def _fit_core(arr, noise, velocity, spatial_shape, *, ncomp, baseline, model, in
         params=res["params"], errors=res["errors"], param_names=big.param_names, status=res["status"],
         ncomp=res["ncomp"], n_iter=res["n_iter"], n_channels=res["n_channels"],
         chi2_reduced=res["chi2_reduced"], bic=res["bic"], peak_snr=res["peak_snr"],
-        velocity=res["velocity"], velocity_error=res["velocity_error"],
-        dispersion=res["dispersion"], dispersion_error=res["dispersion_error"],
+        velocity=res["velocity"], velocity_err=res["velocity_err"],
+        dispersion=res["dispersion"], dispersion_err=res["dispersion_err"],
         observed_dispersion=res["observed_dispersion"],
-        observed_dispersion_error=res["observed_dispersion_error"],
-        amplitude=res["amplitude"], amplitude_error=res["amplitude_error"],
-        integrated=res["integrated"], integrated_error=res["integrated_error"],
+        observed_dispersion_err=res["observed_dispersion_err"],
+        amplitude=res["amplitude"], amplitude_err=res["amplitude_err"],
+        integrated=res["integrated"], integrated_err=res["integrated_err"],
         model=big, instrument_sigma=cfg.instrument_sigma, response=cfg.response,
         spatial_shape=tuple(spatial_shape),
     )

@@ -60,7 +60,7 @@ def _fit_block_fn(block, *, noise, pixel_mask, velocity, options, ncomp_max, npa
     out = {k: m[k] for k in ("status", "ncomp", "chi2_reduced", "peak_snr", "params", "errors")}
     for q in COMPONENT_QUANTITIES:
         out[q] = m[q][:ncomp_max]
-        out[q + "_error"] = m[q + "_error"][:ncomp_max]
+        out[q + "_err"] = m[q + "_err"][:ncomp_max]
     out["status"] = out["status"].astype(np.int16)
     out["ncomp"] = out["ncomp"].astype(np.int16)
     return out
@@ -328,7 +328,7 @@ def fit_cube(cube, *, noise=None, mask=None, components=1, baseline: str = "none
                "params": ((npar,), np.float64, np.nan), "errors": ((npar,), np.float64, np.nan)}
     for q in COMPONENT_QUANTITIES:
         outputs[q] = (lead, np.float64, np.nan)
-        outputs[q + "_error"] = (lead, np.float64, np.nan)
+        outputs[q + "_err"] = (lead, np.float64, np.nan)
     out = map_blocks(cube, _fit_block_fn, outputs=outputs, max_memory=max_memory, factor=4.0,
                      block_args=block_args, progress=progress and "fit", client=client,
                      velocity=velocity, options=options, ncomp_max=ncomp_max, npar=npar)
@@ -340,7 +340,7 @@ def fit_cube(cube, *, noise=None, mask=None, components=1, baseline: str = "none
     settings["descriptions"] = {int(k): v for k, v in STATUS_DESCRIPTIONS.items()}
     comp = {}
     for q in COMPONENT_QUANTITIES:
-        comp[q], comp[q + "_err"] = out[q], out[q + "_error"]
+        comp[q], comp[q + "_err"] = out[q], out[q + "_err"]
     fit = LineFitMaps(component_arrays=comp, pixel_arrays={k: out[k] for k in _PIXEL_KEYS},
                       params=out["params"], errors=out["errors"], param_names=names,
                       meta=cube.meta, settings=settings, model_options=model_options)

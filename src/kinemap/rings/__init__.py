@@ -4,8 +4,10 @@ Works on numpy arrays plus the sky geometry of the pixel grid; reads and writes 
 
 Public API
 ----------
-fit_rings(velocity, grid, ...) -> RingFitResult
-    Three-stage tilted-ring fit with automatic first guesses.
+fit_rings(velocity, ...) -> RingFit
+    The ring fit of a velocity Projection, map or fit result (WCS and beam from the map).
+fit_velocity_field(velocity, grid, ...) -> RingFitResult
+    The three-stage tilted-ring fit on plain arrays and a SkyGrid, automatic first guesses.
 first_guess(velocity, grid, ...) -> FirstGuess
     Centre, v_sys, position angle and inclination estimated from the maps.
 SkyGrid
@@ -15,16 +17,19 @@ model_velocity_field(rings, shape, grid) -> Quantity
 major_axis_pv(cube, velocity_axis, result, ...) -> PositionVelocitySlice
 dynamical_mass(v_rot, radius) -> Quantity;  physical_radius(radius, distance) -> Quantity
 """
-from kinemap.rings.fit import RING_COLUMNS, RingFitResult, fit_rings
+from kinemap.rings.fit import RING_COLUMNS, RingFitResult, fit_velocity_field
 from kinemap.rings.grid import SkyGrid
 from kinemap.rings.guess import FirstGuess, first_guess
 from kinemap.rings.harmonics import HARMONIC_TERMS, harmonic_expansion
 from kinemap.rings.mass import dynamical_mass, physical_radius
 from kinemap.rings.model import model_velocity_field
 from kinemap.rings.pv import PositionVelocitySlice, major_axis_pv
+from kinemap.rings.stage import RingFit, fit_rings
 
 __all__ = [
     "fit_rings",
+    "RingFit",
+    "fit_velocity_field",
     "RingFitResult",
     "RING_COLUMNS",
     "SkyGrid",

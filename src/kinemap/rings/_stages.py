@@ -1,4 +1,4 @@
-"""The three stages of :func:`kinemap.rings.fit_rings` and their bookkeeping (private).
+"""The three stages of :func:`kinemap.rings.fit_velocity_field` and their bookkeeping (private).
 
 Each stage is one function working on a :class:`RingProblem` (the valid points, rings and
 options shared by all stages) and returning what the next stage and the result need; the
@@ -160,7 +160,7 @@ class FinalStage:
 
 
 def stage_final(prob: RingProblem, glob: GlobalStage, rings: RingStage, *, stages_t, free_ring, final_geometry,
-                polynomial_degree, n_bootstrap, seed, beam, distance, error_map: bool) -> FinalStage:
+                polynomial_degree, bootstrap, seed, beam, distance, error_map: bool) -> FinalStage:
     """Stage 3: the geometry smoothed (or kept, or replaced) as ``final_geometry`` says, v_rot
     and v_exp refitted with it, then the errors: random (formal or bootstrap) combined with
     the approaching/receding difference, all times the beam factor."""
@@ -173,10 +173,10 @@ def stage_final(prob: RingProblem, glob: GlobalStage, rings: RingStage, *, stage
     random_r = s3.v_rot_err.copy()
     random_e = s3.v_exp_err.copy()
     geom_random = {name: final_e[name].copy() for name in GEOM_NAMES}
-    if n_bootstrap:
+    if bootstrap:
         rng = np.random.default_rng(seed)
         bs = _bootstrap(prob.pts, prob.jac, prob.edges, final_g, s3, free_ring, free, prob.vexp_held(free),
-                        prob.cfg, int(n_bootstrap), rng, prob.bar)
+                        prob.cfg, int(bootstrap), rng, prob.bar)
         random_r, random_e = bs["v_rot"], bs["v_exp"]
         for name in free_ring:
             geom_random[name] = bs[name]
@@ -197,16 +197,16 @@ def stage_final(prob: RingProblem, glob: GlobalStage, rings: RingStage, *, stage
     table = _stage_table(prob.radii, s3.v_rot, v_rot_err, s3.v_exp, v_exp_err, final_shown, final_err,
                          s3.npoints, status, prob.width, "final", v_app=v_app, v_rec=v_rec,
                          beam=beam, distance=distance)
-    _final_meta(table.meta, how, s3.chi2_red, n_bootstrap, es, error_map, free_ring)
+    _final_meta(table.meta, how, s3.chi2_red, bootstrap, es, error_map, free_ring)
     return FinalStage(s3, final_shown, status, table)
 
 
-def _final_meta(meta, how, chi2_red, n_bootstrap, err_scale, error_map, free_ring):
+def _final_meta(meta, how, chi2_red, bootstrap, err_scale, error_map, free_ring):
     """The final table's header: error recipes in words, geometry used, reduced chi^2 (in
     this order, which is the order written to files)."""
     meta["v_rot_err"] = (
         "sqrt(random^2 + ((v_rot_receding - v_rot_approaching)/2)^2); random = "
-        + ("bootstrap" if n_bootstrap else "formal" + (" (x sqrt(chi2_reduced of the ring) when that exceeds 1)"
+        + ("bootstrap" if bootstrap else "formal" + (" (x sqrt(chi2_reduced of the ring) when that exceeds 1)"
                                                       if error_map else ""))
         + (f" x {err_scale:.3g} (pixels per beam)" if err_scale > 1 else "")
     )
@@ -214,7 +214,7 @@ def _final_meta(meta, how, chi2_red, n_bootstrap, err_scale, error_map, free_rin
     meta["chi2_reduced"] = _plain(chi2_red)
     meta["geometry_err"] = (
         _GEOMETRY_ERR_RECIPE + (f"; x {err_scale:.3g} (pixels per beam)" if err_scale > 1 else "")
-        + ("; bootstrap for " + ", ".join(free_ring) if n_bootstrap and free_ring else "")
+        + ("; bootstrap for " + ", ".join(free_ring) if bootstrap and free_ring else "")
         + f"; values and errors from {how!r} geometry")
 
 

@@ -41,11 +41,11 @@ def same_shape(arr, shape, name: str, unit=None) -> np.ndarray | None:
 
 
 def error_map(err, shape) -> np.ndarray | None:
-    out = same_shape(err, shape, "velocity_error", KMS)
+    out = same_shape(err, shape, "velocity_err", KMS)
     if out is None:
         return None
     if np.any(out[np.isfinite(out)] < 0):
-        raise KinemapError("'velocity_error' must be >= 0 km/s (1-sigma errors); NaN marks missing values")
+        raise KinemapError("'velocity_err' must be >= 0 km/s (1-sigma errors); NaN marks missing values")
     return out
 
 

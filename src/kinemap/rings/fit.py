@@ -55,7 +55,7 @@ from kinemap.rings.guess import FirstGuess, as_first_guess, guess_geometry
 from kinemap.rings.harmonics import harmonics_table
 from kinemap.rings.model import model_field
 
-__all__ = ["RingFitResult", "fit_rings", "RING_COLUMNS"]
+__all__ = ["RingFitResult", "fit_velocity_field", "RING_COLUMNS"]
 
 # the public ring-table columns, in order (distance-dependent ones only with a distance)
 RING_COLUMNS = (
@@ -68,7 +68,7 @@ RING_COLUMNS = (
 
 @dataclass(frozen=True, eq=False)
 class RingFitResult:
-    """Outcome of :func:`fit_rings`.
+    """Outcome of :func:`fit_velocity_field`.
 
     Attributes
     ----------
@@ -130,12 +130,12 @@ class RingFitResult:
         return self.table.meta["ring_width"] * u.arcsec
 
 
-def fit_rings(
+def fit_velocity_field(
     velocity,
     grid,
     *,
     intensity=None,
-    velocity_error=None,
+    velocity_err=None,
     x_center=None,
     y_center=None,
     position_angle=None,
@@ -155,7 +155,7 @@ def fit_rings(
     exclude_minor_axis=20 * u.deg,
     min_points: int = 20,
     expansion_in_geometry: bool = False,
-    n_bootstrap: int = 0,
+    bootstrap: int = 0,
     seed: int | None = None,
     scale_errors_by_beam: bool = True,
     intrinsic_axis_ratio: float = 0.0,
@@ -173,7 +173,7 @@ def fit_rings(
         or just the pixel scale (plain numbers arcsec), meaning north up and east left.
     intensity : array_like, optional
         Intensity map (any unit) for the first guesses of centre and inclination.
-    velocity_error : array_like or Quantity, optional
+    velocity_err : array_like or Quantity, optional
         1-sigma velocity errors (km/s): points are weighted by 1/error^2 and the formal
         errors are absolute (inflated by sqrt(reduced chi^2) when that exceeds 1, see
         Notes).  Pixels with a NaN error are skipped; so are pixels with error 0 or below
@@ -232,7 +232,7 @@ def fit_rings(
         expansion); v_exp is always fitted in the final refit unless fixed.  Set it when
         the disk is known to expand or contract: with v_exp held at 0 an expansion of
         v_exp ~ 0.1 v_rot tilts the fitted PA by ~6 deg.
-    n_bootstrap : int, optional
+    bootstrap : int, optional
         If > 0, the random errors of every ring come from this many bootstrap resamplings
         of the ring's points, each refitted with the stage-2 freedom (geometry in
         ``ring_free``, v_rot, and v_exp unless fixed), instead of the formal errors.
@@ -282,16 +282,16 @@ def fit_rings(
         valid pixels, unknown option) or no ring could be fitted at all.
     """
     opts = _checked_options(
-        velocity, grid, intensity=intensity, velocity_error=velocity_error, beam_fwhm=beam_fwhm,
+        velocity, grid, intensity=intensity, velocity_err=velocity_err, beam_fwhm=beam_fwhm,
         distance=distance, stages=stages, fix=fix, ring_free=ring_free, final_geometry=final_geometry,
         weighting=weighting, exclude_minor_axis=exclude_minor_axis, polynomial_degree=polynomial_degree,
-        min_points=min_points, n_bootstrap=n_bootstrap, radii=radii, ring_width=ring_width,
+        min_points=min_points, bootstrap=bootstrap, radii=radii, ring_width=ring_width,
         given={"x_center": x_center, "y_center": y_center, "position_angle": position_angle,
                "inclination": inclination, "v_sys": v_sys, "v_exp": v_exp})
     if opts.n_zero_err:
         # a zero error would give a pixel infinite weight and pin the whole fit to it
         warnings.warn(
-            f"{opts.n_zero_err} pixels with a velocity have 'velocity_error' 0 (or below "
+            f"{opts.n_zero_err} pixels with a velocity have 'velocity_err' 0 (or below "
             f"{val.ROUNDOFF_ERROR_FRACTION:g} of the median error) and were skipped; such errors usually "
             "come from a moment-1 map whose mask keeps one channel", FitWarning, stacklevel=2)
     vel, grid = opts.vel, opts.grid
@@ -306,7 +306,7 @@ def fit_rings(
 
     prob, geom0 = _problem(opts, guess, weighting=weighting, min_points=min_points,
                            expansion_in_geometry=expansion_in_geometry,
-                           scale_errors_by_beam=scale_errors_by_beam, progress=progress, n_bootstrap=n_bootstrap)
+                           scale_errors_by_beam=scale_errors_by_beam, progress=progress, bootstrap=bootstrap)
     free1 = tuple(name for name in GEOM_NAMES if name not in opts.fixed)
     glob = stage_global(prob, geom0, free1)
     timings["stage1"], clock = time.perf_counter() - clock, time.perf_counter()
@@ -317,7 +317,7 @@ def fit_rings(
 
     final = stage_final(prob, glob, rings, stages_t=opts.stages, free_ring=opts.free_ring,
                         final_geometry=final_geometry, polynomial_degree=int(polynomial_degree),
-                        n_bootstrap=n_bootstrap, seed=seed, beam=opts.beam, distance=opts.dist,
+                        bootstrap=bootstrap, seed=seed, beam=opts.beam, distance=opts.dist,
                         error_map=opts.err is not None)
     stage_tables = {"global": glob.table}
     if rings.table is not None:
@@ -341,7 +341,7 @@ def fit_rings(
         "stages": opts.stages, "fix": opts.fixed, "ring_free": opts.free_ring, "final_geometry": final_geometry,
         "polynomial_degree": int(polynomial_degree), "weighting": weighting, "exclude_minor_axis_deg": opts.wedge,
         "min_points": int(min_points), "expansion_in_geometry": bool(expansion_in_geometry),
-        "n_bootstrap": int(n_bootstrap), "seed": seed, "scale_errors_by_beam": bool(scale_errors_by_beam),
+        "bootstrap": int(bootstrap), "seed": seed, "scale_errors_by_beam": bool(scale_errors_by_beam),
         "error_scale": prob.err_scale, "ring_width_arcsec": prob.width, "beam_fwhm_arcsec": opts.beam,
         "distance_mpc": opts.dist, "intrinsic_axis_ratio": float(intrinsic_axis_ratio),
         "error_map": opts.err is not None, "north_angle_deg": float(grid.north_angle.value),
@@ -369,7 +369,7 @@ def fit_rings(
 # ---------------------------------------------------------------------------- options
 @dataclass(frozen=True, eq=False)
 class _Options:
-    """The checked inputs of :func:`fit_rings` as plain floats and arrays."""
+    """The checked inputs of :func:`fit_velocity_field` as plain floats and arrays."""
 
     vel: np.ndarray
     shape: tuple
@@ -389,15 +389,15 @@ class _Options:
     given: dict
 
 
-def _checked_options(velocity, grid, *, intensity, velocity_error, beam_fwhm, distance, stages, fix, ring_free,
-                     final_geometry, weighting, exclude_minor_axis, polynomial_degree, min_points, n_bootstrap,
+def _checked_options(velocity, grid, *, intensity, velocity_err, beam_fwhm, distance, stages, fix, ring_free,
+                     final_geometry, weighting, exclude_minor_axis, polynomial_degree, min_points, bootstrap,
                      radii, ring_width, given) -> _Options:
-    """Every input of :func:`fit_rings` checked, in the order the user meets the errors."""
+    """Every input of :func:`fit_velocity_field` checked, in the order the user meets the errors."""
     vel = val.velocity_map(velocity)
     shape = vel.shape
     grid = as_grid(grid)
     inten = val.same_shape(intensity, shape, "intensity")
-    err = val.error_map(velocity_error, shape)
+    err = val.error_map(velocity_err, shape)
     err, n_zero_err = val.drop_roundoff_errors(err, vel)
     val.enough_pixels(vel, err)
     beam = val.positive_scalar(beam_fwhm, u.arcsec, "beam_fwhm")
@@ -416,10 +416,10 @@ def _checked_options(velocity, grid, *, intensity, velocity_error, beam_fwhm, di
         raise KinemapError(f"'polynomial_degree' must be a whole number >= 0, got {polynomial_degree!r}")
     if int(min_points) != min_points or min_points < 5:
         raise KinemapError(f"'min_points' must be a whole number >= 5, got {min_points!r}")
-    if int(n_bootstrap) != n_bootstrap or n_bootstrap < 0:
-        raise KinemapError(f"'n_bootstrap' must be a whole number >= 0, got {n_bootstrap!r}")
-    if n_bootstrap == 1:
-        raise KinemapError("'n_bootstrap' must be 0 (no bootstrap) or at least 2 resamplings")
+    if int(bootstrap) != bootstrap or bootstrap < 0:
+        raise KinemapError(f"'bootstrap' must be a whole number >= 0, got {bootstrap!r}")
+    if bootstrap == 1:
+        raise KinemapError("'bootstrap' must be 0 (no bootstrap) or at least 2 resamplings")
     radii_v, width = val.radii_and_width(radii, ring_width)
 
     units = {"x_center": u.pix, "y_center": u.pix, "position_angle": u.deg, "inclination": u.deg,
@@ -437,7 +437,7 @@ def _checked_options(velocity, grid, *, intensity, velocity_error, beam_fwhm, di
 
 
 def _problem(opts: _Options, guess, *, weighting, min_points, expansion_in_geometry, scale_errors_by_beam,
-             progress, n_bootstrap):
+             progress, bootstrap):
     """The points, rings (default radii from the first guess) and options every stage shares,
     and the start geometry (given values, else first guesses) as per-ring arrays."""
     cfg = Settings(weighting=weighting, wedge=opts.wedge, min_points=int(min_points),
@@ -452,7 +452,7 @@ def _problem(opts: _Options, guess, *, weighting, min_points, expansion_in_geome
         radii_v = default_radii(pts, jac, guess, width, opts.pix)
     n = radii_v.size
     edges = np.column_stack([radii_v - width / 2, radii_v + width / 2])
-    show = progress if progress is not None else (n >= 20 or n_bootstrap > 0)
+    show = progress if progress is not None else (n >= 20 or bootstrap > 0)
 
     def bar(iterable, desc):
         return tqdm(iterable, desc=desc, disable=None if show else True, leave=False)

@@ -36,7 +36,7 @@ def harmonic_expansion(
     rings: Table,
     grid,
     *,
-    velocity_error=None,
+    velocity_err=None,
     min_points: int = 20,
 ) -> Table:
     """Third-order harmonic expansion of the velocity field along each ring.
@@ -46,14 +46,14 @@ def harmonic_expansion(
     velocity : array_like or Quantity, shape (ny, nx)
         Line-of-sight velocities (plain numbers km/s); NaN = no data.
     rings : Table
-        Ring geometry (a table from :func:`fit_rings`; its ``meta['ring_width']`` and the
+        Ring geometry (a table from :func:`fit_velocity_field`; its ``meta['ring_width']`` and the
         columns radius, position_angle, inclination, x_center, y_center are used).
     grid : SkyGrid or Quantity
         Sky geometry of the pixels.
-    velocity_error : array_like or Quantity, optional
+    velocity_err : array_like or Quantity, optional
         1-sigma errors; points are weighted by 1/error^2 and the coefficient errors are
         absolute, multiplied by sqrt(reduced chi^2) of the ring when that exceeds 1 (as in
-        :func:`fit_rings`).  Pixels with error 0 or below 1e-6 of the median error are
+        :func:`fit_velocity_field`).  Pixels with error 0 or below 1e-6 of the median error are
         skipped with a FitWarning.  Without it, points are weighted equally and the errors
         are scaled by the scatter about the fit.
     min_points : int, optional
@@ -68,10 +68,10 @@ def harmonic_expansion(
         because the expansion needs the whole ring.
     """
     vel = val.velocity_map(velocity)
-    err = val.error_map(velocity_error, vel.shape)
+    err = val.error_map(velocity_err, vel.shape)
     err, n_zero_err = val.drop_roundoff_errors(err, vel)
     if n_zero_err:
-        warnings.warn(f"{n_zero_err} pixels with a velocity have 'velocity_error' 0 (or below "
+        warnings.warn(f"{n_zero_err} pixels with a velocity have 'velocity_err' 0 (or below "
                       f"{val.ROUNDOFF_ERROR_FRACTION:g} of the median error) and were skipped", FitWarning,
                       stacklevel=2)
     grid = as_grid(grid)

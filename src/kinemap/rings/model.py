@@ -19,7 +19,7 @@ def model_velocity_field(rings: Table, shape: tuple[int, int], grid) -> u.Quanti
     Parameters
     ----------
     rings : `~astropy.table.Table`
-        A ring table as made by :func:`kinemap.rings.fit_rings` (columns radius, v_rot,
+        A ring table as made by :func:`kinemap.rings.fit_velocity_field` (columns radius, v_rot,
         v_exp, position_angle, inclination, v_sys, x_center, y_center; ``meta['ring_width']``
         in arcsec).  Rows with NaN in any of those columns are skipped.
     shape : (ny, nx)
@@ -48,7 +48,7 @@ def model_velocity_field(rings: Table, shape: tuple[int, int], grid) -> u.Quanti
     needed = ("radius", "v_rot", "v_exp", "position_angle", "inclination", "v_sys", "x_center", "y_center")
     missing = [c for c in needed if c not in rings.colnames]
     if missing:
-        raise KinemapError(f"'rings' table lacks column(s) {', '.join(missing)}; pass a table from fit_rings")
+        raise KinemapError(f"'rings' table lacks column(s) {', '.join(missing)}; pass a table from fit_velocity_field")
     if len(shape) != 2:
         raise KinemapError(f"'shape' must be (ny, nx), got {shape!r}")
     width = rings.meta.get("ring_width")

@@ -19,7 +19,7 @@ from kinemap.io.cube import CubeMeta
 from kinemap.io.products import Product
 from kinemap.io.results import StageResult
 from kinemap.rings.fit import RingFitResult
-from kinemap.rings.fit import fit_rings as _fit_on_grid
+from kinemap.rings.fit import fit_velocity_field
 from kinemap.rings.grid import SkyGrid
 from kinemap.units import KMS, to_value
 
@@ -263,8 +263,8 @@ def fit_velocity_arrays(v, err, inten, meta, *, center=None, position_angle=None
     if meta.beam is not None:
         b = meta.beam
         beam_fwhm = float(np.sqrt(b.major.to_value(u.arcsec) * b.minor.to_value(u.arcsec))) * u.arcsec
-    result = _fit_on_grid(
-        v, grid, intensity=inten, velocity_error=err, x_center=x0, y_center=y0,
+    result = fit_velocity_field(
+        v, grid, intensity=inten, velocity_err=err, x_center=x0, y_center=y0,
         position_angle=_quantity(position_angle, u.deg, "position_angle"),
         inclination=_quantity(inclination, u.deg, "inclination"),
         v_sys=_quantity(v_sys, KMS, "v_sys"), fix=list(fix or []),
@@ -273,7 +273,7 @@ def fit_velocity_arrays(v, err, inten, meta, *, center=None, position_angle=None
         final_geometry=final_geometry, weighting=weighting,
         exclude_minor_axis=_quantity(exclude_minor_axis, u.deg, "exclude_minor_axis"),
         min_points=int(min_points), expansion_in_geometry=bool(expansion_in_geometry),
-        n_bootstrap=int(bootstrap), seed=seed, progress=progress)
+        bootstrap=int(bootstrap), seed=seed, progress=progress)
     pv = None
     if cube is not None and pv_diagram and np.prod(cube.shape) * 8 < 2e9:
         # the slice reads the whole cube: skipped for very large cubes
