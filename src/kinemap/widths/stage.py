@@ -79,7 +79,8 @@ def parse_ratios(ratios) -> dict:
     return out
 
 
-def build_model(names, *, ratios=None, free_velocity=False) -> tuple[LineModel, list]:
+def build_model(names, *, ratios=None, free_velocity=False,
+                baseline: str = "none") -> tuple[LineModel, list]:
     """A tied LineModel for ``names`` and, per component, the index of its line.
 
     Lines fixed to another by a flux ratio follow it; otherwise the given order is kept,
@@ -112,7 +113,7 @@ def build_model(names, *, ratios=None, free_velocity=False) -> tuple[LineModel, 
         v = shared_v if shared_v is not None else new(f"velocity_{n}")
         comps.append((i, a, scale, v, s))
         index.append(i)
-    return LineModel(tuple(comps), baseline="none", param_names=tuple(params)), index
+    return LineModel(tuple(comps), baseline=baseline, param_names=tuple(params)), index
 
 
 @dataclass(frozen=True)
@@ -227,7 +228,8 @@ def line_widths(cube, *, lines, temperature=None, temperature_err=None, mu: floa
                 noise=None, mask=None, instrument_sigma=None, resolving_power=None,
                 free_velocity: bool = False, ratios=None, catalogue=None,
                 snr_threshold: float = 3.0, channel_response: str = "tophat",
-                max_memory=None, progress: bool = False, client=None) -> WidthBudget:
+                baseline: str = "none", max_memory=None, progress: bool = False,
+                client=None) -> WidthBudget:
     """Fit the named lines jointly and split their widths (see the module docstring).
 
     Parameters
@@ -253,6 +255,12 @@ def line_widths(cube, *, lines, temperature=None, temperature_err=None, mu: floa
         Fixed flux ratios ``{'NII_6583/NII_6548': 3.0}`` (the default ratio is always on).
     catalogue : str, optional
         Extra catalogue TOML file.
+    baseline : {'none', 'constant', 'linear'}
+        A baseline fitted with the lines, over the fitted channels, for continuum left
+        under them: 'none' for a continuum-subtracted cube (the default, and what the
+        continuum stage gives); 'constant' or 'linear' when a residual continuum remains
+        (e.g. the continuum stage was switched off, or the continuum curves under a wide
+        band).  A free baseline costs precision: it trades off against the lines' wings.
 
     Returns
     -------
@@ -270,7 +278,8 @@ def line_widths(cube, *, lines, temperature=None, temperature_err=None, mu: floa
         raise KinemapError(f"the temperature map has shape {temp.shape}, the cube's maps "
                            f"{cube.shape[1:]}; give a map on the cube's pixel grid")
     axes = line_axes(cube, line_list)
-    model, _ = build_model(names, ratios=parse_ratios(ratios), free_velocity=bool(free_velocity))
+    model, _ = build_model(names, ratios=parse_ratios(ratios), free_velocity=bool(free_velocity),
+                           baseline=baseline)
     sigma_instr = instrument_sigma_from(instrument_sigma=instrument_sigma,
                                         resolving_power=resolving_power)
     kw = {} if max_memory is None else {"max_memory": max_memory}
@@ -286,6 +295,7 @@ def line_widths(cube, *, lines, temperature=None, temperature_err=None, mu: floa
                           catalogue=cat)
     settings = dict(lines=names, temperature=None if temp is None or temp.ndim else str(temp),
                     mu=float(mu), free_velocity=bool(free_velocity), ratios=ratios,
+                    baseline=baseline,
                     instrument_sigma_kms=sigma_instr)
     return WidthBudget(budget=budget, fit=fit, names=tuple(names), component_of=component_of,
                        meta=cube.meta, intensity=fit.integrated_total()[0], settings=settings)
