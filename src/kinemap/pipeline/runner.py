@@ -89,7 +89,7 @@ def _maps_window(state):
     Cut once per run and kept on the state."""
     if state.window is None:
         window = state.config["maps"]["vrange"]
-        line = state.config["maps"]["line"]
+        line = ad.reference_line(state.config)  # [maps] line, or a widths run's first line
         if window is None and line:
             continuum = state.results.get("continuum")
             window = line_window_range(state.cube, line, centres=getattr(continuum, "lines", None),
