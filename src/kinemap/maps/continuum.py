@@ -152,7 +152,8 @@ def _peak_velocity(cube) -> float | None:
 def _free_channels(cube, *, line_free, line_window, catalogue):
     """(boolean line-free channels, {line: masked centre km/s}, velocity shift km/s)."""
     v = cube.velocity
-    free = np.ones(v.size, bool) if line_free is None else line_free_channels(v, line_free)
+    auto = line_free is None or (isinstance(line_free, str) and line_free.lower() == "auto")
+    free = np.ones(v.size, bool) if auto else line_free_channels(v, line_free)
     lines = line_positions(cube, catalogue=catalogue, margin=line_window)
     peak = _peak_velocity(cube)
     shift = 0.0
@@ -330,7 +331,7 @@ def _reference(cube, centres, line):
     return name, v, int(np.argmin(np.abs(cube.velocity - v)))
 
 
-def subtract_continuum(cube, *, method: str = "auto", line=None, line_free=None,
+def subtract_continuum(cube, *, method: str = "auto", line=None, line_free="auto",
                        line_window=200.0, clip: float = 3.0, catalogue=None,
                        write_cube: bool = False, max_memory: int = DEFAULT_MAX_MEMORY,
                        progress: bool = False, client=None) -> ContinuumResult:
@@ -345,9 +346,9 @@ def subtract_continuum(cube, *, method: str = "auto", line=None, line_free=None,
     line : str, optional
         Catalogue line at which the ``continuum`` map is evaluated (default: the first
         catalogue line in the band, else the band centre).
-    line_free : list of (v1, v2) velocity pairs (km/s), optional
+    line_free : 'auto', None or list of (v1, v2) velocity pairs (km/s)
         Only these channels may serve as line-free (the catalogue windows and clipping
-        still apply).
+        still apply); 'auto' or None: every channel outside the windows.
     line_window : float or Quantity (km/s)
         Half-width of the window masked around every catalogue line in the band.
     clip : float
