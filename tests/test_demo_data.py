@@ -277,7 +277,7 @@ def test_galaxy_flux_per_channel_is_symmetric_about_systemic(galaxy, galaxy_clea
 
 def test_galaxy_total_flux_and_beam_kernel_match_radio_beam(galaxy_clean):
     radio_beam = pytest.importorskip("radio_beam")
-    from kinemap.datasets.generate import _beam_kernel
+    from kinemap.datasets.galaxy import _beam_kernel
 
     t = galaxy_clean.truth
     hdr = galaxy_clean.hdu.header

@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 
 from kinemap.errors import KinemapError
+from kinemap.spectral.axes import SPECTRAL_CTYPES, axis_kind
 from kinemap.widths import (
     Line,
     air_to_vacuum,
@@ -155,6 +156,31 @@ def test_line_is_frozen():
 def test_medium_from_ctype(ctype, medium):
     # FITS spectral types (Greisen et al. 2006, A&A 446, 747)
     assert medium_from_ctype(ctype) == medium
+
+
+@pytest.mark.parametrize("ctype", sorted(SPECTRAL_CTYPES))
+def test_medium_from_ctype_agrees_with_axis_kind(ctype):
+    # The reader (axis_kind) and the line look-up (medium_from_ctype) read one CTYPE table.
+    # A wavelength axis's own medium is the medium of its rest values; a velocity axis has
+    # no medium of its own, and its rest values are in the medium its definition is linear
+    # in (Greisen et al. 2006): vacuum wavelength for optical velocity and redshift,
+    # frequency for radio and relativistic velocity.
+    for spelled in (ctype, ctype.lower() + "-F2W"):
+        kind = axis_kind(spelled)
+        assert medium_from_ctype(spelled) == kind.rest_medium
+        if kind.physical == "wavelength":
+            assert medium_from_ctype(spelled) == kind.medium
+        elif kind.physical == "velocity":
+            assert kind.medium is None
+            expected = "vacuum" if kind.convention == "optical" else "frequency"
+            assert medium_from_ctype(spelled) == expected
+        else:
+            assert kind.medium is None and medium_from_ctype(spelled) == "frequency"
+
+
+def test_vopt_has_no_medium_of_its_own_but_vacuum_rest_values():
+    assert axis_kind("VOPT").medium is None
+    assert medium_from_ctype("VOPT") == "vacuum"
 
 
 def test_medium_from_ctype_rejects_non_spectral():

@@ -86,7 +86,7 @@ def test_plot_bad_input(budget):
         plot_dispersion_vs_intensity(budget, np.ones(3))
     with pytest.raises(KinemapError, match=r"'keys' has unknown map\(s\) \['velocity'\]"):
         plot_width_maps(budget, keys=("velocity",))
-    with pytest.raises(KinemapError, match=r"'budget' must be a WidthBudget"):
+    with pytest.raises(KinemapError, match=r"'budget' must be a BudgetArrays"):
         plot_width_histograms({"a": 1})
     one_d = width_budget({"Halpha": [20.0, 21.0]}, {"Halpha": [0.1, 0.1]}, intrinsic=True, temperature=1e4 * u.K)
     with pytest.raises(KinemapError, match=r"map 'nonthermal_dispersion' must be 2D"):

@@ -9,66 +9,17 @@ shows the plots and a table of measured values against the values used to make t
 from __future__ import annotations
 
 import html
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
 
 from kinemap.pipeline.config import validate_config
-from kinemap.datasets.generate import write_demo_cubes
+from kinemap.datasets.cache import demo_cube_dir, demo_cubes, load_truth
 from kinemap.io.html import write_index
 from kinemap.io.outdir import StagedOutput
 from kinemap.pipeline.runner import run_config
 
-__all__ = ["run_demo", "SCENARIOS", "demo_cube_dir"]
-
-
-def demo_cube_dir() -> Path:
-    """Where the generated demo cubes are cached (``KINEMAP_CACHE`` or ~/.cache/kinemap),
-    one folder per version of the generator's code."""
-    import hashlib
-
-    from kinemap.datasets import generate as demo_data
-
-    base = os.environ.get("KINEMAP_CACHE") or os.path.join(
-        os.environ.get("XDG_CACHE_HOME") or os.path.join(Path.home(), ".cache"), "kinemap")
-    # keyed on the generator's source, so a changed generator never reuses stale cubes
-    key = hashlib.sha256(Path(demo_data.__file__).read_bytes()).hexdigest()[:12]
-    path = Path(base) / f"demo-cubes-{key}"
-    try:
-        path.mkdir(parents=True, exist_ok=True)
-        probe = path / ".write-test"
-        probe.touch()
-        probe.unlink()
-    except OSError:
-        path = Path(tempfile.mkdtemp(prefix="kinemap-demo-cubes-"))
-    return path
-
-
-def _cubes() -> dict:
-    folder = demo_cube_dir()
-    names = {"galaxy_hi": folder / "demo_galaxy_hi.fits",
-             "nebula_halpha": folder / "demo_nebula_halpha.fits"}
-    if not all(p.exists() for p in names.values()):
-        write_demo_cubes(folder, overwrite=True, full_arrays=True)
-    return {k: str(v) for k, v in names.items()}
-
-
-def load_truth(cube_path) -> dict:
-    """The truth written next to a demo cube (JSON; lists become arrays, null becomes NaN)."""
-    import json
-
-    p = Path(cube_path)
-    name = p.stem.replace("demo_", "")
-    raw = json.loads((p.parent / f"truth_{name}.json").read_text())
-    out = {}
-    for k, v in raw.items():
-        if isinstance(v, list):
-            out[k] = np.array(v, dtype=float)  # None -> nan
-        else:
-            out[k] = v
-    return out
+__all__ = ["run_demo", "SCENARIOS", "load_truth"]
 
 
 def _sn_mask(maps, limit=5.0):
@@ -187,7 +138,7 @@ def run_demo(out, *, overwrite: bool = False, progress: bool = True) -> Path:
     """Generate (or reuse) the demo cubes, run every stage, write ``out/index.html``."""
     import json
 
-    cubes = _cubes()
+    cubes = demo_cubes()
     sections = []
     with StagedOutput(out, overwrite=overwrite) as staged:
         for name, (heading, text, extra, compare) in SCENARIOS.items():

@@ -10,12 +10,12 @@ from kinemap.errors import KinemapError
 from kinemap.linefit import _kernels as K
 from kinemap.linefit._axes import Axes, prepare_axes
 from kinemap.linefit._model import ROLE_AMP, ROLE_SIG, ROLE_VEL, LineModel
+from kinemap.spectral.response import RESPONSES, channel_noise_correlation, response_variance
+from kinemap.spectral.response import noise_correlation as response_noise_correlation
 
 __all__ = ["RESPONSES", "Config", "make_config", "channel_noise_correlation", "default_bounds"]
 
-RESPONSES = ("tophat", "hanning", "none")
 _RESP_CODE = {"none": K.RESP_NONE, "tophat": K.RESP_TOPHAT, "hanning": K.RESP_HANNING}
-HANNING_KERNEL = (0.25, 0.5, 0.25)
 # White floor mixed into the channel correlation matrix, (1 - f) R + f I.  Hanning smoothing
 # leaves almost no noise at the Nyquist frequency, so R is nearly singular there (smallest
 # eigenvalue ~ 1e-7 for 128 channels); the floor caps the weight of that band at ~1/f so
@@ -23,25 +23,6 @@ HANNING_KERNEL = (0.25, 0.5, 0.25)
 # changes the weights of the smooth (line-like) part of the residual by ~f, i.e. errors by
 # ~0.05 per cent.
 CORRELATION_FLOOR = 1e-3
-
-
-def channel_noise_correlation(kernel=HANNING_KERNEL) -> np.ndarray:
-    """Correlation coefficients of white noise after smoothing along channels with ``kernel``.
-
-    For a kernel ``h`` the noise at lag ``k`` has covariance ``sum_i h_i h_{i+k}``; divided by
-    the lag-0 value this gives the correlation.  For Hanning ``[1/4, 1/2, 1/4]``:
-    variance 3/8, lag 1: 1/4 -> rho1 = 2/3, lag 2: 1/16 -> rho2 = 1/6, zero beyond.
-
-    Returns
-    -------
-    ndarray, shape (len(kernel),)
-        ``[1, rho1, rho2, ...]``.
-    """
-    h = np.asarray(kernel, dtype=float)
-    if h.ndim != 1 or h.size == 0 or not np.all(np.isfinite(h)) or not np.any(h):
-        raise KinemapError(f"'kernel' must be a 1-D sequence of finite numbers, got {kernel!r}")
-    full = np.correlate(h, h, mode="full")[h.size - 1:]
-    return full / full[0]
 
 
 def default_bounds(axes: Axes, model: LineModel, *, sigma_min_fraction: float = 0.25):
@@ -128,7 +109,7 @@ def make_config(velocity, nchan, model, *, instrument_sigma, response, noise_cor
         if noise_correlation == "none":
             rho = (0.0, 0.0)
         elif noise_correlation == "hanning":
-            c = channel_noise_correlation(HANNING_KERNEL)
+            c = response_noise_correlation("hanning")
             rho = (float(c[1]), float(c[2]))
         else:
             raise KinemapError(
@@ -152,8 +133,7 @@ def make_config(velocity, nchan, model, *, instrument_sigma, response, noise_cor
                 f"'noise_correlation' {noise_correlation!r} is not a valid correlation (matrix not positive definite); "
                 "check the lag correlations"
             ) from None
-    w = axes.channel_width
-    resp_var = {"none": 0.0 * w, "tophat": w**2 / 12.0, "hanning": w**2 / 12.0 + 0.5 * w**2}[response]
+    resp_var = response_variance(response, axes.channel_width)
     return Config(
         axes=axes,
         model=model,

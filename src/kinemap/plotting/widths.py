@@ -36,7 +36,7 @@ def _new_figure(figsize) -> Figure:
 def _check_budget(budget) -> None:
     if not all(hasattr(budget, k) for k in ("nonthermal_dispersion", "mach_number")):
         raise KinemapError(
-            f"'budget' must be a WidthBudget from kinemap.widths.width_budget, got {type(budget).__name__}"
+            f"'budget' must be a BudgetArrays from kinemap.widths.width_budget, got {type(budget).__name__}"
         )
 
 
@@ -56,12 +56,12 @@ def plot_width_maps(
 
     Parameters
     ----------
-    budget : WidthBudget
+    budget : BudgetArrays
         Result of :func:`kinemap.widths.width_budget` with 2D (y, x) maps.
     wcs : astropy.wcs.WCS, optional
         Celestial WCS of the maps; axes are then labelled in world coordinates.
     keys : tuple of str, optional
-        Which maps to draw: attribute names listed in :meth:`WidthBudget.products`
+        Which maps to draw: attribute names listed in :meth:`BudgetArrays.products`
         (value maps only, e.g. 'sound_speed', 'thermal_dispersion').
     cmap : str, optional
         Matplotlib colour map.
@@ -141,7 +141,7 @@ def plot_dispersion_vs_intensity(
 
     Parameters
     ----------
-    budget : WidthBudget
+    budget : BudgetArrays
     intensity : array or Quantity
         Intensity map (e.g. moment 0) with the pixel shape of the budget.
     log_intensity : bool, optional

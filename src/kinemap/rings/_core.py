@@ -331,6 +331,15 @@ def fit_geometry(pts: Points, jac, edges, geom0, free, vexp_free, vexp_fixed, cf
             # the membership kept changing; the last solution is kept but flagged
             fit_status = Status.NOT_CONVERGED
 
+    return _final_solution(pts, jac, geom, free, vexp_free, vexp_fixed, n, fit_status, jac_res, wa_jac,
+                           idx, ring, sub, wa, ring_ok)
+
+
+def _final_solution(pts, jac, geom, free, vexp_free, vexp_fixed, n, fit_status, jac_res, wa_jac,
+                    idx, ring, sub, wa, ring_ok) -> GeometryFit:
+    """v_rot, v_exp and every error with the geometry and membership :func:`fit_geometry`
+    settled on (``jac_res``, ``wa_jac``: the least-squares Jacobian and the angular weights
+    it was computed with, None if nothing was fitted)."""
     geom_err = {k: np.full(n, np.nan) for k in GEOM_NAMES}
     vrot = np.full(n, np.nan)
     vexp = np.full(n, np.nan)

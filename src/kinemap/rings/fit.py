@@ -45,13 +45,14 @@ from kinemap.units import KMS, to_value
 from kinemap.errors import FitWarning, KinemapError
 from kinemap.status import Status
 from kinemap.rings import _validate as val
-from kinemap.rings._core import INCL_BOUNDS, Points, Settings, fit_geometry, solve_linear
-from kinemap.rings._geometry import GEOM_NAMES, angular_weight, disk_coords, unwrap_deg
-from kinemap.rings._smooth import polynomial, running_median
+from kinemap.rings._core import Points, Settings
+from kinemap.rings._geometry import GEOM_NAMES
+from kinemap.rings._stages import (
+    RingProblem, default_radii, error_scale, global_summary, stage_final, stage_global, stage_rings
+)
 from kinemap.rings.grid import SkyGrid, as_grid
 from kinemap.rings.guess import FirstGuess, as_first_guess, guess_geometry
 from kinemap.rings.harmonics import harmonics_table
-from kinemap.rings.mass import dynamical_mass, physical_radius
 from kinemap.rings.model import model_field
 
 __all__ = ["RingFitResult", "fit_rings", "RING_COLUMNS"]
@@ -63,12 +64,6 @@ RING_COLUMNS = (
     "radius_kpc", "mass_enclosed", "status", "position_angle_err", "inclination_err", "v_sys_err",
     "x_center_err", "y_center_err",
 )
-
-_UNITS = {
-    "x_center": u.pix, "y_center": u.pix, "position_angle": u.deg, "inclination": u.deg, "v_sys": KMS,
-}
-# Gaussian beam solid angle = pi / (4 ln 2) FWHM^2 (common practice)
-_BEAM_AREA_FACTOR = np.pi / (4 * np.log(2))
 
 
 @dataclass(frozen=True, eq=False)
@@ -286,7 +281,118 @@ def fit_rings(
         Bad input (shapes, inclination outside (0, 90), centre outside the map, too few
         valid pixels, unknown option) or no ring could be fitted at all.
     """
-    # ---------------------------------------------------------------- validation
+    opts = _checked_options(
+        velocity, grid, intensity=intensity, velocity_error=velocity_error, beam_fwhm=beam_fwhm,
+        distance=distance, stages=stages, fix=fix, ring_free=ring_free, final_geometry=final_geometry,
+        weighting=weighting, exclude_minor_axis=exclude_minor_axis, polynomial_degree=polynomial_degree,
+        min_points=min_points, n_bootstrap=n_bootstrap, radii=radii, ring_width=ring_width,
+        given={"x_center": x_center, "y_center": y_center, "position_angle": position_angle,
+               "inclination": inclination, "v_sys": v_sys, "v_exp": v_exp})
+    if opts.n_zero_err:
+        # a zero error would give a pixel infinite weight and pin the whole fit to it
+        warnings.warn(
+            f"{opts.n_zero_err} pixels with a velocity have 'velocity_error' 0 (or below "
+            f"{val.ROUNDOFF_ERROR_FRACTION:g} of the median error) and were skipped; such errors usually "
+            "come from a moment-1 map whose mask keeps one channel", FitWarning, stacklevel=2)
+    vel, grid = opts.vel, opts.grid
+
+    timings = {}
+    clock = time.perf_counter()
+    scalar_given = {k: (float(np.median(v)) if np.ndim(v) == 1 else v) for k, v in opts.given.items()
+                    if k != "v_exp"}
+    guess = guess_geometry(vel, grid, opts.inten, opts.beam, scalar_given, float(intrinsic_axis_ratio))
+    first = as_first_guess(guess)
+    timings["first_guess"], clock = time.perf_counter() - clock, time.perf_counter()
+
+    prob, geom0 = _problem(opts, guess, weighting=weighting, min_points=min_points,
+                           expansion_in_geometry=expansion_in_geometry,
+                           scale_errors_by_beam=scale_errors_by_beam, progress=progress, n_bootstrap=n_bootstrap)
+    free1 = tuple(name for name in GEOM_NAMES if name not in opts.fixed)
+    glob = stage_global(prob, geom0, free1)
+    timings["stage1"], clock = time.perf_counter() - clock, time.perf_counter()
+
+    ran_rings = 2 in opts.stages
+    rings = stage_rings(prob, glob, opts.free_ring, ran_rings)
+    timings["stage2"], clock = time.perf_counter() - clock, time.perf_counter()
+
+    final = stage_final(prob, glob, rings, stages_t=opts.stages, free_ring=opts.free_ring,
+                        final_geometry=final_geometry, polynomial_degree=int(polynomial_degree),
+                        n_bootstrap=n_bootstrap, seed=seed, beam=opts.beam, distance=opts.dist,
+                        error_map=opts.err is not None)
+    stage_tables = {"global": glob.table}
+    if rings.table is not None:
+        stage_tables["rings"] = rings.table
+    stage_tables["final"] = table = final.table
+    n = prob.n
+    nfail = int(np.sum(final.status != Status.OK))
+    if nfail and nfail >= max(1, n // 4):
+        warnings.warn(f"{nfail} of {n} rings were not fitted cleanly (see the 'status' column)", FitWarning,
+                      stacklevel=2)
+    timings["stage3"], clock = time.perf_counter() - clock, time.perf_counter()
+
+    harm = harmonics_table(prob.pts, prob.jac, prob.radii, prob.edges, final.geom, prob.cfg.min_points)
+    for name in harm.colnames:
+        if name.endswith("_err"):
+            harm[name] *= prob.err_scale
+    timings["harmonics"], clock = time.perf_counter() - clock, time.perf_counter()
+    model = model_field({"radius": prob.radii, "v_rot": final.fit.v_rot, "v_exp": final.fit.v_exp, **final.geom},
+                        prob.width, opts.shape, prob.jac)
+    settings = {
+        "stages": opts.stages, "fix": opts.fixed, "ring_free": opts.free_ring, "final_geometry": final_geometry,
+        "polynomial_degree": int(polynomial_degree), "weighting": weighting, "exclude_minor_axis_deg": opts.wedge,
+        "min_points": int(min_points), "expansion_in_geometry": bool(expansion_in_geometry),
+        "n_bootstrap": int(n_bootstrap), "seed": seed, "scale_errors_by_beam": bool(scale_errors_by_beam),
+        "error_scale": prob.err_scale, "ring_width_arcsec": prob.width, "beam_fwhm_arcsec": opts.beam,
+        "distance_mpc": opts.dist, "intrinsic_axis_ratio": float(intrinsic_axis_ratio),
+        "error_map": opts.err is not None, "north_angle_deg": float(grid.north_angle.value),
+        "east_left": grid.east_left, "pixel_scale_arcsec": opts.pix,
+    }
+    timings["model"] = time.perf_counter() - clock
+    # plain lists, so the table's YAML header stays readable by any YAML parser
+    table.meta["settings"] = {k: list(v) if isinstance(v, tuple) else v for k, v in settings.items()}
+    gg = global_summary(glob, rings, prob.err_scale, opts.free_ring, ran_rings)
+    return RingFitResult(
+        table=table,
+        harmonics=harm,
+        stages=MappingProxyType(stage_tables),
+        global_geometry=MappingProxyType(gg),
+        first_guess=first,
+        model=model * KMS,
+        residual=(vel - model) * KMS,
+        velocity=vel * KMS,
+        grid=grid,
+        settings=MappingProxyType(settings),
+        timings=MappingProxyType(timings),
+    )
+
+
+# ---------------------------------------------------------------------------- options
+@dataclass(frozen=True, eq=False)
+class _Options:
+    """The checked inputs of :func:`fit_rings` as plain floats and arrays."""
+
+    vel: np.ndarray
+    shape: tuple
+    grid: SkyGrid
+    inten: np.ndarray | None
+    err: np.ndarray | None
+    n_zero_err: int
+    beam: float | None
+    dist: float | None
+    stages: tuple
+    fixed: tuple
+    free_ring: tuple
+    wedge: float
+    radii: np.ndarray | None
+    width: float | None
+    pix: float
+    given: dict
+
+
+def _checked_options(velocity, grid, *, intensity, velocity_error, beam_fwhm, distance, stages, fix, ring_free,
+                     final_geometry, weighting, exclude_minor_axis, polynomial_degree, min_points, n_bootstrap,
+                     radii, ring_width, given) -> _Options:
+    """Every input of :func:`fit_rings` checked, in the order the user meets the errors."""
     vel = val.velocity_map(velocity)
     shape = vel.shape
     grid = as_grid(grid)
@@ -316,48 +422,34 @@ def fit_rings(
         raise KinemapError("'n_bootstrap' must be 0 (no bootstrap) or at least 2 resamplings")
     radii_v, width = val.radii_and_width(radii, ring_width)
 
-    given = {
-        "x_center": val.geometry_value(x_center, u.pix, "x_center", shape),
-        "y_center": val.geometry_value(y_center, u.pix, "y_center", shape),
-        "position_angle": val.geometry_value(position_angle, u.deg, "position_angle", shape),
-        "inclination": val.geometry_value(inclination, u.deg, "inclination", shape),
-        "v_sys": val.geometry_value(v_sys, KMS, "v_sys", shape),
-        "v_exp": val.geometry_value(v_exp, KMS, "v_exp", shape),
-    }
+    units = {"x_center": u.pix, "y_center": u.pix, "position_angle": u.deg, "inclination": u.deg,
+             "v_sys": KMS, "v_exp": KMS}
+    given = {name: val.geometry_value(given[name], unit, name, shape) for name, unit in units.items()}
     for name, value in given.items():
         if np.ndim(value) == 1:
             if name not in fixed:
                 raise KinemapError(f"per-ring values of '{name}' are only allowed when it is fixed; add '{name}' to 'fix'")
             if radii_v is None or len(value) != radii_v.size:
                 raise KinemapError(f"per-ring '{name}' needs 'radii' with the same number of rings ({len(value)})")
-
-    cfg = Settings(weighting=weighting, wedge=wedge, min_points=int(min_points),
-                   min_side=max(3, int(min_points) // 4))
-    jac = grid.jacobian
     pix = grid.pixel_scale.to_value(u.arcsec)
+    return _Options(vel, shape, grid, inten, err, n_zero_err, beam, dist, stages_t, fixed, free_ring, wedge,
+                    radii_v, width, pix, given)
 
-    if n_zero_err:
-        # a zero error would give a pixel infinite weight and pin the whole fit to it
-        warnings.warn(
-            f"{n_zero_err} pixels with a velocity have 'velocity_error' 0 (or below "
-            f"{val.ROUNDOFF_ERROR_FRACTION:g} of the median error) and were skipped; such errors usually "
-            "come from a moment-1 map whose mask keeps one channel", FitWarning, stacklevel=2)
 
-    # ---------------------------------------------------------------- first guesses
-    timings = {}
-    clock = time.perf_counter()
-    scalar_given = {k: (float(np.median(v)) if np.ndim(v) == 1 else v) for k, v in given.items() if k != "v_exp"}
-    guess = guess_geometry(vel, grid, inten, beam, scalar_given, float(intrinsic_axis_ratio))
-    first = as_first_guess(guess)
-
-    timings["first_guess"], clock = time.perf_counter() - clock, time.perf_counter()
-
-    # ---------------------------------------------------------------- rings
-    pts = Points.from_maps(vel, err)
+def _problem(opts: _Options, guess, *, weighting, min_points, expansion_in_geometry, scale_errors_by_beam,
+             progress, n_bootstrap):
+    """The points, rings (default radii from the first guess) and options every stage shares,
+    and the start geometry (given values, else first guesses) as per-ring arrays."""
+    cfg = Settings(weighting=weighting, wedge=opts.wedge, min_points=int(min_points),
+                   min_side=max(3, int(min_points) // 4))
+    jac = opts.grid.jacobian
+    pts = Points.from_maps(opts.vel, opts.err)
+    width = opts.width
     if width is None:
-        width = max(beam, 2 * pix) if beam else 4 * pix
+        width = max(opts.beam, 2 * opts.pix) if opts.beam else 4 * opts.pix
+    radii_v = opts.radii
     if radii_v is None:
-        radii_v = _default_radii(pts, jac, guess, width, pix)
+        radii_v = default_radii(pts, jac, guess, width, opts.pix)
     n = radii_v.size
     edges = np.column_stack([radii_v - width / 2, radii_v + width / 2])
     show = progress if progress is not None else (n >= 20 or n_bootstrap > 0)
@@ -365,324 +457,15 @@ def fit_rings(
     def bar(iterable, desc):
         return tqdm(iterable, desc=desc, disable=None if show else True, leave=False)
 
+    given = opts.given
     geom0 = {}
     for name in GEOM_NAMES:
         value = given[name] if given[name] is not None else guess[name]
         geom0[name] = np.broadcast_to(np.asarray(value, float), (n,)).copy()
     vexp0 = np.broadcast_to(np.asarray(given["v_exp"] if given["v_exp"] is not None else 0.0, float), (n,)).copy()
-    vexp_final_free = "v_exp" not in fixed
-    vexp_geom_free = vexp_final_free and bool(expansion_in_geometry)
-
-    # ---------------------------------------------------------------- stage 1
-    free1 = tuple(name for name in GEOM_NAMES if name not in fixed)
-    s1 = fit_geometry(pts, jac, edges, geom0, free1, vexp_geom_free, None if vexp_geom_free else vexp0, cfg)
-    if not np.any(np.isfinite(s1.v_rot)):
-        raise KinemapError(
-            "no ring could be fitted: every ring has too few points on one side of the minor axis; "
-            "check the centre and ring radii, or lower 'min_points' / 'exclude_minor_axis'"
-        )
-    glob = {name: s1.geom[name].copy() for name in GEOM_NAMES}
-    glob_err = {name: s1.geom_err[name].copy() for name in GEOM_NAMES}
-    glob["position_angle"] = glob["position_angle"] % 360.0
-    stage_tables = {}
-    err_scale = 1.0
-    if beam and scale_errors_by_beam:
-        err_scale = max(1.0, float(np.sqrt(_BEAM_AREA_FACTOR * beam**2 / grid.pixel_area.to_value(u.arcsec**2))))
-    stage_tables["global"] = _stage_table(radii_v, s1.v_rot, s1.v_rot_err * err_scale, s1.v_exp,
-                                          s1.v_exp_err * err_scale, glob, _scaled(glob_err, err_scale),
-                                          s1.npoints, s1.status, width, "global")
-    stage_tables["global"].meta["chi2_reduced"] = _plain(s1.chi2_red)
-
-    timings["stage1"], clock = time.perf_counter() - clock, time.perf_counter()
-
-    # ---------------------------------------------------------------- stage 2
-    ring_geom = {name: glob[name].copy() for name in GEOM_NAMES}
-    ring_err = {name: glob_err[name].copy() for name in GEOM_NAMES}
-    ring_status = s1.status.copy()
-    if 2 in stages_t:
-        vr2 = np.full(n, np.nan)
-        vr2e = np.full(n, np.nan)
-        ve2 = np.full(n, np.nan)
-        ve2e = np.full(n, np.nan)
-        np2 = np.zeros(n, int)
-        for k in bar(range(n), "rings: stage 2"):
-            gk = {name: ring_geom[name][k:k + 1].copy() for name in GEOM_NAMES}
-            fit = fit_geometry(pts, jac, edges[k:k + 1], gk, free_ring, vexp_geom_free,
-                               None if vexp_geom_free else vexp0[k:k + 1], cfg)
-            ring_status[k] = fit.status[0]
-            np2[k] = fit.npoints[0]
-            if np.isfinite(fit.v_rot[0]):
-                vr2[k], vr2e[k], ve2[k], ve2e[k] = fit.v_rot[0], fit.v_rot_err[0], fit.v_exp[0], fit.v_exp_err[0]
-                for name in free_ring:
-                    ring_geom[name][k] = fit.geom[name][0]
-                    ring_err[name][k] = fit.geom_err[name][0]
-            else:
-                for name in free_ring:
-                    ring_geom[name][k] = np.nan
-                    ring_err[name][k] = np.nan
-        ring_geom["position_angle"] = unwrap_deg(ring_geom["position_angle"], glob["position_angle"][0])
-        shown = dict(ring_geom)
-        shown["position_angle"] = ring_geom["position_angle"] % 360.0
-        stage_tables["rings"] = _stage_table(radii_v, vr2, vr2e * err_scale, ve2, ve2e * err_scale, shown,
-                                             _scaled(ring_err, err_scale), np2, ring_status, width, "rings")
-
-    timings["stage2"], clock = time.perf_counter() - clock, time.perf_counter()
-
-    # ---------------------------------------------------------------- final geometry
-    final_g, final_e, how = _final_geometry(stages_t, final_geometry, int(polynomial_degree), radii_v,
-                                            glob, glob_err, ring_geom, ring_err, free_ring)
-    final_g["inclination"] = np.clip(final_g["inclination"], *INCL_BOUNDS)
-
-    # ---------------------------------------------------------------- final refit (stage 3)
-    s3 = fit_geometry(pts, jac, edges, final_g, (), vexp_final_free, None if vexp_final_free else vexp0, cfg)
-    halves = _halves(pts, jac, s3, final_g, n, cfg, vexp_final_free, None if vexp_final_free else vexp0)
-    v_app, v_rec = halves
-    random_r = s3.v_rot_err.copy()
-    random_e = s3.v_exp_err.copy()
-    geom_random = {name: final_e[name].copy() for name in GEOM_NAMES}
-    if n_bootstrap:
-        rng = np.random.default_rng(seed)
-        bs = _bootstrap(pts, jac, edges, final_g, s3, free_ring, vexp_final_free,
-                        None if vexp_final_free else vexp0, cfg, int(n_bootstrap), rng, bar)
-        random_r, random_e = bs["v_rot"], bs["v_exp"]
-        for name in free_ring:
-            geom_random[name] = bs[name]
-    sys_half = np.abs(v_rec - v_app) / 2
-    v_rot_err = np.sqrt((random_r * err_scale) ** 2 + np.nan_to_num(sys_half) ** 2)
-    v_exp_err = random_e * err_scale
-    status = s3.status.copy()
-    if 2 in stages_t and how == "rings":
-        # the ring's own stage-2 verdict (e.g. inclination at a bound) carries over
-        carry = (status == Status.OK) & np.isin(ring_status, (Status.NOT_CONVERGED, Status.AT_BOUND))
-        status[carry] = ring_status[carry]
-    failed = ~np.isfinite(s3.v_rot)
-    final_shown = {name: np.where(failed, np.nan, final_g[name]) for name in GEOM_NAMES}
-    final_shown["position_angle"] = final_shown["position_angle"] % 360.0
-    final_err = {name: np.where(failed, np.nan, geom_random[name] * err_scale) for name in GEOM_NAMES}
-
-    table = _stage_table(radii_v, s3.v_rot, v_rot_err, s3.v_exp, v_exp_err, final_shown, final_err,
-                         s3.npoints, status, width, "final", v_app=v_app, v_rec=v_rec,
-                         beam=beam, distance=dist)
-    table.meta["v_rot_err"] = (
-        "sqrt(random^2 + ((v_rot_receding - v_rot_approaching)/2)^2); random = "
-        + ("bootstrap" if n_bootstrap else "formal" + (" (x sqrt(chi2_reduced of the ring) when that exceeds 1)"
-                                                      if err is not None else ""))
-        + (f" x {err_scale:.3g} (pixels per beam)" if err_scale > 1 else "")
-    )
-    table.meta["geometry"] = how
-    table.meta["chi2_reduced"] = _plain(s3.chi2_red)
-    table.meta["geometry_err"] = (
-        _GEOMETRY_ERR_RECIPE + (f"; x {err_scale:.3g} (pixels per beam)" if err_scale > 1 else "")
-        + ("; bootstrap for " + ", ".join(free_ring) if n_bootstrap and free_ring else "")
-        + f"; values and errors from {how!r} geometry")
-    stage_tables["final"] = table
-
-    nfail = int(np.sum(status != Status.OK))
-    if nfail and nfail >= max(1, n // 4):
-        warnings.warn(f"{nfail} of {n} rings were not fitted cleanly (see the 'status' column)", FitWarning,
-                      stacklevel=2)
-
-    timings["stage3"], clock = time.perf_counter() - clock, time.perf_counter()
-    harm = harmonics_table(pts, jac, radii_v, edges, final_shown, cfg.min_points)
-    for name in harm.colnames:
-        if name.endswith("_err"):
-            harm[name] *= err_scale
-    timings["harmonics"], clock = time.perf_counter() - clock, time.perf_counter()
-    model = model_field({"radius": radii_v, "v_rot": s3.v_rot, "v_exp": s3.v_exp, **final_shown}, width, shape, jac)
-    settings = {
-        "stages": stages_t, "fix": fixed, "ring_free": free_ring, "final_geometry": final_geometry,
-        "polynomial_degree": int(polynomial_degree), "weighting": weighting, "exclude_minor_axis_deg": wedge,
-        "min_points": int(min_points), "expansion_in_geometry": bool(expansion_in_geometry),
-        "n_bootstrap": int(n_bootstrap), "seed": seed, "scale_errors_by_beam": bool(scale_errors_by_beam),
-        "error_scale": err_scale, "ring_width_arcsec": width, "beam_fwhm_arcsec": beam, "distance_mpc": dist,
-        "intrinsic_axis_ratio": float(intrinsic_axis_ratio), "error_map": err is not None,
-        "north_angle_deg": float(grid.north_angle.value), "east_left": grid.east_left,
-        "pixel_scale_arcsec": pix,
-    }
-    timings["model"] = time.perf_counter() - clock
-    # plain lists, so the table's YAML header stays readable by any YAML parser
-    table.meta["settings"] = {k: list(v) if isinstance(v, tuple) else v for k, v in settings.items()}
-    gg = {}
-    for name in GEOM_NAMES:
-        # one shared value; the median when the user fixed per-ring values
-        gg[name] = float(np.median(glob[name])) * _UNITS[name]
-        gg[name + "_err"] = float(np.median(glob_err[name])) * err_scale * _UNITS[name]
-    if 2 in stages_t:
-        for name in free_ring:
-            gg[name + "_ring_scatter"] = _ring_scatter(ring_geom[name], ring_status) * _UNITS[name]
-    return RingFitResult(
-        table=table,
-        harmonics=harm,
-        stages=MappingProxyType(stage_tables),
-        global_geometry=MappingProxyType(gg),
-        first_guess=first,
-        model=model * KMS,
-        residual=(vel - model) * KMS,
-        velocity=vel * KMS,
-        grid=grid,
-        settings=MappingProxyType(settings),
-        timings=MappingProxyType(timings),
-    )
-
-
-# ---------------------------------------------------------------------------- helpers
-_GEOMETRY_ERR_RECIPE = (
-    "formal (J^T W J)^-1 in sandwich form for the angular weights; absolute with an error map "
-    "(x sqrt(chi2_reduced of the fit) when that exceeds 1), scaled by the scatter about the fit without one"
-)
-
-
-def _plain(x) -> float | None:
-    """A float for a table's YAML header (None for NaN)."""
-    return float(x) if np.isfinite(x) else None
-
-
-def _ring_scatter(values, status):
-    """Standard deviation of the cleanly fitted stage-2 ring values over sqrt(their number).
-
-    An empirical error of a global value, to set beside the formal one: independent of
-    the error map and the noise model, larger when the disk warps.  NaN for < 3 rings.
-    """
-    v = np.asarray(values, float)[(np.asarray(status) == Status.OK) & np.isfinite(values)]
-    if v.size < 3:
-        return np.nan
-    return float(np.std(v, ddof=1) / np.sqrt(v.size))
-
-
-def _scaled(errs, factor):
-    return {k: v * factor for k, v in errs.items()}
-
-
-def _default_radii(pts: Points, jac, guess, width, pix, min_coverage=0.25):
-    """Rings from the centre out to the last one at least ``min_coverage`` covered."""
-    r, _, _ = disk_coords(jac, pts.x, pts.y, guess["x_center"], guess["y_center"], guess["position_angle"],
-                          guess["inclination"])
-    nmax = int(np.ceil(r.max() / width)) if r.size else 0
-    if nmax == 0:
-        raise KinemapError("'velocity' has no valid pixels away from the centre; check the map and the centre")
-    counts = np.bincount(np.minimum((r / width).astype(int), nmax), minlength=nmax + 1)[:nmax]
-    k = np.arange(nmax)
-    area = np.pi * ((k + 1) ** 2 - k**2) * width**2 * np.cos(np.deg2rad(guess["inclination"]))
-    expected = area / (pix * pix)
-    covered = np.nonzero(counts / expected >= min_coverage)[0]
-    if covered.size == 0:
-        raise KinemapError(
-            "no ring is at least 25% covered by valid pixels; give 'radii' and 'ring_width' explicitly"
-        )
-    nring = int(covered.max()) + 1
-    return (np.arange(nring) + 0.5) * width
-
-
-def _final_geometry(stages_t, mode, degree, radius, glob, glob_err, ring_geom, ring_err, free_ring):
-    final = {name: glob[name].copy() for name in GEOM_NAMES}
-    errs = {name: glob_err[name].copy() for name in GEOM_NAMES}
-    if 2 not in stages_t:
-        return final, errs, "global"
-    how = "rings" if 3 not in stages_t else mode
-    if how == "global":
-        return final, errs, how
-    for name in free_ring:
-        vals, e = ring_geom[name], ring_err[name]
-        if how == "polynomial":
-            sm, se = polynomial(radius, vals, e, degree)
-        elif how == "median":
-            sm, se = running_median(vals, e)
-        else:
-            sm, se = vals.copy(), e.copy()
-        # rings without a usable stage-2 value take the nearest ring's value (linear
-        # between rings, constant beyond the ends); the global value if no ring has one
-        bad = ~np.isfinite(sm)
-        if bad.all():
-            sm, se = glob[name].copy(), glob_err[name].copy()
-        elif bad.any():
-            good = ~bad
-            sm[bad] = np.interp(radius[bad], radius[good], sm[good])
-            se[bad] = np.interp(radius[bad], radius[good], np.nan_to_num(se[good], nan=np.nanmax(se[good]) if np.isfinite(se[good]).any() else 0.0))
-        final[name], errs[name] = sm, se
-    return final, errs, how
-
-
-def _halves(pts, jac, fit, geom, n, cfg, vexp_free, vexp_fixed):
-    """v_rot of the approaching (cos theta < 0) and receding (cos theta > 0) halves."""
-    app = np.full(n, np.nan)
-    rec = np.full(n, np.nan)
-    if fit.idx.size == 0:
-        return app, rec
-    sub = pts.take(fit.idx)
-    ring = fit.ring
-    g = {name: geom[name][ring] for name in GEOM_NAMES}
-    _, c, s = disk_coords(jac, sub.x, sub.y, g["x_center"], g["y_center"], g["position_angle"], g["inclination"])
-    si = np.sin(np.deg2rad(g["inclination"]))
-    wa = angular_weight(c, cfg.weighting, cfg.wedge)
-    w = wa * sub.inv_var
-    ok_rings = np.isfinite(fit.v_rot)
-    for sign, out in ((-1, app), (1, rec)):
-        side = (np.sign(c) == sign) & (wa > 0)
-        sol = solve_linear(ring[side], n, sub.v[side] - g["v_sys"][side], (c * si)[side], (s * si)[side], w[side],
-                           vexp_free, vexp_fixed)
-        cnt = np.bincount(ring[side], minlength=n)
-        good = ok_rings & sol.ok & (cnt >= cfg.min_side)
-        out[good] = sol.v_rot[good]
-    return app, rec
-
-
-def _bootstrap(pts, jac, edges, geom, fit, free_ring, vexp_free, vexp_fixed, cfg, nboot, rng, bar):
-    """Std of each ring's parameters over ``nboot`` resamplings of its points."""
-    n = len(edges)
-    out = {name: np.full(n, np.nan) for name in ("v_rot", "v_exp", *GEOM_NAMES)}
-    for k in bar(range(n), "rings: bootstrap"):
-        if not np.isfinite(fit.v_rot[k]):
-            continue
-        members = fit.idx[fit.ring == k]
-        gk = {name: geom[name][k:k + 1].copy() for name in GEOM_NAMES}
-        vf = None if vexp_fixed is None else vexp_fixed[k:k + 1]
-        samples = []
-        for _ in range(nboot):
-            pick = rng.integers(0, members.size, members.size)
-            res = fit_geometry(pts, jac, edges[k:k + 1], gk, free_ring, vexp_free, vf, cfg,
-                               members=(members[pick], np.zeros(members.size, int)))
-            samples.append([res.v_rot[0], res.v_exp[0]] + [res.geom[name][0] for name in GEOM_NAMES])
-        arr = np.array(samples, float)
-        arr[:, 2 + GEOM_NAMES.index("position_angle")] = unwrap_deg(
-            arr[:, 2 + GEOM_NAMES.index("position_angle")], geom["position_angle"][k])
-        good = np.all(np.isfinite(arr[:, :1]), axis=1)
-        if good.sum() >= 2:
-            std = np.nanstd(arr[good], axis=0, ddof=1)
-            for j, name in enumerate(("v_rot", "v_exp", *GEOM_NAMES)):
-                out[name][k] = std[j]
-    if not vexp_free:
-        out["v_exp"][:] = np.nan
-    return out
-
-
-def _stage_table(radius, v_rot, v_rot_err, v_exp, v_exp_err, geom, geom_err, npoints, status, width, stage,
-                 *, v_app=None, v_rec=None, beam=None, distance=None):
-    t = Table()
-    t["radius"] = radius * u.arcsec
-    t["v_rot"] = v_rot * KMS
-    t["v_rot_err"] = v_rot_err * KMS
-    t["v_exp"] = v_exp * KMS
-    t["v_exp_err"] = v_exp_err * KMS
-    for name in ("position_angle", "inclination", "v_sys", "x_center", "y_center"):
-        t[name] = geom[name] * _UNITS[name]
-    t["npoints"] = np.asarray(npoints, int)
-    if stage == "final":
-        t["v_rot_approaching"] = v_app * KMS
-        t["v_rot_receding"] = v_rec * KMS
-        smeared = radius < 2 * beam if beam else np.zeros(radius.size, bool)
-        t["beam_smeared"] = smeared
-        if distance is not None:
-            r_kpc = physical_radius(radius, distance)
-            t["radius_kpc"] = r_kpc
-            t["mass_enclosed"] = dynamical_mass(v_rot, r_kpc).to(u.M_sun)
-    t["status"] = np.asarray(status, int)
-    for name in ("position_angle", "inclination", "v_sys", "x_center", "y_center"):
-        t[name + "_err"] = geom_err[name] * _UNITS[name]
-    t.meta["ring_width"] = float(width)
-    t.meta["stage"] = stage
-    t.meta["status_codes"] = "kinemap.status.Status: 0 OK, 1 NOT_CONVERGED, 2 AT_BOUND, 5 NO_DATA, 7 FAILED"
-    t.meta["conventions"] = (
-        "PA east of north to the receding half of the major axis; inclination 0 = face-on; "
-        "x_center, y_center 0-based pixels; v_exp > 0: minor-axis half at PA+90 deg redshifted"
-    )
-    return t
+    vexp_final_free = "v_exp" not in opts.fixed
+    err_scale = error_scale(opts.beam, scale_errors_by_beam, opts.grid.pixel_area.to_value(u.arcsec**2))
+    prob = RingProblem(pts=pts, jac=jac, radii=radii_v, edges=edges, width=width, cfg=cfg, vexp0=vexp0,
+                       vexp_geom_free=vexp_final_free and bool(expansion_in_geometry),
+                       vexp_final_free=vexp_final_free, err_scale=err_scale, bar=bar)
+    return prob, geom0

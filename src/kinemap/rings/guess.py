@@ -150,35 +150,12 @@ def guess_geometry(vel, grid: SkyGrid, inten, beam_arcsec, given, q0=0.0):
     jac = grid.jacobian
     pix = grid.pixel_scale.to_value(u.arcsec)
     beam_pix = beam_arcsec / pix if beam_arcsec else 0.0
-    ny, nx = vel.shape
     valid = np.isfinite(vel)
     methods = {}
     out = {}
 
     # -- 1. centre
-    if given["x_center"] is not None and given["y_center"] is not None:
-        cx, cy = given["x_center"], given["y_center"]
-        methods["center"] = "given"
-    else:
-        if inten is not None and np.isfinite(inten).any():
-            cx, cy = _intensity_centre(inten, max(beam_pix / 2.3548, 1.0))
-            how = "intensity centroid"
-        else:
-            yy, xx = np.nonzero(valid)
-            cx, cy = float(xx.mean()), float(yy.mean())
-            how = "centroid of valid pixels"
-        span = max(3 * beam_pix, 0.05 * min(nx, ny), 3.0)
-        sym = _symmetry_centre(vel, cx, cy, span, given["v_sys"])
-        if sym is not None:
-            cx, cy = sym
-            how += " + velocity symmetry"
-        if given["x_center"] is not None:
-            cx = given["x_center"]
-        if given["y_center"] is not None:
-            cy = given["y_center"]
-        methods["center"] = how
-    cx = float(np.clip(cx, 0, nx - 1))
-    cy = float(np.clip(cy, 0, ny - 1))
+    cx, cy, methods["center"] = _guess_centre(vel, valid, inten, beam_pix, given)
     out["x_center"], out["y_center"] = cx, cy
 
     # -- 2. systemic velocity
@@ -247,6 +224,35 @@ def guess_geometry(vel, grid: SkyGrid, inten, beam_arcsec, given, q0=0.0):
     out["position_angle_photometric"] = float(pa_phot)
     out["methods"] = methods
     return out
+
+
+def _guess_centre(vel, valid, inten, beam_pix, given):
+    """Centre (pix, inside the map) and how it was found: given, else the intensity (or
+    valid-pixel) centroid refined by the point symmetry of the velocity field."""
+    ny, nx = vel.shape
+    if given["x_center"] is not None and given["y_center"] is not None:
+        cx, cy = given["x_center"], given["y_center"]
+        how = "given"
+    else:
+        if inten is not None and np.isfinite(inten).any():
+            cx, cy = _intensity_centre(inten, max(beam_pix / 2.3548, 1.0))
+            how = "intensity centroid"
+        else:
+            yy, xx = np.nonzero(valid)
+            cx, cy = float(xx.mean()), float(yy.mean())
+            how = "centroid of valid pixels"
+        span = max(3 * beam_pix, 0.05 * min(nx, ny), 3.0)
+        sym = _symmetry_centre(vel, cx, cy, span, given["v_sys"])
+        if sym is not None:
+            cx, cy = sym
+            how += " + velocity symmetry"
+        if given["x_center"] is not None:
+            cx = given["x_center"]
+        if given["y_center"] is not None:
+            cy = given["y_center"]
+    cx = float(np.clip(cx, 0, nx - 1))
+    cy = float(np.clip(cy, 0, ny - 1))
+    return cx, cy, how
 
 
 def _nan_smooth(img, sigma):

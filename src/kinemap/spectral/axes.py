@@ -20,6 +20,7 @@ air across the band, a few parts in 1e7 for optical lines; this is the approxima
 from __future__ import annotations
 
 from dataclasses import dataclass
+from types import MappingProxyType
 
 import astropy.units as u
 import numpy as np
@@ -29,6 +30,7 @@ from kinemap.errors import KinemapError
 __all__ = [
     "CONVENTIONS",
     "AxisKind",
+    "SPECTRAL_CTYPES",
     "axis_kind",
     "to_velocity",
     "from_velocity",
@@ -55,29 +57,57 @@ class AxisKind:
         The convention this axis implies by default (frequency -> radio,
         wavelength -> optical, a velocity axis keeps its own).
     medium : {'air', 'vacuum', None}
-        For wavelength axes only.
+        The medium of the axis values: for wavelength axes only.
     """
 
     physical: str
     convention: str
     medium: str | None = None
 
+    @property
+    def rest_medium(self) -> str:
+        """Medium of the rest values that go with this axis: 'air', 'vacuum' or 'frequency'.
+
+        A wavelength axis needs rest wavelengths in its own medium.  A velocity axis has no
+        medium of its own (``medium`` is None: its values are velocities, nothing on it is
+        converted between air and vacuum), but the FITS standard (Greisen et al. 2006, A&A
+        446, 747) defines each velocity through the quantity it is linear in: radio
+        velocity through frequency, optical velocity and redshift (VOPT, ZOPT, FELO)
+        through the VACUUM wavelength (RESTWAV is a vacuum value there), so the rest value
+        of an optical-velocity axis is a vacuum wavelength, and 'vacuum' is the answer for
+        looking a line up.  Frequency and vacuum wavelength are equivalent through c, so
+        frequency-like and relativistic axes take 'frequency'.
+        """
+        if self.physical == "wavelength":
+            return self.medium
+        if self.physical == "velocity" and self.convention == "optical":
+            return "vacuum"
+        return "frequency"
+
+
+# The one table of FITS spectral axis types (Greisen et al. 2006, A&A 446, 747, table 1),
+# keyed by the first four characters; ``axis_kind`` and ``catalogue.medium_from_ctype``
+# both read it.  Listed in the order error messages name them.
+SPECTRAL_CTYPES = MappingProxyType({
+    "AWAV": AxisKind("wavelength", "optical", "air"),
+    "WAVE": AxisKind("wavelength", "optical", "vacuum"),
+    "VOPT": AxisKind("velocity", "optical"),
+    "ZOPT": AxisKind("velocity", "optical"),
+    "FELO": AxisKind("velocity", "optical"),
+    "FREQ": AxisKind("frequency", "radio"),
+    "ENER": AxisKind("frequency", "radio"),
+    "WAVN": AxisKind("frequency", "radio"),
+    "VRAD": AxisKind("velocity", "radio"),
+    "VELO": AxisKind("velocity", "relativistic"),
+    "BETA": AxisKind("velocity", "relativistic"),
+})
+
 
 def axis_kind(ctype: str) -> AxisKind:
     """Classify a spectral CTYPE (after wcslib's repairs) such as 'FREQ', 'AWAV', 'VOPT-F2W'."""
     base = ctype.split("-")[0].strip().upper()
-    if base in ("FREQ", "ENER", "WAVN"):
-        return AxisKind("frequency", "radio")
-    if base == "WAVE":
-        return AxisKind("wavelength", "optical", "vacuum")
-    if base == "AWAV":
-        return AxisKind("wavelength", "optical", "air")
-    if base == "VRAD":
-        return AxisKind("velocity", "radio")
-    if base in ("VOPT", "ZOPT", "FELO"):
-        return AxisKind("velocity", "optical")
-    if base in ("VELO", "BETA"):
-        return AxisKind("velocity", "relativistic")
+    if base in SPECTRAL_CTYPES:
+        return SPECTRAL_CTYPES[base]
     raise KinemapError(
         f"spectral axis type {ctype!r} is not supported; kinemap reads FREQ, WAVE, AWAV, "
         "VRAD, VOPT and VELO axes"

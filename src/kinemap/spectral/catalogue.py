@@ -22,6 +22,7 @@ from kinemap.units import KMS, to_value
 from kinemap.errors import KinemapError
 from kinemap.spectral import airvac as _airvac
 from kinemap.spectral import _catalogue_parse as _parse
+from kinemap.spectral.axes import SPECTRAL_CTYPES
 
 __all__ = [
     "Line",
@@ -211,25 +212,6 @@ def get_line(
     return line
 
 
-# FITS spectral axis types (Greisen et al. 2006, A&A 446, 747, table 1).  Velocity axes map to
-# the quantity their definition is linear in: radio velocity to frequency, optical velocity
-# and redshift to vacuum wavelength.  Vacuum wavelength and frequency are equivalent (c),
-# only air wavelengths need their own rest value.
-_CTYPE_MEDIUM = {
-    "AWAV": "air",
-    "WAVE": "vacuum",
-    "VOPT": "vacuum",
-    "ZOPT": "vacuum",
-    "FELO": "vacuum",
-    "FREQ": "frequency",
-    "ENER": "frequency",
-    "WAVN": "frequency",
-    "VRAD": "frequency",
-    "VELO": "frequency",
-    "BETA": "frequency",
-}
-
-
 def medium_from_ctype(ctype: str) -> str:
     """Medium of rest values that matches a FITS spectral CTYPE.
 
@@ -241,12 +223,13 @@ def medium_from_ctype(ctype: str) -> str:
     if not isinstance(ctype, str):
         raise KinemapError(f"'ctype' must be a FITS CTYPE string such as 'AWAV', got {ctype!r}")
     key = ctype.strip().upper()[:4]
-    if key not in _CTYPE_MEDIUM:
+    if key not in SPECTRAL_CTYPES:
         raise KinemapError(
             f"'ctype' {ctype!r} is not a spectral axis type; expected one of "
-            f"{', '.join(_CTYPE_MEDIUM)} (optionally with an algorithm code like '-F2W')"
+            f"{', '.join(SPECTRAL_CTYPES)} (optionally with an algorithm code like '-F2W')"
         )
-    return _CTYPE_MEDIUM[key]
+    # the table's rest medium: see AxisKind.rest_medium for why VOPT gives 'vacuum'
+    return SPECTRAL_CTYPES[key].rest_medium
 
 
 def air_to_vacuum(wavelength: u.Quantity) -> u.Quantity:

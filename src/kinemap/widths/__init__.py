@@ -9,7 +9,7 @@ Conventions: dispersion = Gaussian sigma (FWHM = 2.35482 sigma), velocities in k
 temperatures in K, uncertainties 1 sigma, NaN = no data, status codes from
 :mod:`kinemap.status`.
 """
-from kinemap.widths.budget import WidthBudget as BudgetArrays
+from kinemap.widths.budget import BudgetArrays
 from kinemap.widths.budget import width_budget
 from kinemap.widths.stage import WidthBudget, line_widths
 from kinemap.spectral.catalogue import (

@@ -1,4 +1,5 @@
-"""Per-pixel linear solves of the width budget (private; plain float arrays, no units).
+"""Per-pixel solves of the width budget and the maps derived from them (private; plain
+float arrays in km/s, K and amu; the status bookkeeping is in ``budget``).
 
 Model for line i in one pixel:  z_i = a * x_i + b, with
   z_i = sigma_i^2 - instrument^2 - channel^2 - fine_structure_i   [km^2/s^2]
@@ -8,6 +9,10 @@ Model for line i in one pixel:  z_i = a * x_i + b, with
 Arrays are (n_lines, n_pixels); everything is vectorised over pixels.
 """
 from __future__ import annotations
+
+import numpy as np
+
+from kinemap.widths.thermal import K_OVER_AMU
 
 
 def square_variance(sigma, sigma_err):
@@ -56,3 +61,40 @@ def solve_temperature(z, var_z, x):
     b = (sxx * sz - sx * sxz) / det
     chi2 = (w * (z - a * xc - b) ** 2).sum(axis=0)
     return a, b, s / det, sxx / det, -sx / det, chi2
+
+
+def solve_budget(z, var_z, x, t_k, t_err):
+    """(a, b, var_a, var_b, cov_ab, chi2) per pixel: fitted when ``t_k`` is None (lines of
+    different mass), else at the assumed temperature ``t_k`` +- ``t_err`` (K, flat arrays;
+    chi2 is then None)."""
+    if t_k is None:
+        return solve_temperature(z, var_z, x)
+    a = K_OVER_AMU * t_k
+    var_a = (K_OVER_AMU * t_err) ** 2
+    b, var_b, cov_ab = solve_fixed_temperature(z, var_z, x, a, var_a)
+    return a, b, var_a, var_b, cov_ab, None
+
+
+def derived_maps(a, b, var_a, var_b, cov_ab, x, y, particle_mass_amu):
+    """Physical maps from the solution, errors by first-order propagation (km/s, K).
+
+    Keys: snt, snt_err (sigma_nt = sqrt(b)), temp, temp_err, cov_t_snt, th (thermal
+    dispersion of the first line, mass 1 / x[0]), cs, cs_err (sound speed for a mean
+    particle mass ``particle_mass_amu``), mach, mach_err (sqrt(3) sigma_nt / c_s) and
+    per_line (sqrt(y), each line's width with instrument and channel removed).
+    """
+    snt = np.sqrt(b)
+    snt_err = np.sqrt(var_b) / (2.0 * snt)
+    temp = a / K_OVER_AMU
+    temp_err = np.sqrt(var_a) / K_OVER_AMU
+    cov_t_snt = cov_ab / K_OVER_AMU / (2.0 * snt)
+    th = np.sqrt(a * x[0])
+    cs = np.sqrt(a / particle_mass_amu)
+    cs_err = cs * 0.5 * np.sqrt(var_a) / a
+    mach = np.sqrt(3.0) * snt / cs
+    # relative variance of M = sqrt(3 b) / sqrt(a / (mu m_H)); the a-terms vanish when
+    # T is exact (var_a = cov_ab = 0)
+    rel = var_b / (4 * b**2) + var_a / (4 * a**2) - cov_ab / (2 * a * b)
+    mach_err = mach * np.sqrt(np.maximum(rel, 0.0))
+    return {"snt": snt, "snt_err": snt_err, "temp": temp, "temp_err": temp_err, "cov_t_snt": cov_t_snt,
+            "th": th, "cs": cs, "cs_err": cs_err, "mach": mach, "mach_err": mach_err, "per_line": np.sqrt(y)}

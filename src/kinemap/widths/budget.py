@@ -20,11 +20,9 @@ from kinemap.errors import KinemapError
 from kinemap.status import Status
 from kinemap.widths import _solve
 from kinemap.spectral.catalogue import Line, _resolve, load_catalogue
-from kinemap.widths.thermal import (
-    HYDROGEN_MASS_AMU, K_OVER_AMU, MU_MOLECULAR, mu_value, temperature_kelvin
-)
+from kinemap.widths.thermal import HYDROGEN_MASS_AMU, MU_MOLECULAR, mu_value, temperature_kelvin
 
-__all__ = ["WidthBudget", "width_budget"]
+__all__ = ["BudgetArrays", "width_budget"]
 
 # Input status codes that make a pixel unusable; they are carried into width_status.
 _CARRIED = (Status.NOT_CONVERGED, Status.TOO_FAINT, Status.MASKED, Status.NO_DATA, Status.FAILED,
@@ -40,7 +38,7 @@ def _frozen(a):
 
 
 @dataclass(frozen=True)
-class WidthBudget:
+class BudgetArrays:
     """Per-pixel line-width budget. Maps are numpy arrays with the pixel shape of the input.
 
     Units: dispersions and sound speed in km/s, temperature in K, Mach number
@@ -187,7 +185,7 @@ def width_budget(
     mu: float = MU_MOLECULAR,
     input_status: Mapping | None = None,
     catalogue: Mapping[str, Line] | None = None,
-) -> WidthBudget:
+) -> BudgetArrays:
     """Thermal / non-thermal decomposition of line widths, per pixel.
 
     Parameters
@@ -226,7 +224,7 @@ def width_budget(
 
     Returns
     -------
-    WidthBudget
+    BudgetArrays
 
     Notes
     -----
@@ -255,6 +253,55 @@ def width_budget(
         that is not one, lines that cannot determine a temperature, conflicting options.
     """
     cat = load_catalogue() if catalogue is None else catalogue
+    lines, names, sig, err = _line_widths(dispersions, dispersion_errors, intrinsic, cat)
+    instr, chan = _responses(intrinsic, instrumental, channel, names)
+    solve, t_k, t_err = _temperature(temperature, temperature_err, lines, names)
+    mu = mu_value(mu)
+    status_in = _input_status(input_status, names)
+    parts = sig + err + [np.asarray(x, dtype=float) for x in instr + chan] + \
+        [np.asarray(t_k), np.asarray(t_err)] + (status_in or [])
+    shape = _pixel_shape(parts)
+
+    def flat(x):
+        return np.broadcast_to(np.asarray(x, dtype=float), shape).reshape(-1)
+
+    n_pix = int(np.prod(shape, dtype=np.int64))
+    s_arr = np.stack([flat(s) for s in sig])
+    e_arr = np.stack([flat(e) for e in err])
+    inst2 = np.stack([flat(x) ** 2 for x in instr]) + np.stack([flat(x) ** 2 for x in chan])
+    fs = np.array([ln.fine_structure_variance_km2_s2 for ln in lines])
+    x = 1.0 / np.array([ln.mass_amu for ln in lines])
+    t_flat = t_err_flat = None
+    if not solve:
+        t_flat = flat(t_k)
+        t_err_flat = flat(t_err)
+
+    status, at_bound = _carried_status(status_in, shape, n_pix)
+    finite = np.all(np.isfinite(s_arr), axis=0) & np.all(np.isfinite(e_arr), axis=0) \
+        & np.all(np.isfinite(inst2), axis=0)
+    if not solve:
+        finite &= np.isfinite(t_flat) & np.isfinite(t_err_flat)
+    status[~finite & (status == Status.OK)] = Status.NO_DATA
+
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        y = s_arr**2 - inst2                       # width with instrument + channel removed
+        z = y - fs[:, None]                        # thermal + non-thermal variance
+        var_z = _solve.square_variance(s_arr, e_arr)
+        if len(names) > 1:
+            zero_err = np.any(var_z == 0, axis=0) & (status == Status.OK)
+            status[zero_err] = Status.FAILED
+        a, b, var_a, var_b, cov_ab, chi2 = _solve.solve_budget(z, var_z, x, t_flat, t_err_flat)
+        flags = _flag_unphysical(status, at_bound, y, a, b, solve)
+        maps = _solve.derived_maps(a, b, var_a, var_b, cov_ab, x, y, mu * HYDROGEN_MASS_AMU)
+
+    has_t_err = solve or temperature_err is not None
+    return _assemble(maps, chi2, status, flags, shape, names, lines, solve=solve, has_t_err=has_t_err,
+                     intrinsic=intrinsic, mu=mu)
+
+
+# ---------------------------------------------------------------------------- input checks
+def _line_widths(dispersions, dispersion_errors, intrinsic, cat):
+    """Lines, their names and the widths and width errors as float arrays (km/s)."""
     if not isinstance(dispersions, Mapping) or not dispersions:
         raise KinemapError(
             "'dispersions' must be a non-empty mapping from line name to width, e.g. {'Halpha': sigma_map}"
@@ -285,7 +332,11 @@ def width_budget(
             raise KinemapError(f"'dispersions['{n}']' has negative values; a dispersion is a Gaussian sigma >= 0")
         if np.any(e[np.isfinite(e)] < 0):
             raise KinemapError(f"'dispersion_errors['{n}']' has negative values; errors must be >= 0")
+    return lines, names, sig, err
 
+
+def _responses(intrinsic, instrumental, channel, names):
+    """Per-line instrumental and channel dispersions (km/s); zeros for intrinsic widths."""
     if intrinsic:
         if instrumental is not None or channel is not None:
             raise KinemapError(
@@ -302,7 +353,11 @@ def width_budget(
                 )
         instr = _per_line(instrumental, names, what="instrumental")
         chan = _per_line(channel, names, what="channel")
+    return instr, chan
 
+
+def _temperature(temperature, temperature_err, lines, names):
+    """(solve, T [K], T error [K]): solve is True when T is to be fitted (T, error = 0)."""
     solve = temperature is None
     if solve:
         if temperature_err is not None:
@@ -315,56 +370,54 @@ def width_budget(
                 f"'temperature' is needed: {what} cannot separate thermal from non-thermal "
                 "broadening; give an assumed temperature or add a line of a different mass"
             )
-        t_k = t_err = 0.0
+        return solve, 0.0, 0.0
+    t_k = np.asarray(temperature_kelvin(temperature), dtype=float)
+    if temperature_err is None:
+        t_err = 0.0
     else:
-        t_k = np.asarray(temperature_kelvin(temperature), dtype=float)
-        if temperature_err is None:
-            t_err = 0.0
-        else:
-            t_err = np.asarray(to_value(temperature_err, u.K, name="temperature_err"), dtype=float)
-            if np.any(t_err[np.isfinite(t_err)] < 0):
-                raise KinemapError("'temperature_err' must be >= 0 K")
-    mu = mu_value(mu)
+        t_err = np.asarray(to_value(temperature_err, u.K, name="temperature_err"), dtype=float)
+        if np.any(t_err[np.isfinite(t_err)] < 0):
+            raise KinemapError("'temperature_err' must be >= 0 K")
+    return solve, t_k, t_err
 
-    status_in = None
-    if input_status is not None:
-        if not isinstance(input_status, Mapping):
-            raise KinemapError("'input_status' must be a mapping from line name to status map")
-        st_by = {_key_name(k): v for k, v in input_status.items()}
-        unknown = [n for n in st_by if n not in names]
-        if unknown:
-            raise KinemapError(f"'input_status' has {unknown}, which are not in 'dispersions'")
-        valid = {int(s) for s in Status}
-        status_in = []
-        for n in names:
-            if n in st_by:
-                s = np.asarray(st_by[n])
-                if not np.issubdtype(s.dtype, np.integer) or not set(np.unique(s).tolist()) <= valid:
-                    raise KinemapError(
-                        f"'input_status['{n}']' must hold kinemap.status.Status codes {sorted(valid)}"
-                    )
-                status_in.append(s)
 
-    parts = sig + err + [np.asarray(x, dtype=float) for x in instr + chan] + \
-        [np.asarray(t_k), np.asarray(t_err)] + (status_in or [])
+def _input_status(input_status, names):
+    """The line fitter's status maps in line order (lines without one are skipped), or None."""
+    if input_status is None:
+        return None
+    if not isinstance(input_status, Mapping):
+        raise KinemapError("'input_status' must be a mapping from line name to status map")
+    st_by = {_key_name(k): v for k, v in input_status.items()}
+    unknown = [n for n in st_by if n not in names]
+    if unknown:
+        raise KinemapError(f"'input_status' has {unknown}, which are not in 'dispersions'")
+    valid = {int(s) for s in Status}
+    status_in = []
+    for n in names:
+        if n in st_by:
+            s = np.asarray(st_by[n])
+            if not np.issubdtype(s.dtype, np.integer) or not set(np.unique(s).tolist()) <= valid:
+                raise KinemapError(
+                    f"'input_status['{n}']' must hold kinemap.status.Status codes {sorted(valid)}"
+                )
+            status_in.append(s)
+    return status_in
+
+
+def _pixel_shape(parts):
+    """The common (broadcast) pixel shape of all input maps."""
     try:
-        shape = np.broadcast_shapes(*[p.shape for p in parts])
+        return np.broadcast_shapes(*[p.shape for p in parts])
     except ValueError:
         raise KinemapError(
             "the input maps have shapes that do not fit together: "
             f"{sorted({p.shape for p in parts})}; give maps of one pixel shape (or scalars)"
         ) from None
 
-    def flat(x):
-        return np.broadcast_to(np.asarray(x, dtype=float), shape).reshape(-1)
 
-    n_pix = int(np.prod(shape, dtype=np.int64))
-    s_arr = np.stack([flat(s) for s in sig])
-    e_arr = np.stack([flat(e) for e in err])
-    inst2 = np.stack([flat(x) ** 2 for x in instr]) + np.stack([flat(x) ** 2 for x in chan])
-    fs = np.array([ln.fine_structure_variance_km2_s2 for ln in lines])
-    x = 1.0 / np.array([ln.mass_amu for ln in lines])
-
+# ---------------------------------------------------------------------------- status and output
+def _carried_status(status_in, shape, n_pix):
+    """Start status (OK, or the first line's unusable input code) and the AT_BOUND pixels."""
     status = np.full(n_pix, Status.OK, dtype=np.int16)
     at_bound = np.zeros(n_pix, dtype=bool)
     for s in status_in or []:
@@ -372,79 +425,63 @@ def width_budget(
         carry = np.isin(s, [int(c) for c in _CARRIED]) & (status == Status.OK)
         status[carry] = s[carry]
         at_bound |= s == Status.AT_BOUND
+    return status, at_bound
 
-    finite = np.all(np.isfinite(s_arr), axis=0) & np.all(np.isfinite(e_arr), axis=0) \
-        & np.all(np.isfinite(inst2), axis=0)
-    if not solve:
-        t_flat = flat(t_k)
-        t_err_flat = flat(t_err)
-        finite &= np.isfinite(t_flat) & np.isfinite(t_err_flat)
-    status[~finite & (status == Status.OK)] = Status.NO_DATA
 
-    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        y = s_arr**2 - inst2                       # width with instrument + channel removed
-        z = y - fs[:, None]                        # thermal + non-thermal variance
-        var_z = _solve.square_variance(s_arr, e_arr)
-        if len(names) > 1:
-            zero_err = np.any(var_z == 0, axis=0) & (status == Status.OK)
-            status[zero_err] = Status.FAILED
-        chi2 = None
-        if solve:
-            a, b, var_a, var_b, cov_ab, chi2 = _solve.solve_temperature(z, var_z, x)
-        else:
-            a = K_OVER_AMU * t_flat
-            var_a = (K_OVER_AMU * t_err_flat) ** 2
-            b, var_b, cov_ab = _solve.solve_fixed_temperature(z, var_z, x, a, var_a)
+@dataclass(frozen=True)
+class _Flags:
+    """Pixels marked UNPHYSICAL, by reason, and the pixels whose values are kept."""
 
-        ok = status == Status.OK
-        below_instr = ok & np.any(y < 0, axis=0)
-        neg_t = ok & ~below_instr & (a < 0) if solve else np.zeros(n_pix, dtype=bool)
-        below_th = ok & ~below_instr & ~neg_t & (b < 0)
-        status[below_instr | neg_t | below_th] = Status.UNPHYSICAL
-        status[(status == Status.OK) & at_bound] = Status.AT_BOUND
-        good = (status == Status.OK) | (status == Status.AT_BOUND)
+    below_instr: np.ndarray
+    neg_t: np.ndarray
+    below_th: np.ndarray
+    good: np.ndarray
 
-        snt = np.sqrt(b)
-        snt_err = np.sqrt(var_b) / (2.0 * snt)
-        temp = a / K_OVER_AMU
-        temp_err = np.sqrt(var_a) / K_OVER_AMU
-        cov_t_snt = cov_ab / K_OVER_AMU / (2.0 * snt)
-        th = np.sqrt(a * x[0])
-        cs = np.sqrt(a / (mu * HYDROGEN_MASS_AMU))
-        cs_err = cs * 0.5 * np.sqrt(var_a) / a
-        mach = np.sqrt(3.0) * snt / cs
-        # relative variance of M = sqrt(3 b) / sqrt(a / (mu m_H)); the a-terms vanish when
-        # T is exact (var_a = cov_ab = 0)
-        rel = var_b / (4 * b**2) + var_a / (4 * a**2) - cov_ab / (2 * a * b)
-        mach_err = mach * np.sqrt(np.maximum(rel, 0.0))
-        per_line = np.sqrt(y)
 
+def _flag_unphysical(status, at_bound, y, a, b, solve) -> _Flags:
+    """Mark UNPHYSICAL solutions in ``status`` (in place), then carry AT_BOUND.
+
+    Reasons are exclusive, first one wins: a line narrower than instrument + channel, a
+    negative fitted temperature, sigma_nt^2 < 0."""
+    n_pix = status.size
+    ok = status == Status.OK
+    below_instr = ok & np.any(y < 0, axis=0)
+    neg_t = ok & ~below_instr & (a < 0) if solve else np.zeros(n_pix, dtype=bool)
+    below_th = ok & ~below_instr & ~neg_t & (b < 0)
+    status[below_instr | neg_t | below_th] = Status.UNPHYSICAL
+    status[(status == Status.OK) & at_bound] = Status.AT_BOUND
+    good = (status == Status.OK) | (status == Status.AT_BOUND)
+    return _Flags(below_instr, neg_t, below_th, good)
+
+
+def _assemble(maps, chi2, status, flags: _Flags, shape, names, lines, *, solve, has_t_err, intrinsic,
+              mu) -> BudgetArrays:
+    """The frozen result: value maps NaN outside the good pixels, status and pixel counts."""
     def out(v):
-        v = np.where(good, v, np.nan)
+        v = np.where(flags.good, v, np.nan)
         return _frozen(v.reshape(shape))
 
-    has_t_err = solve or temperature_err is not None
-    summary = {"pixels": n_pix}
+    summary = {"pixels": int(status.size)}
     for st in Status:
         summary[st.name.lower()] = int(np.count_nonzero(status == st))
-    summary["unphysical_below_instrument"] = int(np.count_nonzero(below_instr))
-    summary["unphysical_negative_temperature"] = int(np.count_nonzero(neg_t))
-    summary["unphysical_below_thermal"] = int(np.count_nonzero(below_th))
+    summary["unphysical_below_instrument"] = int(np.count_nonzero(flags.below_instr))
+    summary["unphysical_negative_temperature"] = int(np.count_nonzero(flags.neg_t))
+    summary["unphysical_below_thermal"] = int(np.count_nonzero(flags.below_th))
 
-    return WidthBudget(
-        nonthermal_dispersion=out(snt),
-        nonthermal_dispersion_err=out(snt_err),
-        thermal_dispersion=out(th),
-        temperature=out(temp),
-        temperature_err=out(temp_err) if has_t_err else None,
-        temperature_nonthermal_cov=out(cov_t_snt) if has_t_err else None,
+    return BudgetArrays(
+        nonthermal_dispersion=out(maps["snt"]),
+        nonthermal_dispersion_err=out(maps["snt_err"]),
+        thermal_dispersion=out(maps["th"]),
+        temperature=out(maps["temp"]),
+        temperature_err=out(maps["temp_err"]) if has_t_err else None,
+        temperature_nonthermal_cov=out(maps["cov_t_snt"]) if has_t_err else None,
         chi_square=out(chi2) if solve else None,
-        sound_speed=out(cs),
-        sound_speed_err=out(cs_err),
-        mach_number=out(mach),
-        mach_number_err=out(mach_err),
+        sound_speed=out(maps["cs"]),
+        sound_speed_err=out(maps["cs_err"]),
+        mach_number=out(maps["mach"]),
+        mach_number_err=out(maps["mach_err"]),
         width_status=_frozen(status.reshape(shape)),
-        dispersions=MappingProxyType({n: out(per_line[i]) for i, n in enumerate(names)}),
+        dispersions=MappingProxyType({n: out(maps["per_line"][i]) for i, n in enumerate(names)}),
         summary=MappingProxyType(summary),
         lines=tuple(names),
         reference_line=names[0],

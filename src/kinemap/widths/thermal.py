@@ -12,6 +12,7 @@ from astropy.constants import k_B
 from kinemap.units import KMS, to_value
 from kinemap.errors import KinemapError
 from kinemap.spectral.catalogue import Line
+from kinemap.spectral.response import response_sigma
 
 __all__ = [
     "K_OVER_AMU",
@@ -123,5 +124,4 @@ def channel_dispersion(channel_width) -> u.Quantity:
     2 channels FWHM; common practice) have wider responses: pass the measured response
     dispersion to :func:`~kinemap.widths.width_budget` instead.
     """
-    dv = np.abs(np.asarray(to_value(channel_width, KMS, name="channel_width"), dtype=float))
-    return dv / np.sqrt(12.0) * KMS
+    return response_sigma("tophat", to_value(channel_width, KMS, name="channel_width")) * KMS
