@@ -3,6 +3,7 @@
 Data flow (one direction)::
 
     cube = kinemap.read_cube("cube.fits")                    # path, HDU, SpectralCube, ...
+    cube = kinemap.subtract_continuum(cube).cube             # continuum under the lines
     noise = kinemap.estimate_noise(cube)                     # NoiseMap
     mask = kinemap.make_mask(cube, noise=noise)              # SignalMask
     moments = kinemap.compute_moments(cube, mask=mask, noise=noise)     # MomentMaps
@@ -31,6 +32,8 @@ _API = {
     "read_cube": "kinemap.io.reader",
     "read_map": "kinemap.io.maps",
     "Cube": "kinemap.io.cube",
+    "subtract_continuum": "kinemap.maps.continuum",
+    "ContinuumResult": "kinemap.maps.continuum",
     "estimate_noise": "kinemap.maps.noise",
     "NoiseMap": "kinemap.maps.noise",
     "make_mask": "kinemap.maps.masks",

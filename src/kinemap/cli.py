@@ -81,6 +81,8 @@ _READING = ("reading the cube",
             [("input", k) for k in ("convention", "rest_value", "frame", "vrange", "box",
                                     "region", "beams", "beam", "bunit")]
             + [("noise", "line_free")])
+_CONTINUUM = ("continuum under the lines",
+              [("continuum", k) for k in ("method", "line_window", "write_continuum")])
 _OUTPUT = ("output", [("output", "dir"), ("output", "overwrite"), ("output", "plots"),
                       ("run", "progress")])
 _EXECUTION = ("execution", [("run", "max_memory"), ("run", "scheduler"), ("run", "workers")])
@@ -90,16 +92,17 @@ _EXECUTION = ("execution", [("run", "max_memory"), ("run", "scheduler"), ("run",
 # decided here; everything about an option itself is in the schema.
 COMMANDS = {
     "info": ("show what the reader understood about a cube", ("cube", "the cube (FITS)"), (),
-             [_READING]),
+             [_READING, ("continuum under the lines", [("continuum", "method"),
+                                                       ("continuum", "line_window")])]),
     "maps": ("intensity, velocity and dispersion maps", ("cube", "the cube (FITS)"), ("maps",),
-             [("maps", [("maps", "method"), ("maps", "channel_response")]),
+             [("maps", [("maps", "method"), ("maps", "line"), ("maps", "channel_response")]),
               ("Gaussian fits (--method gauss)",
                [("maps", k) for k in ("components", "baseline", "instrument_sigma",
                                       "resolving_power", "order", "snr_threshold",
                                       "write_model")]),
               ("signal mask", [("mask", k) for k in ("method", "threshold", "grow_threshold",
                                                      "smooth_channels", "min_pixels")]),
-              _READING, _OUTPUT, _EXECUTION]),
+              _READING, _CONTINUUM, _OUTPUT, _EXECUTION]),
     "rings": ("rotation curve: tilted-ring fit of a velocity field",
               ("input", "a velocity map (2D FITS, km/s) or a cube"), ("rings",),
               [("geometry (first guesses are automatic when not given)",
@@ -110,7 +113,7 @@ COMMANDS = {
                                                  "final_geometry", "bootstrap")]),
                ("velocity field", [("rings", "velocity_field"), ("input", "velocity_err"),
                                    ("input", "intensity")]),
-               _READING, _OUTPUT, _EXECUTION]),
+               _READING, _CONTINUUM, _OUTPUT, _EXECUTION]),
     "widths": ("line-width budget: instrumental, thermal, non-thermal", ("cube", "the cube (FITS)"),
                ("widths",),
                [("lines and physics",
@@ -118,9 +121,10 @@ COMMANDS = {
                                           "temperature_map", "mu", "free_velocity", "ratios",
                                           "catalogue")]
                  + [("maps", "instrument_sigma"), ("maps", "resolving_power"),
-                    ("maps", "channel_response"), ("widths", "snr_threshold")]),
+                    ("maps", "channel_response"), ("widths", "snr_threshold"),
+                    ("widths", "baseline")]),
                 ("signal mask", [("mask", "method")]),
-                _READING, _OUTPUT, _EXECUTION]),
+                _READING, _CONTINUUM, _OUTPUT, _EXECUTION]),
 }
 
 
@@ -294,6 +298,9 @@ def _cmd_demo(args) -> int:
 
 
 def _report(state, out):
+    continuum = state.results.get("continuum")
+    if continuum is not None and continuum.requested != "none":
+        print(f"kinemap: {continuum.message}")
     n = len(state.manifest["products"])
     total = sum(state.manifest["timings"].values())
     print(f"kinemap: wrote {n} products to {out} in {total:.1f} s "

@@ -13,6 +13,7 @@ from kinemap.pipeline.config import SCHEMA, option_default
 # public function -> config sections whose keys it takes (in this order of precedence)
 FUNCTIONS = {
     "read_cube": ("input",),
+    "subtract_continuum": ("continuum", "noise"),
     "estimate_noise": ("noise", "maps"),
     "make_mask": ("mask", "maps"),
     "compute_moments": ("maps",),

@@ -1,7 +1,8 @@
 """FITS products: 2D maps with the cube's celestial WCS, 3D cubes with its full WCS.
 
 Every file records the velocity convention (``VCONV``), rest value (``RESTFRQ`` or
-``RESTWAV`` as in FITS WCS paper III), frame (``SPECSYS``), beam (``BMAJ``/``BMIN``/``BPA``)
+``RESTWAV`` as in FITS WCS paper III: RESTWAV is always the VACUUM rest wavelength, also for
+an air-wavelength cube, whose air rest wavelength goes into ``KMRWAIR``), frame (``SPECSYS``), beam (``BMAJ``/``BMIN``/``BPA``)
 and provenance (``ORIGIN``, ``DATE``, ``KMINPUT``, ``KMSHA256``, and the options as
 ``HISTORY`` lines).
 """
@@ -16,6 +17,7 @@ import numpy as np
 from astropy.io import fits
 
 from kinemap._version import __version__
+from kinemap.spectral.airvac import fits_air_to_vacuum
 
 __all__ = ["product_header", "write_fits"]
 
@@ -38,8 +40,17 @@ def product_header(meta, *, unit, description: str, key: str, options: dict | No
         rv = meta.rest_value
         if rv.unit.is_equivalent(u.Hz):
             h["RESTFRQ"] = (rv.to_value(u.Hz), "[Hz] rest frequency used for velocities")
+        elif meta.medium == "air":
+            # RESTWAV is a vacuum wavelength whatever the axis (Greisen et al. 2006, A&A 446,
+            # 747); wcslib converts an AWAV axis to vacuum before the Doppler formula, so an
+            # air value here would shift every velocity it derives (82.7 km/s at H-alpha).
+            # The inverse of the formula the reader applies keeps the round trip exact.
+            air = rv.to_value(u.AA)
+            h["RESTWAV"] = (float(fits_air_to_vacuum(air)) * 1e-10,
+                            "[m] rest wavelength in vacuum (FITS standard)")
+            h["KMRWAIR"] = (air * 1e-10, "[m] rest wavelength in air, used for velocities")
         else:
-            h["RESTWAV"] = (rv.to_value(u.m), f"[m] rest wavelength ({meta.medium or 'vacuum'})")
+            h["RESTWAV"] = (rv.to_value(u.m), "[m] rest wavelength in vacuum")
     if meta.frame:
         h["SPECSYS"] = (meta.frame, "spectral reference frame of velocities")
     if meta.beam is not None:

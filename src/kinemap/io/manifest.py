@@ -25,6 +25,11 @@ def build_manifest(meta, products: dict, *, timings: dict, options: dict,
     if meta is not None and meta.rest_value is not None:
         rest = {"value": float(meta.rest_value.value), "unit": meta.rest_value.unit.to_string(),
                 "medium": meta.medium}
+        if meta.medium == "air":  # the FITS headers carry the vacuum value as RESTWAV
+            from kinemap.spectral.airvac import fits_air_to_vacuum
+
+            rest["vacuum_value_angstrom"] = float(fits_air_to_vacuum(
+                meta.rest_value.to_value("Angstrom")))
     doc = {
         "kinemap_version": __version__,
         "versions": library_versions(),

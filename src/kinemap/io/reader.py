@@ -59,7 +59,7 @@ _CHECKSUMS = ThreadPoolExecutor(max_workers=1, thread_name_prefix="kinemap-sha25
 def read_cube(source, *, rest_value=None, convention: str | None = None,
               frame: str | None = None, vrange=None, box=None, region=None,
               beams: str = "common", bunit=None, beam=None, hdu=None,
-              checksum: bool = True) -> Cube:
+              checksum: bool = True, line: str | None = None) -> Cube:
     """Read a spectral-line cube and work out its velocity axis.
 
     Parameters
@@ -74,9 +74,13 @@ def read_cube(source, *, rest_value=None, convention: str | None = None,
         velocity (VRAD, VOPT, VELO, and legacy VELO-xxx/FELO-xxx types, which wcslib
         translates; every translation is recorded in ``meta.repairs``).
     rest_value : Quantity or str, optional
-        Rest frequency or wavelength; overrides RESTFRQ/RESTFREQ/RESTWAV.  For an AWAV
-        axis it must be an air wavelength.  A header's RESTWAV is a vacuum wavelength
-        (FITS WCS Paper III) and is converted to air for AWAV axes.
+        Rest frequency or wavelength, or a catalogue line name (``'Halpha'``,
+        ``'13CO_1-0'``; see :func:`kinemap.spectral.catalogue.load_catalogue`) whose rest
+        value is taken in the cube's medium: air wavelength for AWAV, vacuum wavelength for
+        WAVE (and optical velocity axes), frequency otherwise.  Overrides
+        RESTFRQ/RESTFREQ/RESTWAV.  A quantity for an AWAV axis must be an air wavelength.
+        A header's RESTWAV is a vacuum wavelength (FITS WCS Paper III) and is converted to
+        air for AWAV axes.
     convention : {'radio', 'optical', 'relativistic'}, optional
         Velocity convention of the output velocities.  Default: radio for a frequency axis,
         optical for a wavelength axis, the axis' own for a velocity axis.
@@ -104,6 +108,9 @@ def read_cube(source, *, rest_value=None, convention: str | None = None,
         Which HDU of a file or HDUList holds the cube (default: the first with 3+ axes).
     checksum : bool
         Compute the SHA-256 of the file (or of an in-memory array) for provenance.
+    line : str, optional
+        A catalogue line name whose rest value (in the cube's medium) applies when neither
+        ``rest_value`` nor the header gives one (``kinemap widths`` passes its first line).
 
     Returns
     -------
@@ -115,7 +122,7 @@ def read_cube(source, *, rest_value=None, convention: str | None = None,
     try:
         return _read(opened, rest_value=rest_value, convention=convention, frame=frame,
                      vrange=vrange, box=box, region=region, beams=beams, bunit=bunit,
-                     beam=beam, checksum=checksum)
+                     beam=beam, checksum=checksum, line=line)
     finally:
         opened.close()
 
@@ -222,11 +229,34 @@ def _lazy_section(opened: Opened, raw_shape, compressed):
     return raw, plain
 
 
-def _rest_value(rest_value, ax: _Axes):
-    """The rest value in the cube's medium: the caller's, else the header's."""
+def _line_rest_value(name: str, ax: _Axes) -> u.Quantity:
+    """The catalogue rest value of line ``name`` in the medium of the cube's axis: air
+    wavelength for AWAV, vacuum for WAVE and optical velocities, frequency otherwise."""
+    from kinemap.spectral.catalogue import get_line, medium_from_ctype
+
+    medium = medium_from_ctype(ax.ctype)
+    rest = get_line(name.strip(), medium=medium).rest_value(medium)
+    ax.repairs.append(f"rest value {rest:.9g} ({medium}) from the catalogue line {name.strip()}")
+    return rest
+
+
+def _is_line_name(value) -> bool:
+    """A string that names a catalogue line rather than a quantity ('Halpha', '13CO_1-0')."""
+    if not isinstance(value, str):
+        return False
+    from kinemap.spectral.catalogue import load_catalogue
+
+    return value.strip() in load_catalogue()
+
+
+def _rest_value(rest_value, ax: _Axes, line=None):
+    """The rest value in the cube's medium: the caller's (a quantity or a catalogue line
+    name), else the header's, else the fallback ``line``'s."""
     wcs, kind = ax.wcs, ax.kind
-    if rest_value is not None:
-        rest = check_rest_value(parse_quantity(rest_value, name="rest_value"))
+    if _is_line_name(rest_value):
+        rest = _line_rest_value(rest_value, ax)
+    elif rest_value is not None:
+        rest = check_rest_value(_parse_rest(rest_value))
     elif wcs.wcs.restfrq > 0:
         rest = wcs.wcs.restfrq * u.Hz
     elif wcs.wcs.restwav > 0:
@@ -238,6 +268,8 @@ def _rest_value(rest_value, ax: _Axes):
             ax.repairs.append(f"RESTWAV {rest.to(u.AA):.3f} (vacuum) read as {air:.3f} in air "
                               "for the AWAV axis")
             rest = air
+    elif line is not None:
+        rest = _line_rest_value(line, ax)
     else:
         rest = None
     if kind.medium == "air" and rest is not None and not rest.unit.is_equivalent(u.m):
@@ -247,19 +279,37 @@ def _rest_value(rest_value, ax: _Axes):
     if kind.physical in ("frequency", "wavelength") and rest is None:
         raise KinemapError(
             f"no rest value: the {ax.ctype} axis needs one to give velocities and the header "
-            "has no RESTFRQ/RESTFREQ/RESTWAV; give one with --rest-value (for example "
-            "'1420.405751768 MHz' or '6562.80 Angstrom')")
+            "has no RESTFRQ/RESTFREQ/RESTWAV; give one with --rest-value (a line name such "
+            "as 'Halpha', or a value such as '1420.405751768 MHz' or '6562.80 Angstrom')")
     return rest
 
 
-def _velocity_axis(ax: _Axes, header, nchan, shape_yx, *, rest_value, convention, frame):
+def _parse_rest(value):
+    """A rest value as a Quantity; text that is neither a quantity nor a known line name
+    gets a message that lists both forms."""
+    try:
+        return parse_quantity(value, name="rest_value")
+    except KinemapError:
+        text = value.strip() if isinstance(value, str) else ""
+        if text and not (text[0].isdigit() or text[0] in ".+-"):  # a word: a line name?
+            from kinemap.spectral.catalogue import load_catalogue
+
+            raise KinemapError(
+                f"'rest_value' {value!r} is neither a quantity nor a catalogue line; give a "
+                f"value such as '6562.80 Angstrom' or one of {', '.join(load_catalogue())}"
+            ) from None
+        raise
+
+
+def _velocity_axis(ax: _Axes, header, nchan, shape_yx, *, rest_value, convention, frame,
+                   line=None):
     """(spectral coordinates, velocities km/s, rest value, convention, frame)."""
     kind = ax.kind
     spec_wcs = ax.wcs.sub([ax.spec + 1])
     spec_unit = u.Unit(spec_wcs.wcs.cunit[0]) if spec_wcs.wcs.cunit[0] else u.one
     spectral = u.Quantity(spec_wcs.pixel_to_world_values(np.arange(nchan, dtype=float)),
                           spec_unit).ravel()
-    rest = _rest_value(rest_value, ax)
+    rest = _rest_value(rest_value, ax, line)
     conv = check_convention(convention) if convention else kind.convention
     specsys = normalise_frame(ax.wcs.wcs.specsys) if ax.wcs.wcs.specsys else ""
     target = normalise_frame(frame) if frame else specsys
@@ -355,13 +405,14 @@ def _file_source(opened: Opened, data: _Data, cs, ys, xs):
 
 
 def _read(opened: Opened, *, rest_value, convention, frame, vrange, box, region, beams,
-          bunit, beam, checksum) -> Cube:
+          bunit, beam, checksum, line=None) -> Cube:
     header = opened.hdu.header
     ax = _axes(opened)
     data = _data_view(opened, ax)
     nchan, ny, nx = data.arr.shape
     spectral, velocity, rest, conv, target = _velocity_axis(
-        ax, header, nchan, (ny, nx), rest_value=rest_value, convention=convention, frame=frame)
+        ax, header, nchan, (ny, nx), rest_value=rest_value, convention=convention, frame=frame,
+        line=line)
     arr, beam_value, per_channel = _beam(opened, ax, data, beams=beams, beam=beam)
     bunit_value, bunit_missing = parse_bunit(header, bunit)
     cs, ys, xs, footprint, subset = _subset(ax, velocity, (ny, nx), vrange=vrange, box=box,

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from kinemap.errors import KinemapError
 
-__all__ = ["read_kwargs", "noise_kwargs", "mask_kwargs", "moments_kwargs", "fit_kwargs",
+__all__ = ["read_kwargs", "continuum_kwargs", "reference_line", "noise_kwargs", "mask_kwargs", "moments_kwargs", "fit_kwargs",
            "rings_kwargs", "widths_kwargs", "parse_vrange", "parse_line_free"]
 
 
@@ -37,11 +37,32 @@ def parse_line_free(value):
     return value
 
 
+def reference_line(cfg: dict) -> str | None:
+    """The run's line: [maps] line, else the first [widths] line of a widths run."""
+    if cfg["maps"]["line"]:
+        return cfg["maps"]["line"]
+    if "widths" in cfg.get("_sections", ()) and cfg["widths"]["lines"]:
+        return cfg["widths"]["lines"][0]
+    return None
+
+
 def read_kwargs(cfg: dict) -> dict:
+    """[input] -> read_cube.  [maps] line sets the rest value (unless --rest-value does);
+    a widths run's first line is the fallback when the header has no rest value either."""
     inp = cfg["input"]
-    return dict(convention=inp["convention"], rest_value=inp["rest_value"], frame=inp["frame"],
+    rest = inp["rest_value"] or cfg["maps"]["line"]
+    return dict(convention=inp["convention"], rest_value=rest, frame=inp["frame"],
                 vrange=parse_vrange(inp["vrange"]), box=inp["box"], region=inp["region"],
-                beams=inp["beams"], bunit=inp["bunit"], hdu=inp["hdu"], beam=inp["beam"])
+                beams=inp["beams"], bunit=inp["bunit"], hdu=inp["hdu"], beam=inp["beam"],
+                line=reference_line(cfg))
+
+
+def continuum_kwargs(cfg: dict) -> dict:
+    c = cfg["continuum"]
+    return dict(method=c["method"], line=reference_line(cfg), line_window=c["line_window"],
+                clip=c["clip"], write_cube=c["write_continuum"],
+                line_free=parse_line_free(cfg["noise"]["line_free"]),
+                catalogue=cfg["widths"]["catalogue"])
 
 
 def noise_kwargs(cfg: dict) -> dict:
@@ -86,5 +107,6 @@ def widths_kwargs(cfg: dict) -> dict:
     return dict(lines=w["lines"], temperature=w["temperature"],
                 temperature_err=w["temperature_err"], mu=w["mu"],
                 free_velocity=w["free_velocity"], ratios=w["ratios"], catalogue=w["catalogue"],
-                snr_threshold=w["snr_threshold"], instrument_sigma=m["instrument_sigma"],
+                snr_threshold=w["snr_threshold"], baseline=w["baseline"],
+                instrument_sigma=m["instrument_sigma"],
                 resolving_power=m["resolving_power"], channel_response=m["channel_response"])

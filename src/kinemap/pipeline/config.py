@@ -18,7 +18,10 @@ Sections and keys (defaults in brackets)::
               vrange = [v1, v2], box, region, beams ["common"], beam ("46arcsec" or
               "30arcsec,20arcsec,45deg"), bunit, hdu;
               velocity_map, velocity_err, intensity (2D FITS maps for [rings])
-    [noise]   line_free ["auto"] or [[v1, v2], ...]
+    [continuum] method ["auto"] | "none" | "constant" | "linear" | "poly:N", line_window
+              [200] (km/s), clip [3.0] (sigma), write_continuum [false]
+    [noise]   line_free ["auto"] or [[v1, v2], ...] (also the channels the continuum may
+              be fitted on)
     [mask]    method ["smooth"; "none" when the config has [widths]] | "threshold",
               threshold, grow_threshold [2.0], smooth_beams [1.5], smooth_pixels [3.0],
               smooth_channels [3], min_pixels, min_channels [2]
@@ -27,7 +30,8 @@ Sections and keys (defaults in brackets)::
               "linear", instrument_sigma (km/s) or resolving_power, order ["flux"] |
               "velocity", snr_threshold [3], min_separation [1] (sigma),
               min_component_snr [3], write_model [false], vrange (velocity window of the
-              moments and fits only; other stages see the whole cube)
+              moments and fits only; other stages see the whole cube), line (a catalogue
+              line: rest value and a default vrange up to the neighbouring lines)
     [rings]   center ("RA,DEC"), position_angle, inclination, v_sys, ring_width (arcsec),
               distance (Mpc), weighting ["cos"] | "cos2" | "uniform", exclude_minor_axis
               [20] (deg), stages [[1, 2, 3]], final_geometry ["median"] | "polynomial" |
@@ -37,7 +41,8 @@ Sections and keys (defaults in brackets)::
     [widths]  lines (required; names from the catalogue, brightest first), temperature
               ("1e4 K") or temperature_map (FITS, K), temperature_err, mu [2.33],
               free_velocity [false], ratios [{"NII_6583/NII_6548" = 3.0}], catalogue (extra
-              TOML file), snr_threshold [3]; the instrument comes from [maps]
+              TOML file), snr_threshold [3], baseline ["none"] | "constant" | "linear";
+              the instrument comes from [maps]
               instrument_sigma / resolving_power, the channel response from [maps]
               channel_response
     [output]  dir ["kinemap-out"], overwrite [false], plots [true]
@@ -234,6 +239,12 @@ def _check_size(value):
     parse_size(value)
 
 
+def _check_continuum(value):
+    from kinemap.maps.continuum import parse_method
+
+    parse_method(value)
+
+
 SCHEMA: dict[str, dict[str, Option]] = {
     "input": {
         "cube": Option((str, _NONE), help="the spectral-line cube (FITS)", cli=False, path=True),
@@ -267,6 +278,20 @@ SCHEMA: dict[str, dict[str, Option]] = {
                                path=True, help="error map for a velocity-map input"),
         "intensity": Option((str, _NONE), metavar="FITS", path=True,
                             help="intensity map for a velocity-map input"),
+    },
+    "continuum": {
+        "method": Option((str,), "auto", cli="continuum", check=_check_continuum,
+                         metavar="auto|none|constant|linear|poly:N",
+                         help="continuum under the lines, fitted per spectrum on line-free "
+                              "channels and subtracted before noise and masks; auto: only "
+                              "when a significant continuum is there"),
+        "line_window": Option((int, float, str), 200.0, metavar="VELOCITY", unit="km/s",
+                              help="half-width of the window masked around every catalogue "
+                                   "line in the band for the continuum fit"),
+        "clip": Option((int, float), 3.0, cli=False,
+                       help="sigma-clipping threshold of the per-spectrum continuum fit"),
+        "write_continuum": Option((bool,), False,
+                                  help="also write the fitted continuum cube"),
     },
     "noise": {
         "line_free": Option((str, list, tuple, _NONE), "auto", parse=_ranges,
@@ -320,6 +345,10 @@ SCHEMA: dict[str, dict[str, Option]] = {
         "min_component_snr": Option((int, float), 3.0, cli=False,
                                     help="weakest component kept (peak S/N)"),
         "write_model": Option((bool,), False, help="also write model and residual cubes"),
+        "line": Option((str, _NONE), metavar="NAME",
+                       help="catalogue line to map (e.g. Halpha): sets the rest value in the "
+                            "cube's medium and a velocity window that stops short of the "
+                            "neighbouring catalogue lines"),
         "vrange": Option((list, tuple, str, _NONE), parse=_pair, cli=False, unit="km/s",
                          help="velocity window of the moments and fits only"),
     },
@@ -388,6 +417,10 @@ SCHEMA: dict[str, dict[str, Option]] = {
                             help="extra lines (same schema as the built-in)"),
         "snr_threshold": Option((int, float), 3.0, metavar="SNR",
                                 help="spectra with a lower peak S/N are not fitted"),
+        "baseline": Option((str,), "none", choices=("none", "constant", "linear"),
+                           help="baseline fitted with the lines for residual continuum "
+                                "(none after continuum subtraction; constant or linear when "
+                                "a continuum is left under the lines)"),
     },
     "output": {
         "dir": Option((str,), "kinemap-out", cli="out", metavar="DIR", path=True,
@@ -501,7 +534,7 @@ def validate_config(user: dict, *, base_dir: str | None = None) -> dict:
                 if opt.path and v and not os.path.isabs(v):
                     cfg[sec][key] = os.path.normpath(os.path.join(base_dir, v))
     # a cube always gets the maps stages (moment maps come with every cube run)
-    cfg["_sections"] = sorted(sections | {"input", "noise", "mask", "output", "run"}
+    cfg["_sections"] = sorted(sections | {"input", "continuum", "noise", "mask", "output", "run"}
                               | ({"maps"} if cfg["input"]["cube"] else set()))
     return cfg
 

@@ -5,6 +5,7 @@ import astropy.units as u
 import numpy as np
 
 from kinemap.io.reader import read_cube
+from kinemap.maps.continuum import subtract_continuum
 from kinemap.maps.noise import estimate_noise
 from kinemap.pipeline import adapters as ad
 
@@ -35,7 +36,9 @@ def describe(cfg: dict) -> str:
     ]
     if m.subset:
         lines.append(f"subset          {m.subset}")
-    noise = estimate_noise(cube, **ad.noise_kwargs(cfg))
+    continuum = subtract_continuum(cube, **ad.continuum_kwargs(cfg))
+    lines.append(f"continuum       {continuum.message.removeprefix('continuum: ')}")
+    noise = estimate_noise(continuum.cube, **ad.noise_kwargs(cfg))
     lines.append(f"noise           median {noise.median:.4g} {m.bunit.to_string() or ''} per "
                  f"channel ({noise.method})")
     if m.repairs:

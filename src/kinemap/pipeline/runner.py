@@ -18,6 +18,7 @@ from kinemap.io.outdir import check_output_dir
 from kinemap.io.reader import read_cube
 from kinemap.io.subset import select_channels
 from kinemap.io.writer import write_results
+from kinemap.maps.continuum import line_window_range, subtract_continuum
 from kinemap.maps.masks import make_mask
 from kinemap.maps.moments import compute_moments
 from kinemap.maps.noise import estimate_noise
@@ -68,9 +69,14 @@ def _timed(state, stage, fn, *args, **kwargs):
 
 
 def prepare(cfg: dict, state: RunState | None = None) -> RunState:
-    """Read the cube, estimate the noise and build the mask (the shared first stages)."""
+    """Read the cube, remove its continuum, estimate the noise and build the mask (the
+    shared first stages); later stages see the continuum-subtracted cube."""
     state = state or RunState(config=cfg)
     state.cube = _timed(state, "read", read_cube, cfg["input"]["cube"], **ad.read_kwargs(cfg))
+    continuum = _timed(state, "continuum", subtract_continuum, state.cube,
+                       **ad.continuum_kwargs(cfg), **state.blocks)
+    state.results["continuum"] = continuum  # its products are empty when nothing was removed
+    state.cube = continuum.cube
     state.noise = _timed(state, "noise", estimate_noise, state.cube, **ad.noise_kwargs(cfg),
                          **state.blocks)
     state.mask = _timed(state, "mask", make_mask, state.cube, noise=state.noise,
@@ -83,6 +89,11 @@ def _maps_window(state):
     Cut once per run and kept on the state."""
     if state.window is None:
         window = state.config["maps"]["vrange"]
+        line = ad.reference_line(state.config)  # [maps] line, or a widths run's first line
+        if window is None and line:
+            continuum = state.results.get("continuum")
+            window = line_window_range(state.cube, line, centres=getattr(continuum, "lines", None),
+                                       catalogue=state.config["widths"]["catalogue"])
         if window is None:
             state.window = (state.cube, state.mask)
         else:

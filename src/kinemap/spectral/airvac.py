@@ -21,7 +21,7 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["refractive_index_air", "vacuum_to_air", "air_to_vacuum", "AIR_CUTOFF_ANGSTROM",
-           "fits_refractive_index", "fits_vacuum_to_air"]
+           "fits_refractive_index", "fits_vacuum_to_air", "fits_air_to_vacuum"]
 
 #: below this vacuum wavelength no air conversion is applied (NIST convention; common practice)
 AIR_CUTOFF_ANGSTROM = 2000.0
@@ -64,3 +64,11 @@ def fits_vacuum_to_air(vacuum_angstrom):
     for _ in range(4):  # n depends on the air wavelength; converges by ~1e-4 per step
         air = vac / fits_refractive_index(air)
     return air
+
+
+def fits_air_to_vacuum(air_angstrom):
+    """Vacuum wavelength for an air wavelength with :func:`fits_refractive_index`: exact in
+    the formula's terms (n is a function of the air wavelength), the inverse of
+    :func:`fits_vacuum_to_air`; products of AWAV cubes write RESTWAV with it."""
+    air = np.asarray(air_angstrom, dtype=float)
+    return air * fits_refractive_index(air)
