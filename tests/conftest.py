@@ -98,3 +98,34 @@ def run_cli(*args, timeout=300):
     exe = os.path.join(os.path.dirname(sys.executable), "kinemap")
     p = subprocess.run([exe, *args], capture_output=True, text=True, timeout=timeout)
     return p.returncode, p.stdout, p.stderr
+
+
+C_KMS = 299792.458
+# air wavelengths (NIST ASD; from memory), as in the catalogue
+HALPHA_AIR, NII_6583_AIR, NII_6548_AIR = 6562.80, 6583.45, 6548.05
+
+
+def optical_cube(path, *, seed=1, ny=6, nx=6, nchan=120, level=6.0, slope=2.0, noise=1.0,
+                 v=20.0, sigma=25.0, amp=10.0, restwav=None, ctype="AWAV"):
+    """An H-alpha + [N II] cube on an air-wavelength axis with a sloped continuum (in units
+    of the noise) and, by default, no RESTWAV.  Returns (lambda in Angstrom, truth dict)."""
+    rng = np.random.default_rng(seed)
+    crval, cdelt = 6540.0, 0.4
+    extra = {} if restwav is None else {"RESTWAV": restwav}
+    h = make_header(ctype, nchan=nchan, ny=ny, nx=nx, crval=crval * 1e-10, cdelt=cdelt * 1e-10,
+                    cunit="m", extra=extra)
+    lam = crval + cdelt * np.arange(nchan)
+
+    def gauss(l0, s_kms, a):
+        mu, s = l0 * (1 + v / C_KMS), l0 * s_kms / C_KMS
+        return a * np.exp(-0.5 * ((lam - mu) / s) ** 2)
+
+    lines = gauss(HALPHA_AIR, sigma, amp) + gauss(NII_6583_AIR, 15, 4) + gauss(NII_6548_AIR, 15, 4 / 3)
+    x = (lam - lam.mean()) / (np.ptp(lam) / 2)
+    cont = level + slope * x
+    data = (lines + cont)[:, None, None] + rng.normal(0, noise, (nchan, ny, nx))
+    fits.writeto(path, data.astype(np.float32), h, overwrite=True)
+    lam_ha = HALPHA_AIR * (1 + v / C_KMS)
+    truth = dict(level_at_halpha=level + slope * (lam_ha - lam.mean()) / (np.ptp(lam) / 2),
+                 flux=amp * np.sqrt(2 * np.pi) * sigma, v=v, sigma=sigma)
+    return lam, truth

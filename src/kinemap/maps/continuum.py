@@ -49,7 +49,7 @@ from kinemap.io.results import StageResult
 from kinemap.maps.noise import line_free_channels
 from kinemap.parallel.blocks import DEFAULT_MAX_MEMORY, map_blocks, read_rows
 from kinemap.spectral.axes import to_velocity
-from kinemap.spectral.catalogue import load_catalogue, medium_from_ctype
+from kinemap.spectral.catalogue import load_catalogue
 
 __all__ = ["ContinuumResult", "subtract_continuum", "parse_method", "line_positions",
            "METHODS", "AUTO_SIGMA", "AUTO_FRACTION"]

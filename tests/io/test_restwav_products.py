@@ -16,9 +16,8 @@ from astropy.io import fits
 from astropy.wcs import WCS
 
 import kinemap
-from conftest import make_header, run_cli
+from conftest import make_header, optical_cube, run_cli
 from kinemap.errors import KinemapError
-from test_continuum import optical_cube
 
 HALPHA_AIR_AA, HALPHA_VAC_AA = 6562.80, 6564.61  # NIST ASD; from memory
 
