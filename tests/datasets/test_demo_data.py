@@ -57,6 +57,12 @@ def nebula() -> DemoCube:
     return make_nebula()
 
 
+@pytest.fixture(scope="module")
+def nebula_lines() -> DemoCube:
+    """The nebula without its continuum: the line checks fit Gaussians alone."""
+    return make_nebula(continuum=0.0, continuum_slope=0.0)
+
+
 def _spectral_cube(hdu):
     spectral_cube = pytest.importorskip("spectral_cube")
     return spectral_cube.SpectralCube.read(hdu)
@@ -101,7 +107,23 @@ def test_header_reads_with_astropy_wcs_and_spectral_cube(which, galaxy, nebula):
         assert wcs.wcs.ctype[2] == "AWAV"
 
 
-def test_nebula_restwav_is_vacuum_and_wcslib_puts_zero_velocity_at_air_rest(nebula):
+def test_nebula_has_no_restwav_by_default(nebula):
+    """Cubes holding many lines usually carry no RESTWAV; the demo nebula is such a cube."""
+    assert "RESTWAV" not in nebula.hdu.header
+    assert nebula.truth["restwav_in_header"] is False
+
+
+def test_nebula_continuum_is_a_sloped_line_under_the_lines():
+    """With the lines and the noise off, the cube is the continuum alone: level at the
+    band's middle, +-slope at its ends (exact)."""
+    c = make_nebula(noise_rms=0.0, halpha_peak_flux=1e-9)
+    spec = c.hdu.data[:, 0, 0].astype(float)
+    assert spec.mean() == pytest.approx(5.0, rel=1e-3)
+    assert spec[-1] - spec[0] == pytest.approx(4.0, rel=1e-3)
+
+
+def test_nebula_restwav_is_vacuum_and_wcslib_puts_zero_velocity_at_air_rest():
+    nebula = make_nebula(write_restwav=True)
     hdr = nebula.hdu.header
     # RESTWAV is the vacuum rest wavelength in metres (FITS WCS Paper III, Greisen et al.
     # 2006; from memory); vacuum H-alpha is 6564.61 Angstrom (NIST ASD; from memory).
@@ -318,13 +340,13 @@ def _bright_pixels(truth, n=3):
     return picks[:n]
 
 
-def test_nebula_halpha_centroid_follows_the_doppler_formula(nebula):
-    t = nebula.truth
-    lam = WCS(nebula.hdu.header).spectral.pixel_to_world(
-        np.arange(nebula.hdu.header["NAXIS3"])).to_value(u.AA)
+def test_nebula_halpha_centroid_follows_the_doppler_formula(nebula_lines):
+    t = nebula_lines.truth
+    lam = WCS(nebula_lines.hdu.header).spectral.pixel_to_world(
+        np.arange(nebula_lines.hdu.header["NAXIS3"])).to_value(u.AA)
     np.testing.assert_allclose(lam, t["wavelength_air_angstrom"], atol=1e-6)
     for y, x in _bright_pixels(t):
-        spec = nebula.hdu.data[:, y, x].astype(float)
+        spec = nebula_lines.hdu.data[:, y, x].astype(float)
         near = np.abs(lam - HALPHA_AIR.value) < 3.0
         k = np.flatnonzero(near)[np.argmax(spec[near])]
         win = slice(k - 8, k + 9)  # +-2 Angstrom, about +-5 sigma
@@ -390,13 +412,13 @@ def _sigma_instr(header):
     return C_KMS / header["SPEC_RES"] / 2.35482
 
 
-def test_nebula_line_widths_match_the_budget(nebula):
-    t = nebula.truth
+def test_nebula_line_widths_match_the_budget(nebula_lines):
+    t = nebula_lines.truth
     lam = t["wavelength_air_angstrom"]
     noise = t["noise_rms_1e-20_erg_s_cm2_angstrom"]
-    sigma_instr = _sigma_instr(nebula.hdu.header)
+    sigma_instr = _sigma_instr(nebula_lines.hdu.header)
     for y, x in _bright_pixels(t):
-        spec = nebula.hdu.data[:, y, x].astype(float)
+        spec = nebula_lines.hdu.data[:, y, x].astype(float)
         popt, perr = _fit_three_lines(spec, lam, noise)
         expected = _width_budget(t, y, x, sigma_instr)
         for rest, i, exp in ((HALPHA_AIR, 0, expected[0]), (NII6583_AIR, 6, expected[1])):
@@ -416,18 +438,18 @@ def test_nebula_line_widths_match_the_budget(nebula):
             assert abs(v_fit - t["velocity_kms"][y, x]) < 4 * v_err
 
 
-def test_nebula_width_pulls_over_many_pixels(nebula):
+def test_nebula_width_pulls_over_many_pixels(nebula_lines):
     """Pull test of the widths over many bright pixels: mean ~ 0, rms ~ 1."""
-    t = nebula.truth
+    t = nebula_lines.truth
     lam = t["wavelength_air_angstrom"]
     noise = t["noise_rms_1e-20_erg_s_cm2_angstrom"]
-    sigma_instr = _sigma_instr(nebula.hdu.header)
-    peak = nebula.hdu.data.max(axis=0)
+    sigma_instr = _sigma_instr(nebula_lines.hdu.header)
+    peak = nebula_lines.hdu.data.max(axis=0)
     ys, xs = np.nonzero(peak > 60 * noise)
     pick = np.linspace(0, ys.size - 1, 60).astype(int)
     pulls, pulls_no_fs = [], []
     for y, x in zip(ys[pick], xs[pick]):
-        popt, perr = _fit_three_lines(nebula.hdu.data[:, y, x].astype(float), lam, noise)
+        popt, perr = _fit_three_lines(nebula_lines.hdu.data[:, y, x].astype(float), lam, noise)
         to_kms = C_KMS / HALPHA_AIR.value
         ha, nii = _width_budget(t, y, x, sigma_instr)
         ha_no_fs, _ = _width_budget(t, y, x, sigma_instr, fine_structure=0.0)

@@ -45,7 +45,9 @@ def make_nebula(
     nii_ratio_range=(0.3, 0.5),
     halpha_peak_flux: float = 400.0,
     noise_rms: float = 1.0,
-    continuum: float = 0.0,
+    continuum: float = 5.0,
+    continuum_slope: float = 2.0,
+    write_restwav: bool = False,
     center_offset=(1.5 * u.arcsec, -2.0 * u.arcsec),
     reference_position=(112.5, -18.75) * u.deg,
 ) -> DemoCube:
@@ -95,7 +97,15 @@ def make_nebula(
     noise_rms : float [1e-20 erg/s/cm2/Angstrom]
         White-noise sigma per channel and pixel (0 for noise-free).
     continuum : float [1e-20 erg/s/cm2/Angstrom]
-        Flat continuum level (default none).
+        Continuum level at the middle of the band (default 5, five times the noise:
+        integral-field cubes of nebulae arrive with a continuum under the lines).
+    continuum_slope : float [1e-20 erg/s/cm2/Angstrom]
+        Change of the continuum from the middle to either end of the band (a straight
+        line in wavelength; default 2).
+    write_restwav : bool
+        Write RESTWAV (the vacuum rest wavelength of H-alpha).  Off by default: cubes
+        holding many lines usually have none, and kinemap takes rest values from its line
+        catalogue.
     center_offset : pair [arcsec]
         Offset (east, north) of the nebula centre from the reference position.
     reference_position : pair [deg]
@@ -125,13 +135,17 @@ def make_nebula(
         nonthermal_range=nonthermal_range, nii_ratio_range=nii_ratio_range, halpha_peak_flux=halpha_peak_flux,
         noise_rms=noise_rms, continuum=continuum, center_offset=center_offset,
         reference_position=reference_position)
+    o.slope = scalar(continuum_slope, u.one, "continuum_slope")
+    o.write_restwav = bool(write_restwav)
     x_ref, y_ref = o.nx // 2, o.ny // 2
     x_c = x_ref - o.east0 / o.pix
     y_c = y_ref + o.north0 / o.pix
     f = _nebula_fields(o, x_c, y_c)
 
     # ---- cube ------------------------------------------------------------------------
-    data = np.full((o.n_chan, o.ny, o.nx), o.cont)
+    half = (o.lam - o.lam.mean()) / (np.ptp(o.lam) / 2.0)  # -1 .. 1 across the band
+    continuum_spectrum = o.cont + o.slope * half
+    data = np.broadcast_to(continuum_spectrum[:, None, None], (o.n_chan, o.ny, o.nx)).copy()
     for key, flux, sig in (("halpha", f["f_ha"], f["sig_h_obs"]), ("nii6548", f["f_n48"], f["sig_n_obs"]),
                            ("nii6583", f["f_n83"], f["sig_n_obs"])):
         lam0 = _AIR_WAVELENGTHS_ANGSTROM[key]
@@ -144,9 +158,12 @@ def make_nebula(
         data += o.noise * rng.standard_normal(data.shape)
 
     restwav_vac = _air_to_vacuum_m(_AIR_WAVELENGTHS_ANGSTROM["halpha"] * 1e-10)
-    hdu = cube_hdu(data, _nebula_cards(o, restwav_vac, x_ref, y_ref), [
-        ("COMMENT", "RESTWAV is the vacuum wavelength (FITS WCS Paper III); the air rest "
-                    "wavelength of H-alpha is 6562.80 Angstrom."),
+    cards = _nebula_cards(o, restwav_vac, x_ref, y_ref)
+    if not write_restwav:
+        cards = [c for c in cards if c[0] != "RESTWAV"]
+    hdu = cube_hdu(data, cards, [
+        ("COMMENT", "RESTWAV, when present, is the vacuum wavelength (FITS WCS Paper III); "
+                    "the air rest wavelength of H-alpha is 6562.80 Angstrom."),
         ("HISTORY", "Invented demo cube made by kinemap.datasets.generate.make_nebula."),
         ("HISTORY", "H-alpha + [N II] 6548/6583; optical velocity convention; no seeing."),
     ])
@@ -299,6 +316,11 @@ def _nebula_truth(o, hdu, restwav_vac, x_c, y_c, f) -> dict[str, Any]:
         "pixel_scale_arcsec": o.pix,
         "noise_rms_1e-20_erg_s_cm2_angstrom": o.noise,
         "continuum_1e-20_erg_s_cm2_angstrom": o.cont,
+        "continuum_slope_1e-20_erg_s_cm2_angstrom": o.slope,
+        "continuum_at_halpha_1e-20_erg_s_cm2_angstrom": float(
+            o.cont + o.slope * (_AIR_WAVELENGTHS_ANGSTROM["halpha"] * (1 + o.v_sys / C_KMS)
+                                - o.lam.mean()) / (np.ptp(o.lam) / 2.0)),
+        "restwav_in_header": o.write_restwav,
         "center_x_pix": float(x_c),
         "center_y_pix": float(y_c),
         "center_ra_deg": float(centre_sky.ra.deg),

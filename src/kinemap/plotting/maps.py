@@ -6,6 +6,8 @@ with percentile limits; status maps a discrete map with a legend of the codes.
 """
 from __future__ import annotations
 
+import textwrap
+
 import astropy.units as u
 import matplotlib
 import numpy as np
@@ -49,10 +51,11 @@ def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float
     FigureCanvasAgg(fig)
     ax = fig.add_subplot(111, projection=meta.wcs)
     vals = _finite(data)
-    label = title
+    # a long description goes in the (wrapped) title; the colour bar keeps the unit
+    label = title if len(title) <= 40 else ""
     unit = u.Unit(unit)
     if unit != u.one:
-        label += f" [{unit.to_string()}]"
+        label = f"{label} [{unit.to_string()}]".strip()
     if kind == "status":
         codes = list(Status)
         colours = ["#2c7bb6", "#fdae61", "#ffffbf", "#d7d7d7", "#7f7f7f", "#ffffff",
@@ -86,7 +89,7 @@ def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float
     lon, lat = ax.coords[0], ax.coords[1]
     lon.set_axislabel(_axis_label(meta.wcs, 0))
     lat.set_axislabel(_axis_label(meta.wcs, 1))
-    ax.set_title(title)
+    ax.set_title(textwrap.fill(title, 60), fontsize=10 if len(title) > 60 else None)
     fig.tight_layout()
     return fig
 
