@@ -130,8 +130,50 @@ class Cube:
             return np.ones_like(v)
         return np.abs(np.gradient(v))
 
+    def with_rest_value(self, rest_value) -> "Cube":
+        """The same cube with velocities measured from another rest value (a quantity or
+        a catalogue line name, taken in the cube's medium), in the same convention and
+        frame.  The velocities go through frequency or wavelength with the old rest value,
+        so a frame change made on reading is kept."""
+        from kinemap.errors import KinemapError
+        from kinemap.spectral.axes import check_rest_value, from_velocity, to_velocity
+
+        rest = _rest_in_medium(rest_value, self.meta.medium)
+        old = self.meta.rest_value
+        if old is None:
+            raise KinemapError("the cube's axis is a velocity axis with no rest value, so "
+                               "velocities cannot be moved to another line; give the cube's "
+                               "rest value with --rest-value")
+        rest = check_rest_value(rest)
+        physical = from_velocity(self.velocity, convention=self.meta.convention,
+                                 rest_value=old, unit=old.unit)
+        velocity = to_velocity(physical.to(rest.unit, equivalencies=u.spectral()),
+                               convention=self.meta.convention, rest_value=rest)
+        return replace(self, velocity=velocity, meta=replace(self.meta, rest_value=rest))
+
     def with_changes(self, **kwargs) -> "Cube":
         """A copy with fields replaced; new data drop the file source (it no longer applies)."""
         if "data" in kwargs and "source" not in kwargs:
             kwargs["source"] = None
         return replace(self, **kwargs)
+
+
+def _rest_in_medium(value, medium):
+    """A rest Quantity from a Quantity, a string with a unit or a catalogue line name (in
+    the cube's medium: air or vacuum wavelength, or frequency)."""
+    if isinstance(value, u.Quantity):
+        return value
+    from kinemap.spectral.catalogue import get_line, load_catalogue
+
+    from kinemap.errors import KinemapError
+
+    text = str(value).strip()
+    catalogue = load_catalogue()
+    if text in catalogue:
+        return get_line(text).rest_value(medium if medium in ("air", "vacuum") else "frequency")
+    try:
+        return u.Quantity(text)
+    except (TypeError, ValueError):
+        raise KinemapError(f"{text!r} is neither a rest value nor a catalogue line; give a "
+                           f"value such as '6562.80 Angstrom' or one of "
+                           f"{', '.join(catalogue)}") from None

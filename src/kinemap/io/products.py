@@ -37,6 +37,9 @@ class Product:
         FITS keywords specific to this product (e.g. the status code table).
     wcs : astropy.wcs.WCS, optional
         For a cube that does not span the run's channels (a velocity window): its own WCS.
+    meta : CubeMeta, optional
+        Conventions and provenance of this product when they differ from the run's (a map
+        of one line of several has its own rest value).
     """
 
     key: str
@@ -47,6 +50,7 @@ class Product:
     plot: bool = True
     extra_header: dict = field(default_factory=dict)
     wcs: object = None
+    meta: object = None
 
     @property
     def is_table(self) -> bool:

@@ -9,13 +9,14 @@ FITS/ECSV/PNG/manifest files the command writes.
 """
 from __future__ import annotations
 
+from dataclasses import dataclass, replace
 from typing import ClassVar
 
 import numpy as np
 
 from kinemap.io.products import Product
 
-__all__ = ["StageResult", "to_projection", "radio_beam_of"]
+__all__ = ["StageResult", "PerLine", "to_projection", "radio_beam_of"]
 
 
 def radio_beam_of(meta):
@@ -86,7 +87,7 @@ class StageResult:
         p = products[name]
         if p.is_table or np.ndim(p.data) != 2:
             return p.data
-        return to_projection(p, getattr(self, "meta", None))
+        return to_projection(p, p.meta or getattr(self, "meta", None))
 
     def __dir__(self):
         return sorted(set(super().__dir__()) | set(self._product_map()))
@@ -97,3 +98,33 @@ class StageResult:
         from kinemap.io.writer import write_results
 
         return write_results([self], folder, overwrite=overwrite, plots=plots)
+
+
+@dataclass(frozen=True)
+class PerLine(StageResult):
+    """Results of the same stages for several lines of one cube.
+
+    ``results`` maps a line name to that line's results (moment maps, fits); every product
+    key gets the suffix ``_<LINE>`` (``moment1_Halpha``) and keeps its line's rest value in
+    its header.  ``results['Halpha'][0]`` is the line's first result itself.
+    """
+
+    name: ClassVar[str] = "lines"
+
+    results: dict
+    meta: object = None
+
+    def products(self) -> list[Product]:
+        out = []
+        for line, results in self.results.items():
+            for r in results:
+                for p in r.products():
+                    if p.key == "noise":  # the same for every line: written once, unsuffixed
+                        continue
+                    out.append(replace(p, key=f"{p.key}_{line}",
+                                       description=f"{p.description} ({line})", meta=r.meta))
+        return out
+
+    def summary(self) -> dict:
+        return {line: {r.name: r.summary() for r in results if r.summary()}
+                for line, results in self.results.items()}

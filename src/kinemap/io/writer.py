@@ -89,7 +89,7 @@ def write_products(folder, meta, products, *, options: dict, timings: dict,
         else:
             arr = np.asarray(p.data)
             name = f"{p.key}.fits"
-            header = product_header(meta, unit=p.unit, description=p.description, key=p.key,
+            header = product_header(p.meta or meta, unit=p.unit, description=p.description, key=p.key,
                                     options=options, ndim=arr.ndim, extra=p.extra_header,
                                     wcs=p.wcs)
             write_fits(folder / name, arr, header)

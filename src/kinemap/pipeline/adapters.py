@@ -38,9 +38,12 @@ def parse_line_free(value):
 
 
 def reference_line(cfg: dict) -> str | None:
-    """The run's line: [maps] line, else the first [widths] line of a widths run."""
+    """The run's line: [maps] line, else the first of [maps] lines, else the first
+    [widths] line of a widths run."""
     if cfg["maps"]["line"]:
         return cfg["maps"]["line"]
+    if cfg["maps"]["lines"]:
+        return cfg["maps"]["lines"][0]
     if "widths" in cfg.get("_sections", ()) and cfg["widths"]["lines"]:
         return cfg["widths"]["lines"][0]
     return None

@@ -31,7 +31,8 @@ Sections and keys (defaults in brackets)::
               "velocity", snr_threshold [3], min_separation [1] (sigma),
               min_component_snr [3], write_model [false], vrange (velocity window of the
               moments and fits only; other stages see the whole cube), line (a catalogue
-              line: rest value and a default vrange up to the neighbouring lines)
+              line: rest value and a default vrange up to the neighbouring lines),
+              lines [[]] (maps of each named line, keys suffixed with its name)
     [rings]   center ("RA,DEC"), position_angle, inclination, v_sys, ring_width (arcsec),
               distance (Mpc), weighting ["cos"] | "cos2" | "uniform", exclude_minor_axis
               [20] (deg), stages [[1, 2, 3]], final_geometry ["median"] | "polynomial" |
@@ -351,6 +352,10 @@ SCHEMA: dict[str, dict[str, Option]] = {
                             "neighbouring catalogue lines"),
         "vrange": Option((list, tuple, str, _NONE), parse=_pair, cli=False, unit="km/s",
                          help="velocity window of the moments and fits only"),
+        "lines": Option((list, str), [], parse=_names, metavar="NAME[,NAME...]",
+                        help="catalogue lines to map one by one (e.g. Halpha,NII_6583): "
+                             "moment (and fit) maps of each on its own velocity axis and "
+                             "window, keys suffixed with the line's name"),
     },
     "rings": {
         "center": Option((str, _NONE), metavar="RA,DEC",

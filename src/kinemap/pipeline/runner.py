@@ -94,15 +94,18 @@ def _maps_window(state):
             continuum = state.results.get("continuum")
             window = line_window_range(state.cube, line, centres=getattr(continuum, "lines", None),
                                        catalogue=state.config["widths"]["catalogue"])
-        if window is None:
-            state.window = (state.cube, state.mask)
-        else:
-            cube, cs = select_channels(state.cube, ad.parse_vrange(window))
-            mask = state.mask
-            if mask is not None and mask.mask is not None:
-                mask = replace(mask, mask=mask.mask[cs])
-            state.window = (cube, mask)
+        state.window = _cut(state.cube, state.mask, window)
     return state.window
+
+
+def _cut(cube, mask, window):
+    """``cube`` and ``mask`` cut to the velocity ``window`` (None: as they are)."""
+    if window is None:
+        return cube, mask
+    cut, cs = select_channels(cube, ad.parse_vrange(window))
+    if mask is not None and mask.mask is not None:
+        mask = replace(mask, mask=mask.mask[cs])
+    return cut, mask
 
 
 def _wants_fit(state) -> bool:
@@ -135,6 +138,30 @@ def stage_model(state: RunState):
     from kinemap.linefit.stage import model_cubes
 
     return _timed(state, "model", model_cubes, fit, _maps_window(state)[0])
+
+
+def stage_lines(state: RunState):
+    """[maps] lines: moments (and fits) of each named line on its own velocity axis and
+    window, products suffixed with the line's name."""
+    lines = state.config["maps"]["lines"]
+    if not lines:
+        return None
+    from kinemap.io.results import PerLine
+
+    per_line = {}
+    for line in lines:
+        cube = state.cube.with_rest_value(line)
+        window = line_window_range(cube, line, catalogue=state.config["widths"]["catalogue"])
+        cube, mask = _cut(cube, state.mask, window)
+        results = [_timed(state, "moments", compute_moments, cube, mask=mask, noise=state.noise,
+                          **ad.moments_kwargs(state.config), **state.blocks)]
+        if state.config["maps"]["method"] == "gauss":
+            from kinemap.linefit.stage import fit_cube
+
+            results.append(_timed(state, "fit", fit_cube, cube, noise=state.noise, mask=mask,
+                                  **ad.fit_kwargs(state.config), **state.blocks))
+        per_line[line] = results
+    return PerLine(results=per_line, meta=state.cube.meta)
 
 
 def _velocity_input(state):
@@ -187,7 +214,8 @@ def stage_widths(state: RunState):
 # (config section, result name, stage function).  A stage runs when its section is in the
 # config; later capabilities add their entry here.
 STAGES = [("maps", "moments", stage_moments), ("maps", "fit", stage_fit),
-          ("maps", "model", stage_model), ("rings", "rings", stage_rings),
+          ("maps", "model", stage_model), ("maps", "lines", stage_lines),
+          ("rings", "rings", stage_rings),
           ("widths", "widths", stage_widths)]
 
 
