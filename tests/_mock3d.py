@@ -23,8 +23,8 @@ def mock_disk(*, n=48, pix=4.0, nchan=60, dv=5.0, vsys=30.0, pa=60.0, inc=55.0,
     radii in arcsec; a circular beam of FWHM ``beam`` arcsec; peak face-on Sigma 1."""
     off = (np.arange(sub) + 0.5) / sub - 0.5
     yy, xx = np.mgrid[0:n, 0:n]
-    x = (xx[..., None, None] + off[None, None, None, :]).reshape(n, n, -1)
-    y = (yy[..., None, None] + off[None, None, :, None]).reshape(n, n, -1)
+    x = (xx[..., None, None] + off[None, None, None, :] + 0 * off[:, None]).reshape(n, n, -1)
+    y = (yy[..., None, None] + off[None, None, :, None] + 0 * off[None, :]).reshape(n, n, -1)
     east, north = -(x - center[0]) * pix, (y - center[1]) * pix
     p, i = np.deg2rad(pa), np.deg2rad(inc)
     xd = east * np.sin(p) + north * np.cos(p)

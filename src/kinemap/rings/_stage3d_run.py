@@ -159,11 +159,11 @@ def _smooth(mode, radii, geom, errs, glob):
     return out
 
 
-def _final(prob, p, expansion, bar_desc=None):
+def _final(prob, p, expansion, max_nfev=30):
     """Joint v_rot, dispersion (and v_exp) of every ring with the geometry held."""
     n = prob.model.radii.size
     free = _ring_free(n, expansion)
-    q, res, J = fit3d.fit_params(prob, p, free, max_nfev=30)
+    q, res, J = fit3d.fit_params(prob, p, free, max_nfev=max_nfev)
     return q, res, J, free
 
 
@@ -180,7 +180,7 @@ def _halves(prob, p, expansion):
     for side in (along < 0, along > 0):
         sub = prob.restricted(side)
         try:
-            q, *_ = _final(sub, p, expansion)
+            q, *_ = _final(sub, p, expansion, max_nfev=10)  # starts at the joint solution
             out.append(np.asarray(q["v_rot"]))
         except (ValueError, np.linalg.LinAlgError):
             out.append(np.full(m.radii.size, np.nan))
