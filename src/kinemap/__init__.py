@@ -44,6 +44,8 @@ _API = {
     "LineFitMaps": "kinemap.linefit.stage",
     "fit_rings": "kinemap.rings.stage",
     "RingFit": "kinemap.rings.stage",
+    "fit_rings_3d": "kinemap.rings.stage3d",
+    "RingFit3D": "kinemap.rings.stage3d",
     "line_widths": "kinemap.widths.stage",
     "WidthBudget": "kinemap.widths.stage",
     "run": "kinemap.pipeline.runner",

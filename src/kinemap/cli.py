@@ -109,6 +109,7 @@ COMMANDS = {
               [("geometry (first guesses are automatic when not given)",
                 [("rings", k) for k in ("center", "position_angle", "inclination", "v_sys",
                                         "fix")]),
+               ("model", [("rings", "model")]),
                ("rings", [("rings", k) for k in ("ring_width", "distance", "weighting",
                                                  "exclude_minor_axis", "stages",
                                                  "final_geometry", "bootstrap")]),
@@ -255,6 +256,10 @@ def _cmd_rings(args) -> int:
     state = run_config(cfg)
     _report(state, cfg["output"]["dir"])
     s = state.results["rings"].summary()
+    if state.cube is not None:
+        print(f"kinemap: model {cfg['rings']['model']} "
+              + ("(disk model fitted to the cube)" if cfg["rings"]["model"] == "3d" else
+                 "(tilted rings on the velocity field; --model 3d fits the cube)"))
     print(f"kinemap: PA {s['position_angle_deg']:.1f} deg, inclination {s['inclination_deg']:.1f} "
           f"deg, v_sys {s['v_sys_kms']:.1f} km/s; {s['rings_fitted']} rings fitted, "
           f"{s['rings_failed']} could not be fitted (see rotation_curve.ecsv, column status)")

@@ -8,8 +8,9 @@ from __future__ import annotations
 
 from kinemap.errors import KinemapError
 
-__all__ = ["read_kwargs", "continuum_kwargs", "reference_line", "noise_kwargs", "mask_kwargs", "moments_kwargs", "fit_kwargs",
-           "rings_kwargs", "widths_kwargs", "parse_vrange", "parse_line_free"]
+__all__ = ["read_kwargs", "continuum_kwargs", "reference_line", "noise_kwargs", "mask_kwargs",
+           "moments_kwargs", "fit_kwargs", "rings_kwargs", "rings3d_kwargs", "widths_kwargs",
+           "parse_vrange", "parse_line_free"]
 
 
 def parse_vrange(value):
@@ -113,3 +114,14 @@ def widths_kwargs(cfg: dict) -> dict:
                 snr_threshold=w["snr_threshold"], baseline=w["baseline"],
                 instrument_sigma=m["instrument_sigma"],
                 resolving_power=m["resolving_power"], channel_response=m["channel_response"])
+
+
+def rings3d_kwargs(cfg: dict) -> dict:
+    """Keyword arguments of :func:`kinemap.rings.stage3d.fit_rings_3d`."""
+    r = cfg["rings"]
+    return dict(center=r["center"], position_angle=r["position_angle"],
+                inclination=r["inclination"], v_sys=r["v_sys"], ring_width=r["ring_width"],
+                distance=r["distance"], stages=r["stages"], final_geometry=r["final_geometry"],
+                fix=r["fix"], bootstrap=r["bootstrap"], seed=r["seed"],
+                expansion=r["expansion_in_geometry"], scale_height=r["scale_height"],
+                loss=r["loss"], channel_response=cfg["maps"]["channel_response"])

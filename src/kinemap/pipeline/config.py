@@ -38,7 +38,9 @@ Sections and keys (defaults in brackets)::
               [20] (deg), stages [[1, 2, 3]], final_geometry ["median"] | "polynomial" |
               "rings" | "global", fix [[]], min_points [20], bootstrap [0], seed [0],
               expansion_in_geometry [false], pv_diagram [true], velocity_field ["gauss"] |
-              "moments" (for a cube input: Gaussian fits or moment 1)
+              "moments" (for a cube input: Gaussian fits or moment 1), model ["2d"] | "3d"
+              (3d fits a disk model to the cube), scale_height [0] (arcsec, 3d),
+              loss ["chi2"] | "absolute" (3d)
     [widths]  lines (required; names from the catalogue, brightest first), temperature
               ("1e4 K") or temperature_map (FITS, K), temperature_err, mu [2.33],
               free_velocity [false], ratios [{"NII_6583/NII_6548" = 3.0}], catalogue (extra
@@ -396,6 +398,13 @@ SCHEMA: dict[str, dict[str, Option]] = {
                                         help="fit v_exp in the geometry stages too"),
         "pv_diagram": Option((bool,), True, cli=False,
                              help="plot the position-velocity diagram of a cube input"),
+        "model": Option((str,), "2d", choices=("2d", "3d"),
+                        help="2d: rings on a velocity field; 3d: fit a disk model to the cube "
+                             "(beam smearing and pressure support; needs a cube)"),
+        "scale_height": Option((int, float, str), 0.0, metavar="H", unit="arcsec", cli=False,
+                               help="3d: sech^2 scale height of the disk, held fixed"),
+        "loss": Option((str,), "chi2", choices=("chi2", "absolute"), cli=False,
+                       help="3d: minimise chi^2 or a soft absolute residual"),
         "velocity_field": Option((str,), "gauss", choices=("gauss", "moments"),
                                  aliases=("--method",),
                                  help="for a cube input: velocity field from Gaussian fits "

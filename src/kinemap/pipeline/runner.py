@@ -188,6 +188,16 @@ def _velocity_input(state):
 def stage_rings(state: RunState):
     from kinemap.rings.stage import fit_velocity_arrays
 
+    if state.config["rings"]["model"] == "3d":
+        if state.cube is None:
+            raise KinemapError("--model 3d fits the cube itself: give a cube, not a velocity "
+                               "map (or use --model 2d)")
+        from kinemap.rings.stage3d import fit_rings_3d
+
+        return _timed(state, "rings3d", fit_rings_3d, state.cube, noise=state.noise,
+                      mask=state.mask, progress=state.blocks["progress"],
+                      **ad.rings3d_kwargs(state.config))
+
     v, err, inten, meta = _velocity_input(state)
     return _timed(state, "rings", fit_velocity_arrays, v, err, inten, meta,
                   cube=state.cube, progress=state.blocks["progress"],

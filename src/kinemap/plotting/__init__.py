@@ -17,6 +17,8 @@ def figures_for(result) -> dict:
         from kinemap.plotting.linefit import figures
     elif name == "rings":
         from kinemap.plotting.rings import figures
+    elif name == "rings3d":
+        from kinemap.plotting.rings3d import figures
     elif name == "widths":
         from kinemap.plotting.widths import figures
     else:

@@ -1,0 +1,228 @@
+"""Fitting the 3D disk model to a cube: the least-squares machinery (private to rings).
+
+The cube is compared with :class:`kinemap.rings.disk3d.DiskModel` inside the signal mask,
+each voxel weighted by 1 / (noise of its pixel).  Free parameters are either shared by
+all rings (``(name, None)``: the global geometry) or belong to one ring (``(name, k)``).
+The Jacobian is built by finite differences, and the column of a ring parameter only
+re-renders the annuli that parameter touches, on the pixel box they can reach after the
+beam (:meth:`DiskModel.render_rings`): an outer ring costs a small part of a full model,
+an inner one almost nothing.
+
+The surface brightness is not a free parameter: for a given geometry the model's moment
+0 is linear in the rings' Sigma_k, which are solved by non-negative least squares against
+the data's moment 0 (ring-by-ring normalisation; see :meth:`Problem.surface_brightness`).
+
+Errors: the covariance is the sandwich A^-1 B A^-1 with A = J^T J and B = J^T R J, R the
+correlation of the noise between voxels: the beam's shape across pixels (an
+interferometer image's noise is correlated like its beam; the same assumption as the
+"independent pixels per beam" scaling of the 2D fit, which this makes exact for any
+Jacobian) and the channel response's correlation along the spectrum.  It is multiplied
+by the reduced chi^2 when that exceeds 1 (common practice).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.fft as sfft
+from scipy.optimize import least_squares, nnls
+
+from kinemap.rings.disk3d import DiskModel, beam_kernel
+from kinemap.spectral.response import noise_correlation
+
+__all__ = ["Problem", "fit_params", "covariance", "STEPS"]
+
+# finite-difference steps (small against any fitted change, large against round-off)
+STEPS = {"x_center": 0.02, "y_center": 0.02, "position_angle": 0.05, "inclination": 0.05,
+         "v_sys": 0.1, "v_rot": 0.1, "v_exp": 0.1, "dispersion": 0.05}
+_BOUNDS = {"inclination": (3.0, 88.0), "dispersion": (0.3, 300.0), "v_rot": (-2000.0, 2000.0),
+           "v_exp": (-2000.0, 2000.0)}
+
+
+@dataclass(eq=False)
+class Problem:
+    """The data side of a 3D fit: cube, voxels used, weights, moment 0."""
+
+    model: DiskModel
+    data: np.ndarray          # (nchan, ny, nx) float64, NaN replaced by 0
+    mask: np.ndarray          # (nchan, ny, nx) bool: voxels compared
+    weight: np.ndarray        # (ny, nx): 1 / noise sigma (0 where unknown)
+    moment0: np.ndarray       # (ny, nx): data summed over all channels x |dv|
+    footprint: np.ndarray     # (ny, nx) bool: pixels with any masked voxel
+    loss: str = "chi2"
+
+    def __post_init__(self):
+        self.idx = np.nonzero(self.mask)
+        self.w = self.weight[self.idx[1], self.idx[2]]
+        self.d = self.data[self.idx] * self.w
+
+    def restricted(self, keep2d) -> "Problem":
+        """The same problem with only the pixels where ``keep2d`` (a half of the disk)."""
+        return Problem(self.model, self.data, self.mask & keep2d[None], self.weight,
+                       self.moment0, self.footprint & keep2d, self.loss)
+
+    def resid(self, cube):
+        return self.d - cube[self.idx] * self.w
+
+    def box_column(self, sub, box):
+        """Weighted values of a box cube ``sub`` at the masked voxels (0 outside the box)."""
+        ys, xs = box
+        c, y, x = self.idx
+        inside = (y >= ys.start) & (y < ys.stop) & (x >= xs.start) & (x < xs.stop)
+        col = np.zeros(c.size)
+        col[inside] = sub[c[inside], y[inside] - ys.start, x[inside] - xs.start] * self.w[inside]
+        return col
+
+    def surface_brightness(self, p):
+        """Face-on Sigma per ring whose model moment 0 best matches the data's (NNLS over the
+        mask's footprint, pixels weighted by their noise).
+
+        Rings half a beam wide make this a deconvolution, so a weak penalty on the second
+        difference of Sigma between rings (Tikhonov regularisation; common practice) keeps
+        neighbouring rings from trading flux in an alternating pattern."""
+        basis = self.model.surface_basis(p)
+        fp = self.footprint
+        w = self.weight[fp]
+        a = (basis[:, fp] * w).T
+        b = self.moment0[fp] * w
+        n = basis.shape[0]
+        if n >= 3:
+            d2 = np.diff(np.eye(n), 2, axis=0)
+            lam = 1e-3 * np.trace(a.T @ a) / n
+            a = np.vstack([a, np.sqrt(lam) * d2])
+            b = np.concatenate([b, np.zeros(n - 2)])
+        sol, _ = nnls(a, b, maxiter=50 * n)
+        return sol
+
+
+def _get(p, name, k):
+    v = np.asarray(p[name], float)
+    return float(v[0] if k is None and v.ndim else (v if v.ndim == 0 else v[k]))
+
+
+def _apply(p, free, x, solve_sb, prob):
+    q = {key: (np.array(val, float) if np.ndim(val) else val) for key, val in p.items()}
+    n = prob.model.radii.size
+    for (name, k), val in zip(free, x):
+        arr = np.broadcast_to(np.asarray(q.get(name, 0.0), float), (n,)).copy()
+        if k is None:
+            arr[:] = val
+        else:
+            arr[k] = val
+        q[name] = arr
+    if solve_sb:
+        q["surface_brightness"] = prob.surface_brightness(q)
+    return q
+
+
+def fit_params(prob: Problem, p: dict, free, *, solve_sb=False, max_nfev=40, base=None):
+    """Least-squares fit of the parameters ``free`` (list of (name, ring or None)).
+
+    Returns (parameters, least_squares result, weighted Jacobian at the solution).
+    ``solve_sb`` re-solves the surface brightness for every trial geometry.
+    """
+    model = prob.model
+    x0 = np.array([_get(p, name, k) for name, k in free])
+    lo = np.array([_BOUNDS.get(name, (-np.inf, np.inf))[0] for name, _ in free])
+    hi = np.array([_BOUNDS.get(name, (-np.inf, np.inf))[1] for name, _ in free])
+    x0 = np.clip(x0, lo + 1e-6, hi - 1e-6)
+    cache = {}
+
+    def fun(x):
+        q = _apply(p, free, x, solve_sb, prob)
+        r = prob.resid(model.render(q))
+        cache.update(x=x.copy(), q=q, r=r)
+        return r
+
+    def jac(x):
+        if "x" not in cache or not np.array_equal(cache["x"], x):
+            fun(x)
+        q, r0 = cache["q"], cache["r"]
+        out = np.empty((r0.size, len(free)))
+        for j, (name, k) in enumerate(free):
+            h = STEPS.get(name, 1e-3) * (1 if x[j] + STEPS.get(name, 1e-3) <= hi[j] else -1)
+            xp = x.copy()
+            xp[j] += h
+            if k is None:
+                qp = _apply(p, free, xp, solve_sb, prob)
+                out[:, j] = (prob.resid(model.render(qp)) - r0) / h
+            else:
+                qp = _apply(p, free, xp, False, prob)
+                qp["surface_brightness"] = q["surface_brightness"]
+                box = model.ring_box(q, k)
+                diff = model.render_rings(qp, k, box) - model.render_rings(q, k, box)
+                out[:, j] = -prob.box_column(diff, box) / h
+        cache["J"] = out
+        return out
+
+    loss = "linear" if prob.loss == "chi2" else "soft_l1"
+    scale = np.array([max(STEPS.get(name, 1e-3) * 20, 1e-3) for name, _ in free])
+    res = least_squares(fun, x0, jac=jac, bounds=(lo, hi), x_scale=scale, loss=loss,
+                        max_nfev=max_nfev, xtol=1e-6, ftol=1e-7, method="trf")
+    q = _apply(p, free, res.x, solve_sb, prob)
+    J = jac(res.x)
+    return q, res, J
+
+
+def covariance(prob: Problem, J, resid, *, n_free):
+    """Sandwich covariance of the parameters from the weighted Jacobian ``J`` (see the
+    module docstring); returns (cov, reduced chi^2)."""
+    model = prob.model
+    a = J.T @ J
+    a_inv = np.linalg.pinv(a)
+    b = J.T @ _correlate(prob, J, model)
+    cov = a_inv @ b @ a_inv
+    dof = max(resid.size - n_free, 1)
+    chi2 = float(resid @ resid) / dof
+    return cov * max(1.0, chi2), chi2
+
+
+def _correlate(prob, J, model):
+    """R J: each column as a masked cube correlated like the noise, read back at the mask."""
+    rho = noise_correlation(model.response)
+    nchan, ny, nx = model.shape
+    tf = None
+    shape = None
+    if model.beam is not None:
+        m = model.margin
+        shape = (sfft.next_fast_len(ny + 2 * m), sfft.next_fast_len(nx + 2 * m))
+        k = beam_kernel(shape, *model.beam, model.jac)
+        tf = sfft.rfft2(k / k.max())  # correlation 1 at zero lag, the beam's shape
+    out = np.empty_like(J)
+    c, y, x = prob.idx
+    for j in range(J.shape[1]):
+        cube = np.zeros((nchan, *(shape or (ny, nx))))
+        cube[c, y, x] = J[:, j]
+        if tf is not None:
+            cube = sfft.irfft2(sfft.rfft2(cube, axes=(1, 2), workers=-1) * tf, s=shape,
+                               axes=(1, 2), workers=-1)
+        if rho.size > 1:
+            acc = cube.copy()
+            for lag in range(1, rho.size):
+                acc[lag:] += rho[lag] * cube[:-lag]
+                acc[:-lag] += rho[lag] * cube[lag:]
+            cube = acc
+        out[:, j] = cube[c, y, x]
+    return out
+
+
+def correlated_noise(rng, model: DiskModel, sigma2d):
+    """One realisation of noise with the beam as spatial correlation and the response's
+    channel correlation, scaled to ``sigma2d`` per pixel (for the bootstrap)."""
+    nchan, ny, nx = model.shape
+    extra = 2 if model.response == "hanning" else 0
+    if model.beam is None:
+        white = rng.standard_normal((nchan + extra, ny, nx))
+    else:
+        m = model.margin
+        shape = (sfft.next_fast_len(ny + 2 * m), sfft.next_fast_len(nx + 2 * m))
+        b = model.beam
+        # white noise smoothed by beam / sqrt(2) has the beam as its correlation
+        k = beam_kernel(shape, b[0] / np.sqrt(2), b[1] / np.sqrt(2), b[2], model.jac)
+        white = rng.standard_normal((nchan + extra, *shape))
+        white = sfft.irfft2(sfft.rfft2(white, axes=(1, 2)) * sfft.rfft2(k), s=shape,
+                            axes=(1, 2))[:, m:m + ny, m:m + nx]
+    if extra:
+        white = 0.25 * white[:-2] + 0.5 * white[1:-1] + 0.25 * white[2:]
+    white /= white.std()
+    return white * sigma2d[None]
