@@ -256,8 +256,9 @@ SCHEMA: dict[str, dict[str, Option]] = {
             help="velocity convention (default: radio for frequency axes, optical for "
                  "wavelength axes, a velocity axis keeps its own)"),
         "rest_value": Option(
-            (str, _NONE), metavar="QUANTITY",
-            help="rest frequency or wavelength, e.g. '1420.405751768 MHz' (overrides the header)"),
+            (str, _NONE), metavar="QUANTITY|LINE",
+            help="rest frequency or wavelength, e.g. '1420.405751768 MHz', or a catalogue line "
+                 "name such as Halpha (taken in the cube's medium); overrides the header"),
         "frame": Option(
             (str, _NONE), metavar="SPECSYS",
             help="spectral frame of the output velocities (TOPOCENT, BARYCENT, LSRK); "
