@@ -9,7 +9,8 @@ from __future__ import annotations
 from kinemap.errors import KinemapError
 
 __all__ = ["read_kwargs", "noise_kwargs", "mask_kwargs", "moments_kwargs", "fit_kwargs",
-           "rings_kwargs", "widths_kwargs", "parse_vrange", "parse_line_free"]
+           "rings_kwargs", "widths_kwargs",
+           "turbulence_kwargs", "parse_vrange", "parse_line_free"]
 
 
 def parse_vrange(value):
@@ -88,3 +89,11 @@ def widths_kwargs(cfg: dict) -> dict:
                 free_velocity=w["free_velocity"], ratios=w["ratios"], catalogue=w["catalogue"],
                 snr_threshold=w["snr_threshold"], instrument_sigma=m["instrument_sigma"],
                 resolving_power=m["resolving_power"], channel_response=m["channel_response"])
+
+
+def turbulence_kwargs(cfg: dict) -> dict:
+    t = cfg["turbulence"]
+    return dict(velocity_field=t["velocity_field"], distance=t["distance"],
+                lag_range=t["lag_range"], nlags=t["nlags"], weighting=t["weighting"],
+                gradient_window=t["gradient_window"], nsizes=t["nsizes"],
+                jackknife_blocks=t["jackknife_blocks"])

@@ -67,6 +67,7 @@ class TurbulenceStatistics(StageResult):
     meta: object = None
     sonic: dict | None = None
     distance_pc: float | None = None
+    matrix: np.ndarray | None = None  # arcsec east/north per pixel step (for the plots)
     seconds: float = 0.0
     settings: dict = field(default_factory=dict)
 
@@ -358,5 +359,5 @@ def turbulence_statistics(data, *, velocity_field: str = "gauss", widths=None, d
                     weighting=weighting, jackknife_blocks=int(jackknife_blocks),
                     gradient_window_arcsec=float(window), nlags=int(nlags))
     return TurbulenceStatistics(sf=sf, linewidth=lw, plane=plane, local=local, velocity=v,
-                                meta=meta, sonic=sonic, distance_pc=d_pc,
+                                meta=meta, sonic=sonic, distance_pc=d_pc, matrix=matrix,
                                 seconds=time.perf_counter() - t0, settings=settings)
