@@ -236,6 +236,18 @@ def _lag_pair(value):
     return [_number_or_text(p) if isinstance(p, str) else p for p in parts]
 
 
+def _check_lag_range(value):
+    from kinemap.turbulence.stage import check_lag_range
+
+    check_lag_range(value)
+
+
+def _check_distance_pc(value):
+    from kinemap.turbulence.stage import check_distance
+
+    check_distance(value)
+
+
 def _check_beam(value):
     from kinemap.io.beams import parse_beam
 
@@ -406,8 +418,10 @@ SCHEMA: dict[str, dict[str, Option]] = {
                                  aliases=("--method",),
                                  help="velocity field from Gaussian fits or moment 1"),
         "distance": Option((int, float, str, _NONE), metavar="DIST", unit="pc",
+                           check=_check_distance_pc,
                            help="e.g. '250 pc': sizes in pc and gradients in km/s/pc"),
         "lag_range": Option((list, tuple, str, _NONE), parse=_lag_pair, metavar="L1,L2",
+                            check=_check_lag_range,
                             unit="arcsec",
                             help="lags of the structure function's power-law fit "
                                  "(default: two beams to the largest lag)"),

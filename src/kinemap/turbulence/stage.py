@@ -227,6 +227,19 @@ def _sound(widths):
             float(np.nanmedian(np.asarray(b.temperature)[ok])))
 
 
+def check_lag_range(value):
+    """(lo, hi) arcsec of a lag range, or a KinemapError naming the fix."""
+    return _range(value, "lag_range")
+
+
+def check_distance(value):
+    """A distance in pc (plain numbers are pc), or a KinemapError naming the fix."""
+    d_pc = to_value(value, u.pc, name="distance")
+    if not d_pc > 0:
+        raise KinemapError(f"'distance' must be positive, e.g. '250 pc', got {value!r}")
+    return float(d_pc)
+
+
 def _range(value, name):
     if value is None:
         return None
@@ -339,9 +352,7 @@ def turbulence_statistics(data, *, velocity_field: str = "gauss", widths=None, d
     v, err, inten, disp, meta = _sources(data, velocity_field)
     pix = float(meta.pixel_scale_arcsec)
     beam = float(meta.beam.major.to_value(u.arcsec)) if getattr(meta, "beam", None) else None
-    d_pc = None if distance is None else to_value(distance, u.pc, name="distance")
-    if d_pc is not None and not d_pc > 0:
-        raise KinemapError(f"'distance' must be positive, e.g. '250 pc', got {distance!r}")
+    d_pc = None if distance is None else check_distance(distance)
     window = (to_value(gradient_window, u.arcsec, name="gradient_window")
               if gradient_window is not None else (3 * beam if beam else 7 * pix))
     o = dict(nlags=int(nlags), weighting=weighting, jackknife_blocks=int(jackknife_blocks),
