@@ -10,6 +10,7 @@ Data flow (one direction)::
     fit = kinemap.fit_cube(cube, noise=noise, mask=mask)     # LineFitMaps
     rings = kinemap.fit_rings(fit, distance="10 Mpc")        # RingFit
     widths = kinemap.line_widths(cube, lines=["13CO_1-0"], temperature="10 K")  # WidthBudget
+    turb = kinemap.turbulence_statistics(fit, widths=widths, distance="250 pc")  # TurbulenceStatistics
     moments.moment1                                          # a Projection in km/s
     rings.table                                              # a QTable, one row per ring
     fit.write("out")                                         # FITS, PNG, manifest.json
@@ -48,6 +49,8 @@ _API = {
     "RingFit3D": "kinemap.rings.stage3d",
     "line_widths": "kinemap.widths.stage",
     "WidthBudget": "kinemap.widths.stage",
+    "turbulence_statistics": "kinemap.turbulence.stage",
+    "TurbulenceStatistics": "kinemap.turbulence.stage",
     "run": "kinemap.pipeline.runner",
     "Status": "kinemap.status",
 }
@@ -56,7 +59,7 @@ __all__ = ["__version__", "KinemapError", "KinemapWarning", *_API]
 
 
 _SUBPACKAGES = ("io", "spectral", "parallel", "maps", "linefit", "rings", "widths",
-                "plotting", "pipeline", "datasets", "status", "units", "errors")
+                "turbulence", "plotting", "pipeline", "datasets", "status", "units", "errors")
 
 
 def __getattr__(name):

@@ -127,6 +127,18 @@ COMMANDS = {
                     ("widths", "baseline")]),
                 ("signal mask", [("mask", "method")]),
                 _READING, _CONTINUUM, _OUTPUT, _EXECUTION]),
+    "turbulence": ("structure function, size-linewidth, sonic scale, velocity gradients",
+                   ("cube", "the cube (FITS)"), ("turbulence",),
+                   [("turbulence", [("turbulence", k) for k in (
+                       "velocity_field", "distance", "lag_range", "nlags", "weighting",
+                       "gradient_window")]),
+                    ("line widths (--lines adds sigma_nt and the sonic scale)",
+                     [("widths", k) for k in ("lines", "temperature", "temperature_err",
+                                              "temperature_map", "mu")]),
+                    ("Gaussian fits", [("maps", k) for k in ("components", "snr_threshold",
+                                                             "channel_response")]),
+                    ("signal mask", [("mask", "method"), ("mask", "threshold")]),
+                    _READING, _CONTINUUM, _OUTPUT, _EXECUTION]),
 }
 
 
@@ -170,7 +182,7 @@ def _add_option(g, section, key, sections):
         kw["choices"] = opt.choices
     else:
         kw["metavar"] = opt.metavar
-    if opt.required:
+    if opt.required and section in sections:  # optional where the section is an extra
         kw["required"] = True
     g.add_argument(flag, *opt.aliases, type=_value_type(section, key), **kw)
     for short, value in opt.shortcuts:
@@ -281,6 +293,32 @@ def _cmd_widths(args) -> int:
     return 0
 
 
+def _cmd_turbulence(args) -> int:
+    from kinemap.pipeline.runner import run_config
+
+    cfg = config_from_args(args)
+    state = run_config(cfg)
+    _report(state, cfg["output"]["dir"])
+    s = state.results["turbulence"].summary()
+
+    def show(key, fmt):
+        value, err = s.get(key), s.get(key.replace("_slope", "_slope_err"))
+        return "n/a" if value is None else format(value, fmt) + (
+            f" +- {err:{fmt}}" if err is not None and key.endswith("slope") else "")
+    grad = next(k for k in s if k.startswith("gradient_kms"))
+    parts = [f"structure function slope {show('structure_function_slope', '.2f')}",
+             f"size-linewidth slope {show('size_linewidth_slope', '.2f')} (centroids "
+             f"{show('size_linewidth_centroid_slope', '.2f')})",
+             f"gradient {show(grad, '.3g')} "
+             f"{'km/s/pc' if grad.endswith('_pc') else 'km/s/arcsec'} "
+             f"towards PA {show('gradient_position_angle_deg', '.0f')} deg"]
+    if "sonic_scale_note" in s:
+        parts.append(f"sonic scale {s['sonic_scale_arcsec']:.0f} arcsec" if
+                     s["sonic_scale_reached"] else "sonic scale " + s["sonic_scale_note"])
+    print("kinemap: " + "; ".join(parts))
+    return 0
+
+
 def _cmd_run(args) -> int:
     from kinemap.pipeline.config import load_config
     from kinemap.pipeline.runner import run_config
@@ -332,7 +370,7 @@ def main(argv=None) -> int:
         warnings.filterwarnings("ignore", module="spectral_cube")
         warnings.filterwarnings("ignore", category=RuntimeWarning)
     handler = {"info": _cmd_info, "maps": _cmd_maps, "rings": _cmd_rings, "widths": _cmd_widths,
-               "run": _cmd_run, "demo": _cmd_demo}
+               "turbulence": _cmd_turbulence, "run": _cmd_run, "demo": _cmd_demo}
     try:
         return handler[args.command](args)
     except KinemapError as exc:

@@ -535,7 +535,8 @@ def test_results_are_immutable(nebula):
 
 def test_write_demo_cubes_round_trip(tmp_path):
     paths = write_demo_cubes(tmp_path / "out")
-    assert set(paths) == {"galaxy_hi", "nebula_halpha", "truth_galaxy_hi", "truth_nebula_halpha"}
+    assert set(paths) == {"galaxy_hi", "nebula_halpha", "truth_galaxy_hi", "truth_nebula_halpha",
+                          "cloud_13co", "truth_cloud_13co"}
     assert paths["galaxy_hi"].name == "demo_galaxy_hi.fits"
     assert paths["nebula_halpha"].name == "demo_nebula_halpha.fits"
     galaxy = make_disk_galaxy()

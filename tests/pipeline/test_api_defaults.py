@@ -20,6 +20,7 @@ FUNCTIONS = {
     "fit_cube": ("maps",),
     "fit_rings": ("rings",),
     "line_widths": ("widths", "maps"),
+    "turbulence_statistics": ("turbulence",),
 }
 # keys whose schema value is a parsed form of the function's (or set by the run, not the
 # function): checked elsewhere

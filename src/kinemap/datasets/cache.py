@@ -54,7 +54,8 @@ def demo_cubes() -> dict:
 
     folder = demo_cube_dir()
     names = {"galaxy_hi": folder / "demo_galaxy_hi.fits",
-             "nebula_halpha": folder / "demo_nebula_halpha.fits"}
+             "nebula_halpha": folder / "demo_nebula_halpha.fits",
+             "cloud_13co": folder / "demo_cloud_13co.fits"}
     if not all(p.exists() for p in names.values()):
         write_demo_cubes(folder, overwrite=True, full_arrays=True)
     return {k: str(v) for k, v in names.items()}

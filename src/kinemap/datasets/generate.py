@@ -6,6 +6,9 @@ Two invented scenarios (no real objects):
   axis, built from a thin rotating disk (tilted-ring geometry, Begeman 1989, A&A 223, 47),
   integrated over the line of sight with sub-pixel sampling, integrated over each channel
   (top-hat), smoothed by an elliptical Gaussian beam and given seeded noise.
+* :func:`make_turbulent_cloud` -- a 13CO cube of a "demo turbulent cloud" on a velocity
+  axis whose centroid field is a power-law Gaussian random field plus a linear gradient,
+  smoothed by a beam (:mod:`kinemap.datasets.cloud`).
 * :func:`make_nebula` -- an optical cube of a "demo nebula" on an air-wavelength axis
   around H-alpha and the [N II] 6548/6583 doublet, with smooth fields of electron
   temperature, non-thermal dispersion, velocity and [N II]/H-alpha ratio, a Gaussian
@@ -37,17 +40,20 @@ from kinemap.errors import KinemapError
 from kinemap.datasets._common import DemoCube, seed_value
 from kinemap.datasets.galaxy import make_disk_galaxy
 from kinemap.datasets.nebula import make_nebula
+from kinemap.datasets.cloud import make_turbulent_cloud
 
 __all__ = [
     "DemoCube",
     "make_disk_galaxy",
     "make_nebula",
+    "make_turbulent_cloud",
     "write_demo_cubes",
     "truth_to_json",
 ]
 
 # Names of the files write_demo_cubes produces, keyed by cube name.
-_FILE_STEMS = {"galaxy_hi": "demo_galaxy_hi", "nebula_halpha": "demo_nebula_halpha"}
+_FILE_STEMS = {"galaxy_hi": "demo_galaxy_hi", "nebula_halpha": "demo_nebula_halpha",
+               "cloud_13co": "demo_cloud_13co"}
 
 # ----------------------------------------------------------------------------------
 # writing
@@ -129,9 +135,11 @@ def write_demo_cubes(
         raise KinemapError(f"'directory' {str(out_dir)!r} is a file; give a folder path")
     kwargs_g: dict[str, Any] = {}
     kwargs_n: dict[str, Any] = {}
+    kwargs_c: dict[str, Any] = {}
     if seed is not None:
         kwargs_g["seed"] = seed_value(seed)
         kwargs_n["seed"] = seed_value(seed) + 1
+        kwargs_c["seed"] = seed_value(seed) + 2
     targets = {}
     for name, stem in _FILE_STEMS.items():
         targets[name] = out_dir / f"{stem}.fits"
@@ -142,7 +150,8 @@ def write_demo_cubes(
             raise KinemapError(f"'directory' already holds {existing[0]}; pass "
                                f"overwrite=True (--overwrite) or choose another folder")
     out_dir.mkdir(parents=True, exist_ok=True)
-    for cube in (make_disk_galaxy(**kwargs_g), make_nebula(**kwargs_n)):
+    for cube in (make_disk_galaxy(**kwargs_g), make_nebula(**kwargs_n),
+                 make_turbulent_cloud(**kwargs_c)):
         cube.hdu.writeto(targets[cube.name], overwrite=True)
         with open(targets[f"truth_{cube.name}"], "w", encoding="utf-8") as fh:
             json.dump(truth_to_json(cube.truth, full_arrays=full_arrays), fh, indent=1)

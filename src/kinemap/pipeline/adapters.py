@@ -10,7 +10,7 @@ from kinemap.errors import KinemapError
 
 __all__ = ["read_kwargs", "continuum_kwargs", "reference_line", "noise_kwargs", "mask_kwargs",
            "moments_kwargs", "fit_kwargs", "rings_kwargs", "rings3d_kwargs", "widths_kwargs",
-           "parse_vrange", "parse_line_free"]
+           "turbulence_kwargs", "parse_vrange", "parse_line_free"]
 
 
 def parse_vrange(value):
@@ -125,3 +125,11 @@ def rings3d_kwargs(cfg: dict) -> dict:
                 fix=r["fix"], bootstrap=r["bootstrap"], seed=r["seed"],
                 expansion=r["expansion_in_geometry"], scale_height=r["scale_height"],
                 loss=r["loss"], channel_response=cfg["maps"]["channel_response"])
+
+
+def turbulence_kwargs(cfg: dict) -> dict:
+    t = cfg["turbulence"]
+    return dict(velocity_field=t["velocity_field"], distance=t["distance"],
+                lag_range=t["lag_range"], nlags=t["nlags"], weighting=t["weighting"],
+                gradient_window=t["gradient_window"], nsizes=t["nsizes"],
+                jackknife_blocks=t["jackknife_blocks"])

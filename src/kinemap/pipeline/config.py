@@ -48,6 +48,10 @@ Sections and keys (defaults in brackets)::
               the instrument comes from [maps]
               instrument_sigma / resolving_power, the channel response from [maps]
               channel_response
+    [turbulence] velocity_field ["gauss"] | "moments", distance (pc), lag_range (arcsec,
+              fit range of the structure function), nlags [12], weighting ["errors"] |
+              "uniform", gradient_window (arcsec), nsizes [10], jackknife_blocks [3]; with a
+              [widths] section the budget gives sigma_nt and the sonic scale
     [output]  dir ["kinemap-out"], overwrite [false], plots [true]
     [run]     max_memory [a quarter of the machine's memory], progress [true],
               scheduler ["tcp://host:port" of a dask scheduler], workers [N local processes]
@@ -230,6 +234,26 @@ def _ratios(value):
                              f"{key!r}={ratio!r}")
         out["/".join(names)] = r
     return out
+
+
+def _lag_pair(value):
+    """'90,600' or [90, 600] (arcsec; entries may carry units) -> [90, 600]."""
+    parts = ([p.strip() for p in value.split(",")] if isinstance(value, str) else list(value))
+    if len(parts) != 2 or any(p == "" for p in parts):
+        raise ValueError(f"must be two lags like '90,600' (arcsec), got {value!r}")
+    return [_number_or_text(p) if isinstance(p, str) else p for p in parts]
+
+
+def _check_lag_range(value):
+    from kinemap.turbulence.stage import check_lag_range
+
+    check_lag_range(value)
+
+
+def _check_distance_pc(value):
+    from kinemap.turbulence.stage import check_distance
+
+    check_distance(value)
 
 
 def _check_beam(value):
@@ -436,6 +460,32 @@ SCHEMA: dict[str, dict[str, Option]] = {
                            help="baseline fitted with the lines for residual continuum "
                                 "(none after continuum subtraction; constant or linear when "
                                 "a continuum is left under the lines)"),
+    },
+    "turbulence": {
+        "velocity_field": Option((str,), "gauss", choices=("gauss", "moments"),
+                                 aliases=("--method",),
+                                 help="velocity field from Gaussian fits or moment 1"),
+        "distance": Option((int, float, str, _NONE), metavar="DIST", unit="pc",
+                           check=_check_distance_pc,
+                           help="e.g. '250 pc': sizes in pc and gradients in km/s/pc"),
+        "lag_range": Option((list, tuple, str, _NONE), parse=_lag_pair, metavar="L1,L2",
+                            check=_check_lag_range,
+                            unit="arcsec",
+                            help="lags of the structure function's power-law fit "
+                                 "(default: two beams to the largest lag)"),
+        "nlags": Option((int,), 12, metavar="N",
+                        help="logarithmic lag bins from one pixel to a third of the map"),
+        "weighting": Option((str,), "errors", choices=("errors", "uniform"),
+                            help="pixel weights of the structure function: 1/sigma_v^2 or "
+                                 "equal"),
+        "gradient_window": Option((int, float, str, _NONE), metavar="SIZE", unit="arcsec",
+                                  help="diameter of the local-gradient window (default three "
+                                       "beams)"),
+        "nsizes": Option((int,), 10, cli=False, help="aperture sizes of the size-linewidth "
+                                                     "relation"),
+        "jackknife_blocks": Option((int,), 3, cli=False,
+                                   help="blocks per side of the structure function's "
+                                        "jackknife errors"),
     },
     "output": {
         "dir": Option((str,), "kinemap-out", cli="out", metavar="DIR", path=True,

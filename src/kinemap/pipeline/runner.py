@@ -112,6 +112,8 @@ def _wants_fit(state) -> bool:
     cfg, sections = state.config, set(state.config.get("_sections", ()))
     if cfg["maps"]["method"] == "gauss":
         return True
+    if "turbulence" in sections and cfg["turbulence"]["velocity_field"] == "gauss":
+        return True
     return "rings" in sections and cfg["rings"]["velocity_field"] == "gauss"
 
 
@@ -221,12 +223,23 @@ def stage_widths(state: RunState):
                   mask=state.mask, **kwargs, **state.blocks)
 
 
+def stage_turbulence(state: RunState):
+    from kinemap.turbulence.stage import turbulence_statistics
+
+    kwargs = ad.turbulence_kwargs(state.config)
+    use_fit = kwargs["velocity_field"] == "gauss"
+    source = (state.results.get("fit") if use_fit else None) or state.results["moments"]
+    return _timed(state, "turbulence", turbulence_statistics, source,
+                  widths=state.results.get("widths"), **kwargs)
+
+
 # (config section, result name, stage function).  A stage runs when its section is in the
 # config; later capabilities add their entry here.
 STAGES = [("maps", "moments", stage_moments), ("maps", "fit", stage_fit),
           ("maps", "model", stage_model), ("maps", "lines", stage_lines),
           ("rings", "rings", stage_rings),
-          ("widths", "widths", stage_widths)]
+          ("widths", "widths", stage_widths),
+          ("turbulence", "turbulence", stage_turbulence)]
 
 
 def _options(cfg):

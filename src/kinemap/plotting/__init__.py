@@ -21,6 +21,8 @@ def figures_for(result) -> dict:
         from kinemap.plotting.rings3d import figures
     elif name == "widths":
         from kinemap.plotting.widths import figures
+    elif name == "turbulence":
+        from kinemap.plotting.turbulence import figures
     else:
         return {}
     return figures(result)
