@@ -23,7 +23,6 @@ import math
 
 import numpy as np
 
-
 __all__ = ["aperture_sizes", "size_linewidth_arrays", "sonic_scale"]
 
 # arcsec per radian: a length L at distance D spans L/D radians (small angles), so
