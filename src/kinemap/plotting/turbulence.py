@@ -38,8 +38,7 @@ def plot_structure_function(result) -> Figure:
     if s["beam"]:
         ax.axvline(s["beam"], color="0.5", ls=":", label="beam FWHM")
         ax.axvline(2 * s["beam"], color="0.5", ls="--", label="two beams")
-    ax.set_xscale("log")
-    ax.set_yscale("log")
+    _log_axes(ax)
     ax.set_xlabel("lag (arcsec)")
     ax.set_ylabel(r"SF$_2$ (km$^2$ s$^{-2}$), noise bias removed")
     ax.grid(alpha=0.3, which="both")
@@ -72,8 +71,7 @@ def plot_size_linewidth(result) -> Figure:
                    label=f"c$_s$ ({result.sonic['temperature']:.0f} K)")
         if result.sonic["reached"]:
             ax.axvline(result.sonic["scale"], color="tab:orange", ls=":", label="sonic scale")
-    ax.set_xscale("log")
-    ax.set_yscale("log")
+    _log_axes(ax)
     ax.set_xlabel("aperture size (arcsec)")
     ax.set_ylabel("dispersion (km s$^{-1}$)")
     ax.grid(alpha=0.3, which="both")
@@ -124,3 +122,16 @@ def figures(result) -> dict:
         "velocity_gradients_plot": (plot_gradients(result),
                                     "velocity field with local gradient directions"),
     }
+
+
+def _log_axes(ax):
+    """Log-log axes labelled at 1, 2 and 5 times each decade in plain numbers: matplotlib's
+    default minor labels on a span of a decade or two (2x10^1 3x10^1 ...) run together."""
+    from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+
+    ax.set_xscale("log")
+    ax.set_yscale("log")
+    for axis in (ax.xaxis, ax.yaxis):
+        axis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
+        axis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+        axis.set_minor_formatter(NullFormatter())
