@@ -112,7 +112,10 @@ def _wants_fit(state) -> bool:
     cfg, sections = state.config, set(state.config.get("_sections", ()))
     if cfg["maps"]["method"] == "gauss":
         return True
-    return "rings" in sections and cfg["rings"]["velocity_field"] == "gauss"
+    # the 3D ring fit takes its first guesses from the moments: a Gaussian fit of every
+    # pixel would only cost time
+    return ("rings" in sections and cfg["rings"]["velocity_field"] == "gauss"
+            and cfg["rings"]["model"] != "3d")
 
 
 def stage_moments(state: RunState):
