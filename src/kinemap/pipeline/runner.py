@@ -181,11 +181,13 @@ def _velocity_input(state):
                              name="intensity map").data
         vmap = state.velocity_map
         v = vmap.data if vmap.unit == u.one else (vmap.data * vmap.unit).to_value(u.km / u.s)
-        return v, err, inten, vmap.meta
+        return v, err, inten, vmap.meta, None
+    from kinemap.rings.stage import dispersion_map
+
     use_fit = state.config["rings"]["velocity_field"] == "gauss"
     source = state.results.get("fit") if use_fit else None
     source = source or state.results["moments"]
-    return (*source.velocity_field(), source.meta)
+    return (*source.velocity_field(), source.meta, dispersion_map(source))
 
 
 def stage_rings(state: RunState):
@@ -201,9 +203,9 @@ def stage_rings(state: RunState):
                       mask=state.mask, progress=state.blocks["progress"],
                       **ad.rings3d_kwargs(state.config))
 
-    v, err, inten, meta = _velocity_input(state)
+    v, err, inten, meta, disp = _velocity_input(state)
     return _timed(state, "rings", fit_velocity_arrays, v, err, inten, meta,
-                  cube=state.cube, progress=state.blocks["progress"],
+                  cube=state.cube, dispersion=disp, progress=state.blocks["progress"],
                   **ad.rings_kwargs(state.config))
 
 
