@@ -114,7 +114,10 @@ def _wants_fit(state) -> bool:
         return True
     if "turbulence" in sections and cfg["turbulence"]["velocity_field"] == "gauss":
         return True
-    return "rings" in sections and cfg["rings"]["velocity_field"] == "gauss"
+    # the 3D ring fit takes its first guesses from the moments: a Gaussian fit of every
+    # pixel would only cost time
+    return ("rings" in sections and cfg["rings"]["velocity_field"] == "gauss"
+            and cfg["rings"]["model"] != "3d")
 
 
 def stage_moments(state: RunState):
@@ -180,11 +183,13 @@ def _velocity_input(state):
                              name="intensity map").data
         vmap = state.velocity_map
         v = vmap.data if vmap.unit == u.one else (vmap.data * vmap.unit).to_value(u.km / u.s)
-        return v, err, inten, vmap.meta
+        return v, err, inten, vmap.meta, None
+    from kinemap.rings.stage import dispersion_map
+
     use_fit = state.config["rings"]["velocity_field"] == "gauss"
     source = state.results.get("fit") if use_fit else None
     source = source or state.results["moments"]
-    return (*source.velocity_field(), source.meta)
+    return (*source.velocity_field(), source.meta, dispersion_map(source))
 
 
 def stage_rings(state: RunState):
@@ -200,9 +205,9 @@ def stage_rings(state: RunState):
                       mask=state.mask, progress=state.blocks["progress"],
                       **ad.rings3d_kwargs(state.config))
 
-    v, err, inten, meta = _velocity_input(state)
+    v, err, inten, meta, disp = _velocity_input(state)
     return _timed(state, "rings", fit_velocity_arrays, v, err, inten, meta,
-                  cube=state.cube, progress=state.blocks["progress"],
+                  cube=state.cube, dispersion=disp, progress=state.blocks["progress"],
                   **ad.rings_kwargs(state.config))
 
 

@@ -76,7 +76,56 @@ def _first_guess(cube, noise, mask, given, resp, progress):
         warnings.simplefilter("ignore")
         r2d = fit_velocity_arrays(v, err, inten, cube.meta, pv_diagram=False, progress=progress,
                                   **given)
-    return r2d, mom.arrays["moment2"]
+    return r2d, mom.arrays["moment2"], mom.arrays["moment0"], v
+
+
+def _shape_guess(mom0, mom1, foot, jac, beam, x0, y0, v_sys):
+    """PA and inclination from the shape of the moment-0 map (the beam's second moments
+    subtracted; a thin circular disk seen at inclination i has axis ratio cos i, common
+    practice), the receding side from moment 1.  None when the map is too small."""
+    y, x = np.nonzero(foot & np.isfinite(mom0) & (mom0 > 0))
+    if x.size < 10:
+        return None
+    w = mom0[y, x]
+    east = jac[0, 0] * (x - x0) + jac[0, 1] * (y - y0)
+    north = jac[1, 0] * (x - x0) + jac[1, 1] * (y - y0)
+    cov = np.cov(np.vstack([east, north]), aweights=w)
+    # beam covariance in (east, north): major FWHM along its PA east of north
+    bpa = np.deg2rad(beam[2])
+    rot = np.array([[np.sin(bpa), np.cos(bpa)], [np.cos(bpa), -np.sin(bpa)]])
+    cov = cov - rot @ np.diag([beam[0] ** 2, beam[1] ** 2]) @ rot.T / (8 * np.log(2))
+    vals, vecs = np.linalg.eigh(cov)
+    if vals[1] <= 0:
+        return None
+    ratio = np.sqrt(max(vals[0], 0.0) / vals[1])
+    e, n = vecs[:, 1]
+    pa = np.rad2deg(np.arctan2(e, n))
+    vm = mom1[y, x]
+    ok = np.isfinite(vm)
+    if ok.any() and np.sum(w[ok] * (vm[ok] - v_sys) * (east[ok] * e + north[ok] * n)) < 0:
+        pa += 180.0  # the major axis direction points to the approaching side: flip
+    return {"position_angle": float(pa % 360.0),
+            "inclination": float(np.clip(np.rad2deg(np.arccos(min(ratio, 1.0))), 10.0, 85.0))}
+
+
+def _trusted_geometry(r2d, given, shape):
+    """``given`` with PA and inclination from the moment-0 shape where the user gave none
+    and the 2D fit's failed (a map a few beams across: an inclination at the bounds or an
+    error beyond 30 deg), so that stage 1 does not start in the face-on minimum, where
+    v_rot sin i is all the cube constrains.  A merely uncertain 2D geometry is kept: stage 1
+    corrects it, and from a different start it can settle in a different minimum of the
+    rotation speeds (seen on the poorly resolved recovery mock)."""
+    g = r2d.result.global_geometry
+    inc = float(u.Quantity(g["inclination"]).value)
+    err = [float(u.Quantity(g.get(k + "_err", np.nan)).value) for k in ("position_angle", "inclination")]
+    unreliable = not np.all(np.isfinite(err)) or max(err) > 30 or not 10 <= inc <= 85
+    if shape is None or not unreliable:
+        return given
+    out = dict(given)
+    for k in ("position_angle", "inclination"):
+        if out.get(k) is None:
+            out[k] = shape[k]
+    return out
 
 
 def _radii(foot, jac, geom, beam, pix, ring_width, radii):
@@ -105,7 +154,9 @@ def _start(r2d, m2, radii, foot, resp_sigma, given_geom):
     geom = {k: float(u.Quantity(g[k]).value) for k in GEOM_PARAMS}
     geom.update({k: v for k, v in given_geom.items() if v is not None})
     r2 = np.asarray(t["radius"].to_value(u.arcsec))
-    v2 = np.asarray(t["v_rot"].to_value(KMS))
+    # the 2D speeds rescaled to the starting inclination when that differs from the 2D one
+    i2d = np.deg2rad(np.clip(float(u.Quantity(g["inclination"]).value), 3.0, 90.0))
+    v2 = np.asarray(t["v_rot"].to_value(KMS)) * np.sin(i2d) / np.sin(np.deg2rad(geom["inclination"]))
     ok = np.isfinite(v2)
     vrot = np.interp(radii, r2[ok], v2[ok]) if ok.any() else np.full(radii.size, 50.0)
     m2v = m2[foot & np.isfinite(m2)]
@@ -239,7 +290,7 @@ def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, di
 
     data, m3, noise, mask = _data_and_mask(cube, noise, mask, resp)
     given, kw2d = _given(center, position_angle, inclination, v_sys, cube.meta)
-    r2d, m2 = _first_guess(cube, noise, mask, kw2d, resp, progress)
+    r2d, m2, m0, m1 = _first_guess(cube, noise, mask, kw2d, resp, progress)
     grid = SkyGrid.from_wcs(cube.meta.wcs, shape=cube.shape[1:])
     jac = np.asarray(grid.jacobian)
     b = cube.meta.beam
@@ -247,6 +298,9 @@ def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, di
     pix = float(np.sqrt(abs(np.linalg.det(jac))))
     foot = m3.any(axis=0)
     dv = float(np.mean(np.diff(cube.velocity)))
+    g2 = r2d.result.global_geometry
+    given = _trusted_geometry(r2d, given, _shape_guess(
+        m0, m1, foot, jac, beam, *(float(u.Quantity(g2[k]).value) for k in ("x_center", "y_center", "v_sys"))))
     p = _start(r2d, m2, np.zeros(1), foot, float(response_sigma(resp, dv)), given)
     g0 = {k: float(p[k][0]) for k in GEOM_PARAMS}
     rad, width = _radii(foot, jac, g0, np.sqrt(beam[0] * beam[1]), pix, ring_width, radii)

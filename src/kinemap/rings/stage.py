@@ -160,6 +160,20 @@ def _meta_of(velocity, wcs):
                     source=str(info.get("source", "in-memory velocity map")))
 
 
+def dispersion_map(source):
+    """The dispersion map (km/s) of a fit or moment result: the first Gaussian component's
+    dispersion, else moment 2; None for anything else."""
+    if hasattr(source, "component"):
+        try:
+            return np.asarray(source.component("dispersion"), float)
+        except (KeyError, ValueError, AttributeError):
+            return None
+    arrays = getattr(source, "arrays", None)
+    if isinstance(arrays, dict) and "moment2" in arrays:
+        return np.asarray(arrays["moment2"], float)
+    return None
+
+
 def _inputs(velocity, velocity_err, intensity, wcs):
     """(v, v_err, intensity arrays, meta) from any accepted velocity input."""
     if hasattr(velocity, "velocity_field") and hasattr(velocity, "products"):  # a stage result
@@ -186,7 +200,8 @@ def fit_rings(velocity, *, velocity_err=None, intensity=None, center=None,
               ring_width=None, fix=(), weighting: str = "cos", exclude_minor_axis=20.0,
               stages=(1, 2, 3), final_geometry: str = "median", min_points: int = 20,
               bootstrap: int = 0, seed: int | None = 0, expansion_in_geometry: bool = False,
-              cube=None, pv_diagram: bool = True, wcs=None, progress: bool = False) -> RingFit:
+              cube=None, pv_diagram: bool = True, wcs=None, dispersion=None,
+              progress: bool = False) -> RingFit:
     """Fit a tilted-ring model (Begeman 1989) to a velocity field.
 
     Parameters
@@ -221,12 +236,22 @@ def fit_rings(velocity, *, velocity_err=None, intensity=None, center=None,
         Bootstrap resamples for the errors (0: none).
     cube : kinemap.io.Cube, optional
         The cube the map came from, for the major-axis position-velocity slice.
+    dispersion : array or Quantity (ny, nx), optional
+        Line-of-sight velocity dispersion map (km/s).  With an intensity map it adds the
+        pressure-support columns (dispersion, dispersion_err, surface_brightness,
+        asymmetric_drift, v_circ, v_circ_err) from ring averages, with a BeamWarning:
+        beam smearing inflates the dispersions (use fit_rings_3d).  Taken from a fit
+        (Gaussian dispersion) or moment result (moment 2) when ``velocity`` is one.
 
     Returns
     -------
     RingFit
     """
     v, err, inten, meta = _inputs(velocity, velocity_err, intensity, wcs)
+    if dispersion is None:
+        dispersion = dispersion_map(velocity)
+    else:
+        dispersion = _map_values(dispersion, KMS, "dispersion")
     if beam is not None:
         from kinemap.io.beams import as_beam
         from dataclasses import replace
@@ -242,7 +267,24 @@ def fit_rings(velocity, *, velocity_err=None, intensity=None, center=None,
         fix=fix, weighting=weighting, exclude_minor_axis=exclude_minor_axis, stages=stages,
         final_geometry=final_geometry, min_points=min_points, bootstrap=bootstrap, seed=seed,
         expansion_in_geometry=expansion_in_geometry, cube=cube, pv_diagram=pv_diagram,
-        progress=progress)
+        dispersion=dispersion, progress=progress)
+
+
+def _pressure(result, grid, dispersion, inten, beam_fwhm):
+    from kinemap.rings._pressure2d import add_pressure_columns
+
+    if dispersion.shape != inten.shape:
+        raise KinemapError(f"'dispersion' has shape {dispersion.shape}, the velocity map "
+                           f"{inten.shape}; give maps on the same pixel grid")
+    jac = np.asarray(grid.jacobian)
+    pix2 = abs(float(np.linalg.det(jac)))
+    # pixels per beam: 2 pi sigma^2 of a circular Gaussian of the beam's geometric mean FWHM
+    area = (1.1331 * beam_fwhm.to_value(u.arcsec) ** 2 / pix2) if beam_fwhm is not None else 1.0
+    add_pressure_columns(result.table, jac, dispersion, inten, beam_area_pix=area)
+    warnings.warn("2D pressure support: the dispersions are ring averages of a dispersion map, "
+                  "which beam smearing inflates (and with them the asymmetric drift); "
+                  "fit the cube with --model 3d for intrinsic dispersions", BeamWarning,
+                  stacklevel=3)
 
 
 def _quantity(value, unit, name):
@@ -254,9 +296,10 @@ def fit_velocity_arrays(v, err, inten, meta, *, center=None, position_angle=None
                         weighting="cos", exclude_minor_axis=20.0, stages=(1, 2, 3),
                         final_geometry="median", min_points=20, bootstrap=0, seed=0,
                         expansion_in_geometry=False, cube=None, pv_diagram=True,
-                        progress=False) -> RingFit:
+                        dispersion=None, progress=False) -> RingFit:
     """:func:`fit_rings` on plain arrays (km/s) with the input's ``meta`` (its WCS and
-    beam); the common path of the Python API and the config runner."""
+    beam); the common path of the Python API and the config runner.  ``dispersion``
+    (km/s map) with ``inten`` adds the pressure-support columns."""
     grid = SkyGrid.from_wcs(meta.wcs, shape=v.shape)
     x0, y0 = _center_pixels(center, meta.wcs)
     beam_fwhm = None
@@ -274,6 +317,8 @@ def fit_velocity_arrays(v, err, inten, meta, *, center=None, position_angle=None
         exclude_minor_axis=_quantity(exclude_minor_axis, u.deg, "exclude_minor_axis"),
         min_points=int(min_points), expansion_in_geometry=bool(expansion_in_geometry),
         bootstrap=int(bootstrap), seed=seed, progress=progress)
+    if dispersion is not None and inten is not None:
+        _pressure(result, grid, dispersion, inten, beam_fwhm)
     pv = None
     if cube is not None and pv_diagram and np.prod(cube.shape) * 8 < 2e9:
         # the slice reads the whole cube: skipped for very large cubes
