@@ -22,7 +22,7 @@ def demo_out(tmp_path_factory):
 
 def test_demo_writes_every_product_and_an_index(demo_out):
     html = (demo_out / "index.html").read_text()
-    for name in ("galaxy_hi", "nebula_halpha"):
+    for name in ("galaxy_hi", "nebula_halpha", "dwarf_hi"):
         manifest = json.loads((demo_out / name / "manifest.json").read_text())
         for key, entry in manifest["products"].items():
             assert (demo_out / name / entry["path"]).exists(), key
@@ -30,7 +30,16 @@ def test_demo_writes_every_product_and_an_index(demo_out):
         for fig in manifest["figures"].values():
             assert f"{name}/{fig['path']}" in html
         assert manifest["conventions"]["velocity_convention"] == {
-            "galaxy_hi": "radio", "nebula_halpha": "optical"}[name]
+            "galaxy_hi": "radio", "nebula_halpha": "optical", "dwarf_hi": "radio"}[name]
+
+
+def test_demo_dwarf_shows_the_3d_fit(demo_out):
+    """The dwarf's section carries the 3D figures and the 2D-vs-3D rows."""
+    html = (demo_out / "index.html").read_text()
+    for fig in ("rings3d_curve.png", "rings3d_channels.png", "rings3d_pv.png"):
+        assert f"dwarf_hi/{fig}" in html
+    assert "inclination (3D fit)" in html and "inclination (2D route)" in html
+    assert "v_circ" in html
 
 
 def test_demo_truth_table_agrees(demo_out):

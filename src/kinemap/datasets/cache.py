@@ -55,7 +55,8 @@ def demo_cubes() -> dict:
     folder = demo_cube_dir()
     names = {"galaxy_hi": folder / "demo_galaxy_hi.fits",
              "nebula_halpha": folder / "demo_nebula_halpha.fits",
-             "cloud_13co": folder / "demo_cloud_13co.fits"}
+             "cloud_13co": folder / "demo_cloud_13co.fits",
+             "dwarf_hi": folder / "demo_dwarf_hi.fits"}
     if not all(p.exists() for p in names.values()):
         write_demo_cubes(folder, overwrite=True, full_arrays=True)
     return {k: str(v) for k, v in names.items()}

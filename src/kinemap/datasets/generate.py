@@ -1,6 +1,6 @@
 """Seeded generator of the two invented demo cubes, with their known truth.
 
-Two invented scenarios (no real objects):
+Four invented scenarios (no real objects):
 
 * :func:`make_disk_galaxy` -- an HI (21 cm) cube of a "demo disk galaxy" on a frequency
   axis, built from a thin rotating disk (tilted-ring geometry, Begeman 1989, A&A 223, 47),
@@ -9,6 +9,9 @@ Two invented scenarios (no real objects):
 * :func:`make_turbulent_cloud` -- a 13CO cube of a "demo turbulent cloud" on a velocity
   axis whose centroid field is a power-law Gaussian random field plus a linear gradient,
   smoothed by a beam (:mod:`kinemap.datasets.cloud`).
+* :func:`make_dwarf` -- an HI cube of a "demo dwarf": a small, poorly resolved exponential
+  disk partly held up by its velocity dispersion (rotation below the circular speed by the
+  asymmetric drift), for the 3D ring fit (:mod:`kinemap.datasets.dwarf`).
 * :func:`make_nebula` -- an optical cube of a "demo nebula" on an air-wavelength axis
   around H-alpha and the [N II] 6548/6583 doublet, with smooth fields of electron
   temperature, non-thermal dispersion, velocity and [N II]/H-alpha ratio, a Gaussian
@@ -41,19 +44,21 @@ from kinemap.datasets._common import DemoCube, seed_value
 from kinemap.datasets.galaxy import make_disk_galaxy
 from kinemap.datasets.nebula import make_nebula
 from kinemap.datasets.cloud import make_turbulent_cloud
+from kinemap.datasets.dwarf import make_dwarf
 
 __all__ = [
     "DemoCube",
     "make_disk_galaxy",
     "make_nebula",
     "make_turbulent_cloud",
+    "make_dwarf",
     "write_demo_cubes",
     "truth_to_json",
 ]
 
 # Names of the files write_demo_cubes produces, keyed by cube name.
 _FILE_STEMS = {"galaxy_hi": "demo_galaxy_hi", "nebula_halpha": "demo_nebula_halpha",
-               "cloud_13co": "demo_cloud_13co"}
+               "cloud_13co": "demo_cloud_13co", "dwarf_hi": "demo_dwarf_hi"}
 
 # ----------------------------------------------------------------------------------
 # writing
@@ -106,15 +111,15 @@ def write_demo_cubes(
     overwrite: bool = False,
     full_arrays: bool = False,
 ) -> dict[str, Path]:
-    """Write both demo cubes and their truth to ``directory``.
+    """Write the four demo cubes and their truth to ``directory``.
 
     Parameters
     ----------
     directory : str or path-like
         Output folder (created if missing).
     seed : int, optional
-        If given, the galaxy uses ``seed`` and the nebula ``seed + 1``; otherwise the
-        defaults of :func:`make_disk_galaxy` and :func:`make_nebula`.
+        If given, the galaxy uses ``seed``, the nebula ``seed + 1``, the cloud ``seed + 2``
+        and the dwarf ``seed + 3``; otherwise each generator's default.
     overwrite : bool
         Replace existing files; otherwise an existing file is an error.
     full_arrays : bool
@@ -125,7 +130,8 @@ def write_demo_cubes(
     dict[str, pathlib.Path]
         ``'galaxy_hi'`` -> demo_galaxy_hi.fits, ``'nebula_halpha'`` ->
         demo_nebula_halpha.fits, ``'truth_galaxy_hi'`` -> truth_galaxy_hi.json and
-        ``'truth_nebula_halpha'`` -> truth_nebula_halpha.json.
+        ``'truth_nebula_halpha'`` -> truth_nebula_halpha.json, and the same pair for
+        ``'cloud_13co'`` and ``'dwarf_hi'``.
     """
     try:
         out_dir = Path(directory)
@@ -136,10 +142,12 @@ def write_demo_cubes(
     kwargs_g: dict[str, Any] = {}
     kwargs_n: dict[str, Any] = {}
     kwargs_c: dict[str, Any] = {}
+    kwargs_d: dict[str, Any] = {}
     if seed is not None:
         kwargs_g["seed"] = seed_value(seed)
         kwargs_n["seed"] = seed_value(seed) + 1
         kwargs_c["seed"] = seed_value(seed) + 2
+        kwargs_d["seed"] = seed_value(seed) + 3
     targets = {}
     for name, stem in _FILE_STEMS.items():
         targets[name] = out_dir / f"{stem}.fits"
@@ -151,7 +159,7 @@ def write_demo_cubes(
                                f"overwrite=True (--overwrite) or choose another folder")
     out_dir.mkdir(parents=True, exist_ok=True)
     for cube in (make_disk_galaxy(**kwargs_g), make_nebula(**kwargs_n),
-                 make_turbulent_cloud(**kwargs_c)):
+                 make_turbulent_cloud(**kwargs_c), make_dwarf(**kwargs_d)):
         cube.hdu.writeto(targets[cube.name], overwrite=True)
         with open(targets[f"truth_{cube.name}"], "w", encoding="utf-8") as fh:
             json.dump(truth_to_json(cube.truth, full_arrays=full_arrays), fh, indent=1)
