@@ -14,7 +14,7 @@ from scipy.signal import fftconvolve
 from scipy.special import ndtr
 
 from kinemap.datasets._common import (
-    C_KMS, KMS, DemoCube, celestial_cards, cube_hdu, frozen, scalar, seed_value
+    C_KMS, DemoCube, celestial_cards, cube_hdu, frozen, scalar, seed_value
 )
 from kinemap.datasets.galaxy import (
     _HI_REST_FREQUENCY_HZ, _beam_kernel, _disk_coordinates, _with_noise
