@@ -139,3 +139,27 @@ def test_bad_continuum_option_is_one_line(tmp_path, value):
                                 "--out", str(out))
     assert code == 2 and len(err.strip().splitlines()) == 1 and "continuum" in err
     assert not out.exists()
+
+
+def test_auto_decides_on_a_subsample_of_a_large_map(tmp_path):
+    """On a map of more than AUTO_SPECTRA spectra 'auto' looks at every k-th row: a cube
+    with no continuum is left as it is, one with a continuum everywhere is subtracted
+    everywhere (the decision is a fraction of spectra, estimated as well from a subsample)."""
+    from kinemap.maps.continuum import AUTO_SPECTRA, _decision_rows
+
+    ny = nx = 220
+    assert ny * nx > AUTO_SPECTRA
+    h = make_header("VRAD", nchan=24, ny=ny, nx=nx, crval=-60.0, cdelt=5.0, cunit="km/s")
+    rng = np.random.default_rng(5)
+    noise = rng.normal(0.0, 1.0, (24, ny, nx)).astype(np.float32)
+    for name, offset, expect in (("flat.fits", 0.0, "none"), ("cont.fits", 8.0, "constant")):
+        path = tmp_path / name
+        fits.writeto(path, noise + offset, h)
+        cube = kinemap.read_cube(str(path))
+        assert _decision_rows(cube).shape[1] < ny
+        res = subtract_continuum(cube, line_window=20.0)  # no line: keep most channels free
+        assert res.method == expect, res.message
+        if expect == "constant":
+            # subtracted in every spectrum, not only in the rows the decision looked at
+            assert np.nanmedian(np.abs(res.level - offset)) < 0.2
+            assert np.isfinite(res.level).all()
