@@ -65,19 +65,28 @@ def test_fused_equals_two_passes(tmp_path, response, mask_kind, line_free):
     assert fmaps.settings == maps.settings
 
 
-def test_swapped_and_native_reads_and_read_ahead_agree(tmp_path):
+def test_swapped_and_native_reads_and_read_ahead_agree(tmp_path, monkeypatch):
     # The file holds big-endian floats (kernel swaps them); the HDU in memory is native;
     # a tiny max_memory cuts many blocks, so the read-ahead thread is exercised.
     h = make_header("VRAD", nchan=NCHAN, ny=NY, nx=NX, crval=-80.0e3, cdelt=2.5e3, cunit="m/s")
     data = _data(seed=5)
     from_file = read_cube(write_cube(tmp_path / "c.fits", data, h))
     assert from_file.source is not None
+    from kinemap.maps import moments
+
+    seen = []
+    swapped = moments.fused_kernel_swapped
+    monkeypatch.setattr(moments, "fused_kernel_swapped",
+                        lambda *a: (seen.append(a[0].dtype), swapped(*a)))
     in_memory = read_cube(fits.PrimaryHDU(data=data.astype("=f4"), header=h))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", NoiseWarning)
         a = noise_and_moments(from_file)
         b = noise_and_moments(in_memory)
         c = noise_and_moments(from_file, max_memory=NCHAN * NX * 8 * 3)  # 2 rows a block
+    assert seen and set(seen) == {np.dtype(np.uint32)}  # the file's blocks took the swap path
+    n_file_blocks = len(seen)
+    assert n_file_blocks == 1 + -(-NY // 2)  # one block, then the small blocks
     for n, m in (b, c):
         _assert_same(a[0].sigma, n.sigma)
         for k in _KEYS:

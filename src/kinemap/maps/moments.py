@@ -214,7 +214,7 @@ def _fused_block(block, *, footprint, mask, second_differences, keep, factor_2nd
     res = np.empty((len(_KEYS), npix))
     args = (second_differences, keep, factor_2nd, clip, correction, velocity, dv, mode,
             threshold, m, fp, rho, sigma, nused, nfinite, res)
-    if block.dtype == np.float32 and not block.dtype.isnative:
+    if block.dtype.kind == "f" and block.dtype.itemsize == 4 and not block.dtype.isnative:
         # float32 as the file stores it: the kernel swaps the bytes as it loads them
         fused_kernel_swapped(block.reshape(nchan, -1).view(np.uint32), *args)
     else:
