@@ -6,12 +6,16 @@ STAMP := $(VENV)/.installed
 
 .PHONY: setup demo test bench clean
 
+# setup compiles the numba fitting kernels once (about 40 s, a message says so) into
+# __pycache__ beside the sources; it is skipped when they are cached already.
+
 setup: $(STAMP)
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
 	$(BIN)/python -m pip install --quiet -e '.[test]'
+	$(BIN)/python -c 'from kinemap.linefit._compile import warm; warm()'
 	touch $(STAMP)
 
 demo: setup

@@ -65,10 +65,13 @@ class FileSource:
     def standard(self) -> bool:
         return tuple(self.order) == (0, 1, 2)
 
-    def read(self, ys: slice, *, dtype=None) -> np.ndarray:
+    def read(self, ys: slice, *, dtype=None, swap: bool = True) -> np.ndarray:
         """Rows ``ys`` (relative to the subset) as a C-contiguous (nchan, rows, nx) array.
 
         ``dtype=None`` gives float32 for 4-byte data and float64 otherwise, native order.
+        ``swap=False`` lets unscaled float32 data of the other byte order come back as it
+        is in the file (dtype '>f4' on a little-endian machine: the same values to numpy),
+        for kernels that swap the bytes themselves while they load the data.
         """
         src = np.dtype(self.dtype)
         scaled = src.kind != "f" or self.bscale != 1.0 or self.bzero != 0.0
@@ -95,6 +98,8 @@ class FileSource:
                         if got != view.nbytes:
                             raise OSError(f"short read from {self.path}")
                     if src.byteorder not in ("=", "|") and src.byteorder != _NATIVE:
+                        if not swap and dtype is None:
+                            return out.view(out.dtype.newbyteorder())
                         out.view(out.dtype.newbyteorder()).byteswap(inplace=True)
                     return out
                 for k, c in enumerate(range(c0, c1)):

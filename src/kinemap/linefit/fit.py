@@ -60,6 +60,7 @@ from kinemap.errors import KinemapError
 from kinemap.status import Status
 from kinemap.linefit import _kernels as K
 from kinemap.linefit._axes import prepare_axes
+from kinemap.linefit._compile import announce_compile
 from kinemap.linefit._config import CORRELATION_FLOOR, Config, default_bounds, make_config
 from kinemap.linefit._model import LineModel, as_model
 from kinemap.linefit._result import LineFitResult
@@ -266,6 +267,7 @@ def _fit_batch(cfg: Config, mdl: LineModel, y, noise, lo, hi, p0, prestat_in, or
     p0g = np.empty((nb, npar))
     peak = np.empty(nb)
     nfin = np.empty(nb, dtype=np.int64)
+    announce_compile()
     K.guess_kernel(y, noise, ax.centres, ax.channel_width, cax, cia, csc, civ, cis, roles,
                    mdl.n_line_params, bkind, s2, cfg.resp_var, lo, hi, cfg.split_below, p0g, peak, nfin)
     if p0 is not None:
@@ -712,6 +714,7 @@ def initial_guess(data, noise, velocity, *, ncomp: int = 1, baseline: str = "non
     p0 = np.empty((nspec, mdl.npar))
     peak = np.empty(nspec)
     nfin = np.empty(nspec, dtype=np.int64)
+    announce_compile()
     K.guess_kernel(np.ascontiguousarray(arr, dtype=np.float64), nz, cfg.axes.centres, cfg.axes.channel_width,
                    cax, cia, csc, civ, cis, roles, mdl.n_line_params, bkind, cfg.instrument_sigma**2,
                    cfg.resp_var, lo, hi, cfg.split_below, p0, peak, nfin)
@@ -759,6 +762,7 @@ def model_spectra(params, velocity, *, ncomp: int = 1, baseline: str = "none", m
         p[gone, civ[j]] = 0.0
         p[gone, cis[j]] = 1.0
     out = np.empty((p.shape[0], cfg.axes.nchan))
+    announce_compile()
     K.model_kernel(p, cfg.axes.centres, cfg.axes.edges_ext, cfg.axes.inv_width_ext, cax, cia, csc, civ, cis, mdl.n_line_params,
                    bkind, cfg.instrument_sigma**2, cfg.resp_code, out)
     out = out.astype(dtype, copy=False)

@@ -48,6 +48,35 @@ def _clipped_sigma(x, n, clip, correction):
     return sigma / correction, kept
 
 
+@numba.njit(cache=True, nogil=True)
+def spectrum_noise(x, buf, second_differences, keep, factor, clip, correction):
+    """(sigma, channels kept, finite channels) of one spectrum ``x`` (nchan,).
+
+    ``buf`` is scratch of at least nchan float64.  ``x`` may be float32 or float64: the
+    second differences are formed in float64 either way (the constant 2.0 promotes them),
+    so the estimate does not depend on the precision the spectrum was loaded in.
+    """
+    nchan = x.shape[0]
+    nf = 0
+    for c in range(nchan):
+        if np.isfinite(x[c]):
+            nf += 1
+    n = 0
+    if second_differences:
+        for c in range(1, nchan - 1):
+            d = x[c - 1] - 2.0 * x[c] + x[c + 1]
+            if np.isfinite(d):
+                buf[n] = d
+                n += 1
+    else:
+        for c in range(nchan):
+            if keep[c] and np.isfinite(x[c]):
+                buf[n] = x[c]
+                n += 1
+    s, kept = _clipped_sigma(buf, n, clip, correction)
+    return (s / factor if s > 0 else np.nan), kept, nf
+
+
 @numba.njit(parallel=True, cache=True, nogil=True)
 def noise_kernel(data, second_differences, keep, factor, clip, correction, out, nused, nfinite):
     """Per spectrum (column of ``data``): the clipped sigma of its second differences
@@ -65,24 +94,8 @@ def noise_kernel(data, second_differences, keep, factor, clip, correction, out, 
                 tile[q, c] = data[c, p0 + q]
         buf = np.empty(max(nchan, 1))
         for q in range(p1 - p0):
-            x = tile[q]
-            nf = 0
-            for c in range(nchan):
-                if np.isfinite(x[c]):
-                    nf += 1
-            nfinite[p0 + q] = nf
-            n = 0
-            if second_differences:
-                for c in range(1, nchan - 1):
-                    d = x[c - 1] - 2.0 * x[c] + x[c + 1]
-                    if np.isfinite(d):
-                        buf[n] = d
-                        n += 1
-            else:
-                for c in range(nchan):
-                    if keep[c] and np.isfinite(x[c]):
-                        buf[n] = x[c]
-                        n += 1
-            s, kept = _clipped_sigma(buf, n, clip, correction)
-            out[p0 + q] = s / factor if s > 0 else np.nan
+            s, kept, nf = spectrum_noise(tile[q], buf, second_differences, keep, factor, clip,
+                                         correction)
+            out[p0 + q] = s
             nused[p0 + q] = kept
+            nfinite[p0 + q] = nf

@@ -41,11 +41,12 @@ from kinemap.errors import KinemapError, NoiseWarning
 from kinemap.io.products import Product
 from kinemap.io.results import StageResult
 from kinemap.maps.masks import as_mask
-from kinemap.maps.noise import estimate_noise
+from kinemap.maps.noise import CLIP, clip_correction, noise_map, noise_settings
+from kinemap.maps._fused_kernel import fused_kernel, fused_kernel_swapped
 from kinemap.maps._moments_kernel import USE_FINITE, USE_MASK, USE_THRESHOLD, moments_kernel
 from kinemap.spectral.response import check_response, noise_correlation
 
-__all__ = ["MomentMaps", "compute_moments"]
+__all__ = ["MomentMaps", "compute_moments", "noise_and_moments"]
 
 
 # key -> (unit kind: 'b' cube unit, 'bv' cube unit x km/s, 'v' km/s, '1'), description, kind
@@ -128,16 +129,6 @@ def _moments_block(block, *, sigma, footprint, mask, velocity, dv, mode, thresho
     return {k: res[i].reshape(rows, nx) for i, k in enumerate(_KEYS)}
 
 
-def _noise_or_none(cube, **kwargs):
-    """The default noise estimate for the error maps, or None (errors NaN, with a warning)
-    when the cube holds no noise to measure (a noiseless model, too few channels)."""
-    try:
-        return estimate_noise(cube, **kwargs)
-    except KinemapError as exc:
-        warnings.warn(f"moment errors are NaN: {exc}", NoiseWarning, stacklevel=3)
-        return None
-
-
 def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "tophat",
                     max_memory: int = DEFAULT_MAX_MEMORY, progress: bool = False,
                     client=None) -> MomentMaps:
@@ -167,17 +158,16 @@ def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "top
     rho = noise_correlation(response)
     mask = as_mask(mask, cube)
     if noise is None:
-        noise = _noise_or_none(cube, channel_response=response, max_memory=max_memory,
-                               progress=progress, client=client)
+        # the default noise and the moments in one read of the cube
+        noise, maps = noise_and_moments(cube, mask=mask, channel_response=response,
+                                        max_memory=max_memory, progress=progress,
+                                        client=client, _strict=False)
+        return replace(maps, seconds=time.perf_counter() - t0)
     nchan, ny, nx = cube.shape
     v = np.ascontiguousarray(cube.velocity, dtype=np.float64)
     dv = np.ascontiguousarray(cube.channel_width, dtype=np.float64)
-    sigma_map = noise.sigma if noise is not None else np.full((ny, nx), np.nan)
-    mode, threshold = USE_FINITE, 0.0
-    if mask is not None and mask.method == "threshold":
-        mode, threshold = USE_THRESHOLD, float(mask.threshold)
-    elif mask is not None and mask.mask is not None:
-        mode = USE_MASK
+    sigma_map = noise.sigma
+    mode, threshold = _mask_mode(mask)
 
     def block_args(ys):
         return {"sigma": sigma_map[ys],
@@ -188,9 +178,110 @@ def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "top
                      max_memory=max_memory, factor=2.5, block_args=block_args,
                      progress=progress and "moments", client=client, velocity=v, dv=dv,
                      mode=mode, threshold=threshold, rho=np.ascontiguousarray(rho, np.float64))
+    return _moment_maps(out, noise, mask, cube, response, t0)
+
+
+def _mask_mode(mask):
+    """(kernel mode, S/N threshold) for a SignalMask or None."""
+    if mask is not None and mask.method == "threshold":
+        return USE_THRESHOLD, float(mask.threshold)
+    if mask is not None and mask.mask is not None:
+        return USE_MASK, 0.0
+    return USE_FINITE, 0.0
+
+
+def _moment_maps(out, noise, mask, cube, response, t0) -> MomentMaps:
     out["noise"] = noise.sigma if noise is not None else None
     out["mask"] = out["nchan"] > 0
     return MomentMaps(arrays=out, meta=cube.meta, channel_response=response,
                       settings={"mask": mask.method if mask is not None else "none",
                                 "channel_response": response},
                       seconds=time.perf_counter() - t0)
+
+
+def _fused_block(block, *, footprint, mask, second_differences, keep, factor_2nd, clip,
+                 correction, velocity, dv, mode, threshold, rho):
+    """Noise and moments of one block (nchan, rows, nx): one read, one kernel call."""
+    nchan, rows, nx = block.shape
+    npix = rows * nx
+    fp = (np.ones(npix, dtype=np.bool_) if footprint is None
+          else np.ascontiguousarray(footprint.reshape(-1)))
+    m = (np.zeros((1, 1), dtype=np.bool_) if mask is None
+         else np.ascontiguousarray(mask.reshape(nchan, -1)))
+    sigma = np.empty(npix)
+    nused = np.empty(npix, dtype=np.int64)
+    nfinite = np.empty(npix, dtype=np.int64)
+    res = np.empty((len(_KEYS), npix))
+    args = (second_differences, keep, factor_2nd, clip, correction, velocity, dv, mode,
+            threshold, m, fp, rho, sigma, nused, nfinite, res)
+    if block.dtype.kind == "f" and block.dtype.itemsize == 4 and not block.dtype.isnative:
+        # float32 as the file stores it: the kernel swaps the bytes as it loads them
+        fused_kernel_swapped(block.reshape(nchan, -1).view(np.uint32), *args)
+    else:
+        fused_kernel(np.asarray(block, dtype=block.dtype.newbyteorder("=")).reshape(nchan, -1),
+                     *args)
+    out = {k: res[i].reshape(rows, nx) for i, k in enumerate(_KEYS)}
+    out.update(sigma=sigma.reshape(rows, nx), nused=nused.reshape(rows, nx),
+               finite=(nfinite > 0).reshape(rows, nx))
+    return out
+
+
+def noise_and_moments(cube, *, mask=None, line_free="auto", channel_response: str = "tophat",
+                      max_memory: int = DEFAULT_MAX_MEMORY, progress: bool = False,
+                      client=None, _strict: bool = True):
+    """The noise estimate and the moment maps of ``cube`` from one read of it.
+
+    The same numbers as :func:`kinemap.estimate_noise` followed by :func:`compute_moments`
+    with that noise (the kernels share their per-spectrum code), for half the reading.
+
+    Parameters
+    ----------
+    cube, mask, channel_response, max_memory, progress, client
+        As for :func:`compute_moments`; a 'threshold' mask uses the noise of the same
+        spectrum, estimated in the same pass.
+    line_free : 'auto', None or list of (v1, v2) velocity pairs
+        As for :func:`kinemap.estimate_noise`.
+
+    Returns
+    -------
+    (NoiseMap, MomentMaps)
+        The noise is refused as :func:`kinemap.estimate_noise` refuses it (``KinemapError``
+        when nothing can be measured).  ``_strict=False`` (what :func:`compute_moments`
+        does without a noise map) warns instead, returns None for the noise and NaN errors.
+    """
+    t0 = time.perf_counter()
+    response = check_response(channel_response)
+    mask = as_mask(mask, cube)
+    auto, fixed, factor = noise_settings(cube, line_free, response)
+    mode, threshold = _mask_mode(mask)
+    nchan = cube.shape[0]
+
+    def block_args(ys):
+        return {"footprint": None if cube.footprint is None else cube.footprint[ys],
+                "mask": mask.mask[:, ys, :] if mode == USE_MASK else None}
+
+    outputs = {k: ((), np.float64, np.nan) for k in _KEYS}
+    outputs.update(sigma=((), np.float64, np.nan), nused=((), np.int32, 0),
+                   finite=((), np.bool_, False))
+    # factor 1.5: two float32 blocks (the one in the kernel and the one read ahead) are one
+    # float64 block; the outputs are a few numbers per spectrum
+    out = map_blocks(cube, _fused_block, outputs=outputs, max_memory=max_memory, factor=1.5,
+                     block_args=block_args, progress=progress and "noise+moments",
+                     client=client, prefetch=True, swap=False,
+                     second_differences=fixed is None,
+                     keep=np.ones(nchan, np.bool_) if fixed is None else fixed,
+                     factor_2nd=factor if fixed is None else 1.0, clip=CLIP,
+                     correction=clip_correction(CLIP),
+                     velocity=np.ascontiguousarray(cube.velocity, dtype=np.float64),
+                     dv=np.ascontiguousarray(cube.channel_width, dtype=np.float64),
+                     mode=mode, threshold=threshold,
+                     rho=np.ascontiguousarray(noise_correlation(response), np.float64))
+    sigma, nused, finite = out.pop("sigma"), out.pop("nused"), out.pop("finite")
+    try:
+        noise = noise_map(sigma, nused, finite, cube.meta.bunit, auto, stacklevel=3)
+    except KinemapError as exc:
+        if _strict:
+            raise
+        warnings.warn(f"moment errors are NaN: {exc}", NoiseWarning, stacklevel=3)
+        noise = None
+    return noise, _moment_maps(out, noise, mask, cube, response, t0)

@@ -26,7 +26,8 @@ from kinemap.maps._noise_kernel import noise_kernel
 from kinemap.errors import KinemapError, NoiseWarning
 from kinemap.spectral.response import noise_correlation, variance_of_sum
 
-__all__ = ["NoiseMap", "estimate_noise", "clip_correction", "CLIP"]
+__all__ = ["NoiseMap", "estimate_noise", "clip_correction", "CLIP", "noise_settings",
+           "noise_map"]
 
 CLIP = 3.5  # clip at 3.5 sigma: drops 0.05 % of Gaussian noise, lines and edges beyond
 
@@ -120,19 +121,30 @@ def estimate_noise(cube, *, line_free="auto", channel_response: str = "tophat",
     client : distributed.Client, optional
         Run the blocks on a dask.distributed cluster (identical results).
     """
-    rho = noise_correlation(channel_response)
-    auto = line_free is None or (isinstance(line_free, str) and line_free.lower() == "auto")
-    fixed = None if auto else np.ascontiguousarray(line_free_channels(cube.velocity, line_free))
-    factor = float(np.sqrt(variance_of_sum(_SECOND_DIFF[:, None], 1.0, rho))[0])
+    auto, fixed, factor = noise_settings(cube, line_free, channel_response)
     out = map_blocks(cube, _noise_block, outputs={"sigma": ((), np.float64, np.nan),
                                                   "nused": ((), np.int32, 0),
                                                   "finite": ((), np.bool_, False)},
                      max_memory=max_memory, factor=2.0, progress=progress and "noise",
                      client=client, fixed=fixed, factor_2nd=factor, clip=CLIP,
                      correction=clip_correction(CLIP))
-    sigma, nused = out["sigma"], out["nused"]
-    any_finite = bool(out["finite"].any())
-    if not any_finite:
+    return noise_map(out["sigma"], out["nused"], out["finite"], cube.meta.bunit, auto)
+
+
+def noise_settings(cube, line_free, channel_response):
+    """(auto, line-free channels or None, noise factor of second differences): what the
+    noise kernels need besides the data, from the public arguments."""
+    rho = noise_correlation(channel_response)
+    auto = line_free is None or (isinstance(line_free, str) and line_free.lower() == "auto")
+    fixed = None if auto else np.ascontiguousarray(line_free_channels(cube.velocity, line_free))
+    factor = float(np.sqrt(variance_of_sum(_SECOND_DIFF[:, None], 1.0, rho))[0])
+    return auto, fixed, factor
+
+
+def noise_map(sigma, nused, finite, unit, auto, *, stacklevel=3) -> NoiseMap:
+    """The :class:`NoiseMap` of the kernels' per-pixel outputs, refusing a cube with nothing
+    to measure (``KinemapError``) and warning when most pixels are undetermined."""
+    if not bool(finite.any()):
         raise KinemapError("the cube holds no finite values (all NaN); check the input file")
     bad = ~np.isfinite(sigma)
     if bad.all():
@@ -140,6 +152,6 @@ def estimate_noise(cube, *, line_free="auto", channel_response: str = "tophat",
                            "too few channels); give line-free ranges with --line-free")
     if bad.mean() > 0.5:
         warnings.warn(f"noise undetermined for {bad.mean():.0%} of pixels", NoiseWarning,
-                      stacklevel=2)
-    return NoiseMap(sigma=sigma, nchan_used=nused, unit=cube.meta.bunit,
+                      stacklevel=stacklevel)
+    return NoiseMap(sigma=sigma, nchan_used=nused, unit=unit,
                     method="clipped RMS of second differences" if auto else "line-free ranges")

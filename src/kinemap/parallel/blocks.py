@@ -32,10 +32,14 @@ def block_rows(shape, *, max_memory: int = DEFAULT_MAX_MEMORY, factor: float = 6
     return int(max(1, min(ny, max_memory // max(per_row, 1))))
 
 
-def read_rows(cube, ys: slice, *, dtype=None) -> np.ndarray:
-    """Rows ``ys`` of ``cube`` as a C-contiguous (nchan, rows, nx) array (see iter_blocks)."""
+def read_rows(cube, ys: slice, *, dtype=None, swap: bool = True) -> np.ndarray:
+    """Rows ``ys`` of ``cube`` as a C-contiguous (nchan, rows, nx) array.
+
+    ``swap=False``: float32 data read from a file may keep the file's byte order (see
+    :meth:`kinemap.io._source.FileSource.read`); the caller's kernel swaps the bytes.
+    """
     if cube.source is not None:
-        return cube.source.read(ys, dtype=dtype)
+        return cube.source.read(ys, dtype=dtype, swap=swap)
     raw = cube.data[:, ys, :]
     single = raw.dtype.kind == "f" and raw.dtype.itemsize == 4  # any byte order
     dt = dtype or (np.float32 if single else np.float64)
@@ -66,9 +70,28 @@ def _run_block(source, data, ys, func, args, kwargs, threads):
     return ys, func(block, **args, **kwargs)
 
 
+def _blocks_in_order(cube, slices, *, prefetch, swap):
+    """Yield (ys, block) for every slice, reading the next block ahead when ``prefetch``."""
+    if not prefetch or len(slices) < 2:
+        for ys in slices:
+            yield ys, read_rows(cube, ys, swap=swap)
+        return
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="kinemap-read") as pool:
+        pending = pool.submit(read_rows, cube, slices[0], swap=swap)
+        for i, ys in enumerate(slices):
+            block = pending.result()
+            # drop the reference before the next read starts, so at most two blocks live
+            pending = (pool.submit(read_rows, cube, slices[i + 1], swap=swap)
+                       if i + 1 < len(slices) else None)
+            yield ys, block
+            del block
+
+
 def map_blocks(cube, func, *, outputs: dict, max_memory: int = DEFAULT_MAX_MEMORY,
                factor: float = 6.0, block_args=None, progress: bool | str = False,
-               client=None, **kwargs) -> dict:
+               client=None, prefetch: bool = False, swap: bool = True, **kwargs) -> dict:
     """Run ``func(block, **block_args(ys), **kwargs)`` on every block and assemble the maps.
 
     Parameters
@@ -82,6 +105,12 @@ def map_blocks(cube, func, *, outputs: dict, max_memory: int = DEFAULT_MAX_MEMOR
         Per-block arguments (slices of noise maps, masks), evaluated here.
     client : distributed.Client, optional
         Run one task per block on the cluster.
+    prefetch : bool
+        In this process, read the next block in a thread while ``func`` works on the
+        current one (the read releases the GIL, and so do the nogil kernels).  Two blocks
+        are then in memory: the stage's ``factor`` must count both.
+    swap : bool
+        False: blocks read from a file may keep the file's byte order (``func`` swaps).
     """
     nchan, ny, nx = cube.shape
     rows = task_rows(cube.shape, max_memory=max_memory, factor=factor, client=client)
@@ -100,9 +129,8 @@ def map_blocks(cube, func, *, outputs: dict, max_memory: int = DEFAULT_MAX_MEMOR
     try:
         slices = _row_slices(ny, rows)
         if client is None:
-            for ys in slices:
-                store(ys, func(read_rows(cube, ys), **(block_args(ys) if block_args else {}),
-                               **kwargs))
+            for ys, block in _blocks_in_order(cube, slices, prefetch=prefetch, swap=swap):
+                store(ys, func(block, **(block_args(ys) if block_args else {}), **kwargs))
         else:
             from distributed import as_completed
 

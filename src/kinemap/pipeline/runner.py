@@ -20,7 +20,7 @@ from kinemap.io.subset import select_channels
 from kinemap.io.writer import write_results
 from kinemap.maps.continuum import line_window_range, subtract_continuum
 from kinemap.maps.masks import make_mask
-from kinemap.maps.moments import compute_moments
+from kinemap.maps.moments import compute_moments, noise_and_moments
 from kinemap.maps.noise import estimate_noise
 from kinemap.parallel.cluster import open_client
 from kinemap.pipeline import adapters as ad
@@ -47,6 +47,7 @@ class RunState:
     execution: dict = field(default_factory=dict)
     window: tuple | None = None
     manifest: dict | None = None
+    moments: object = None  # moment maps made by prepare's fused pass, if it could
 
     @property
     def meta(self):
@@ -77,11 +78,27 @@ def prepare(cfg: dict, state: RunState | None = None) -> RunState:
                        **ad.continuum_kwargs(cfg), **state.blocks)
     state.results["continuum"] = continuum  # its products are empty when nothing was removed
     state.cube = continuum.cube
+    if _can_fuse(cfg):
+        # threshold and no mask need only each spectrum's own noise: one read of the cube
+        # gives the noise and the moment maps together (stage_moments hands them on)
+        state.mask = _timed(state, "mask", make_mask, state.cube, **ad.mask_kwargs(cfg))
+        state.noise, state.moments = _timed(
+            state, "noise+moments", noise_and_moments, state.cube, mask=state.mask,
+            **ad.noise_kwargs(cfg), **state.blocks)
+        return state
     state.noise = _timed(state, "noise", estimate_noise, state.cube, **ad.noise_kwargs(cfg),
                          **state.blocks)
     state.mask = _timed(state, "mask", make_mask, state.cube, noise=state.noise,
                         **ad.mask_kwargs(cfg), max_memory=state.blocks["max_memory"])
     return state
+
+
+def _can_fuse(cfg) -> bool:
+    """Whether the noise and the moments can come from one pass: the mask must not need
+    the whole cube (smooth does), and the moments must be of the whole band (a velocity
+    window cuts another cube).  The runner always makes moment maps of a cube."""
+    return (cfg["mask"]["method"] in ("none", "threshold") and cfg["maps"]["vrange"] is None
+            and ad.reference_line(cfg) is None)
 
 
 def _maps_window(state):
@@ -121,6 +138,8 @@ def _wants_fit(state) -> bool:
 
 
 def stage_moments(state: RunState):
+    if state.moments is not None:  # made with the noise by prepare's fused pass
+        return state.moments
     cube, mask = _maps_window(state)
     return _timed(state, "moments", compute_moments, cube, mask=mask, noise=state.noise,
                   **ad.moments_kwargs(state.config), **state.blocks)
@@ -327,7 +346,9 @@ def _execution(cfg, state) -> dict:
                                                       else "in-process threads"),
             "workers": cfg["run"]["workers"], "max_memory_bytes": blocks["max_memory"]}
     if state.cube is not None:
+        # the moments pass's blocks (factor 1.5 when fused with the noise, see maps.moments)
         info["block_rows"] = task_rows(state.cube.shape, max_memory=blocks["max_memory"],
-                                       factor=2.5, client=state.client)
+                                       factor=1.5 if state.moments is not None else 2.5,
+                                       client=state.client)
         info["cube_shape"] = list(state.cube.shape)
     return info

@@ -89,9 +89,48 @@ def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float
     lon, lat = ax.coords[0], ax.coords[1]
     lon.set_axislabel(_axis_label(meta.wcs, 0))
     lat.set_axislabel(_axis_label(meta.wcs, 1))
-    ax.set_title(textwrap.fill(title, 60), fontsize=10 if len(title) > 60 else None)
-    fig.tight_layout()
+    wrapped = textwrap.fill(title, 60)
+    ax.set_title(wrapped, fontsize=10 if len(title) > 60 else None)
+    _layout(fig, cb, (tuple(figsize), kind == "status", wrapped.count("\n"), bool(label),
+                      tuple(meta.wcs.wcs.ctype), np.shape(data), _wcs_key(meta.wcs)))
     return fig
+
+
+# Layout of the figures drawn so far: key -> (subplot parameters, right edge of the colour
+# bar in pixels).  tight_layout has to draw the WCS axes to measure their tick labels,
+# which cost as much as drawing the PNG itself; maps of one cube share those labels, so
+# the first figure of a kind measures and the others reuse its margins.
+_TEMPLATES: dict = {}
+
+
+def _wcs_key(wcs):
+    """What the tick labels of a celestial WCS depend on, as a hashable key."""
+    w = wcs.wcs
+    return (tuple(np.round(w.crval, 9)), tuple(np.round(w.crpix, 6)),
+            tuple(np.round(w.get_pc().ravel(), 12)), tuple(np.round(w.get_cdelt(), 12)))
+
+
+def _layout(fig, cb, key):
+    """tight_layout on the first figure of ``key``; the same margins for the next ones.
+
+    Only the colour bar's tick labels differ between maps of one cube, and measuring them
+    is cheap (a plain axis): the right margin moves by the difference in their extent, as
+    tight_layout would move it.
+    """
+    renderer = fig.canvas.get_renderer()
+    template = _TEMPLATES.get(key)
+    if template is None:
+        fig.tight_layout()
+        right_px = cb.ax.get_tightbbox(renderer).x1
+        pars = fig.subplotpars
+        _TEMPLATES[key] = ({k: getattr(pars, k) for k in ("left", "right", "bottom", "top",
+                                                           "wspace", "hspace")}, right_px)
+        return
+    pars, right_px = template
+    fig.subplots_adjust(**pars)
+    shift = (cb.ax.get_tightbbox(renderer).x1 - right_px) / (fig.get_figwidth() * fig.dpi)
+    if abs(shift) > 1e-4:
+        fig.subplots_adjust(right=pars["right"] - shift)
 
 
 def _axis_label(wcs, i):
@@ -101,4 +140,7 @@ def _axis_label(wcs, i):
 
 
 def save(fig, path, *, dpi=120):
-    fig.savefig(path, dpi=dpi)
+    """Write ``fig`` as a PNG.  zlib level 1 instead of PIL's 6: the same pixels (PNG is
+    lossless), a map saved in about 40 % less time, files of about the same size (noisy
+    maps compress little either way)."""
+    fig.savefig(path, dpi=dpi, pil_kwargs={"compress_level": 1})
