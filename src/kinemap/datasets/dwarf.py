@@ -14,10 +14,10 @@ from scipy.signal import fftconvolve
 from scipy.special import ndtr
 
 from kinemap.datasets._common import (
-    C_KMS, DemoCube, celestial_cards, cube_hdu, frozen, scalar, seed_value
+    C_KMS, DemoCube, cube_hdu, frozen, scalar, seed_value
 )
 from kinemap.datasets.galaxy import (
-    _HI_REST_FREQUENCY_HZ, _beam_kernel, _disk_coordinates, _with_noise
+    _HI_REST_FREQUENCY_HZ, _beam_kernel, _disk_cards, _disk_coordinates, _with_noise
 )
 
 # width (arcsec) of the logistic outer edge of the disk (beyond the last fitted ring)
@@ -71,22 +71,7 @@ def make_dwarf(*, seed: int = 4, noise_rms=1.0 * u.mJy / u.beam) -> DemoCube:
     kernel = _beam_kernel(o.bmaj / o.pix, o.bmin / o.pix, o.bpa)
     model = fftconvolve(cube, kernel[None], mode="same", axes=(1, 2))
     data = _with_noise(model, kernel, o, True)
-    cards = [
-        ("OBJECT", "demo dwarf", "invented demo source, not a real object"),
-        ("BUNIT", "Jy/beam", "brightness unit"),
-        ("BMAJ", o.bmaj / 3600.0, "[deg] beam major axis FWHM"),
-        ("BMIN", o.bmin / 3600.0, "[deg] beam minor axis FWHM"),
-        ("BPA", o.bpa, "[deg] beam position angle, east of north"),
-        *celestial_cards("SIN", o.ra0, o.dec0, x_ref, y_ref, o.pix),
-        ("CTYPE3", "FREQ", ""), ("CUNIT3", "Hz", ""),
-        ("CRVAL3", float(freq[0]), "[Hz] frequency of the first channel"),
-        ("CRPIX3", 1.0, ""),
-        ("CDELT3", float(freq[1] - freq[0]), "[Hz] channel width"),
-        ("RESTFRQ", f0, "[Hz] HI 21 cm rest frequency"),
-        ("SPECSYS", "BARYCENT", "spectral reference frame"),
-        ("RADESYS", "ICRS", ""),
-        ("DEMOSEED", o.seed, "seed of the noise generator"),
-    ]
+    cards = _disk_cards(o, f0, freq, x_ref, y_ref, name="demo dwarf")
     hdu = cube_hdu(data, cards, [
         ("HISTORY", "Invented demo cube made by kinemap.datasets.generate.make_dwarf."),
         ("HISTORY", "Pressure-supported thin exponential disk; radio velocity convention."),

@@ -287,10 +287,10 @@ def _disk_maps(o, model, v_chan, x_c, y_c) -> dict:
     return {"v_map": v_map, "radius": radius_c, "mom0": mom0_smooth, "mom1": mom1, "mom2": mom2}
 
 
-def _disk_cards(o, f0, freq, x_ref, y_ref) -> list:
-    """Header cards (key, value, comment) of the galaxy cube."""
+def _disk_cards(o, f0, freq, x_ref, y_ref, name: str = "demo disk galaxy") -> list:
+    """Header cards (key, value, comment) of an HI disk cube (the galaxy's, the dwarf's)."""
     return [
-        ("OBJECT", "demo disk galaxy", "invented demo source, not a real object"),
+        ("OBJECT", name, "invented demo source, not a real object"),
         ("BUNIT", "Jy/beam", "brightness unit"),
         ("BMAJ", o.bmaj / 3600.0, "[deg] beam major axis FWHM"),
         ("BMIN", o.bmin / 3600.0, "[deg] beam minor axis FWHM"),
