@@ -176,12 +176,17 @@ def _number_or_text(text: str):
     return _text_value(text, (int, float, str))
 
 
-def _pair(value):
-    """'-50,120' or [-50, 120] -> [-50, 120]; entries may carry units ('-50 km/s')."""
+def _two(value, what: str):
+    """'a,b' or [a, b] -> [a, b]; entries may carry units ('-50 km/s')."""
     parts = ([p.strip() for p in value.split(",")] if isinstance(value, str) else list(value))
     if len(parts) != 2 or any(p == "" for p in parts):
-        raise ValueError(f"must be two velocities like '-50,120' (km/s), got {value!r}")
+        raise ValueError(f"must be two {what}, got {value!r}")
     return [_number_or_text(p) if isinstance(p, str) else p for p in parts]
+
+
+def _pair(value):
+    """'-50,120' or [-50, 120] (km/s) -> [-50, 120]."""
+    return _two(value, "velocities like '-50,120' (km/s)")
 
 
 def _ranges(value):
@@ -237,11 +242,8 @@ def _ratios(value):
 
 
 def _lag_pair(value):
-    """'90,600' or [90, 600] (arcsec; entries may carry units) -> [90, 600]."""
-    parts = ([p.strip() for p in value.split(",")] if isinstance(value, str) else list(value))
-    if len(parts) != 2 or any(p == "" for p in parts):
-        raise ValueError(f"must be two lags like '90,600' (arcsec), got {value!r}")
-    return [_number_or_text(p) if isinstance(p, str) else p for p in parts]
+    """'90,600' or [90, 600] (arcsec) -> [90, 600]."""
+    return _two(value, "lags like '90,600' (arcsec)")
 
 
 def _check_lag_range(value):
