@@ -49,7 +49,9 @@ def parse_box(box, shape_yx) -> tuple[slice, slice]:
 
 
 def region_footprint(path, wcs, shape_yx) -> np.ndarray:
-    """Boolean (ny, nx) map, True inside the union of the sky regions in ``path``."""
+    """Boolean (ny, nx) map of the regions in ``path``: True inside the union of the
+    include regions (the whole map when there are none) and outside every exclusion region
+    (DS9 ``-circle(...)``, CRTF ``-circle[...]``), as DS9 and CASA read such files."""
     import regions
 
     if not os.path.exists(path):
@@ -61,17 +63,29 @@ def region_footprint(path, wcs, shape_yx) -> np.ndarray:
         raise KinemapError(f"could not read region file {path} as {fmt.upper()}: {exc}") from None
     if len(regs) == 0:
         raise KinemapError(f"region file {path} holds no regions")
-    ny, nx = shape_yx
-    out = np.zeros((ny, nx), bool)
+    include = [r for r in regs if r.meta.get("include", True) not in (False, 0)]
+    exclude = [r for r in regs if r.meta.get("include", True) in (False, 0)]
+    out = _union(include, wcs, shape_yx) if include else np.ones(shape_yx, bool)
+    if exclude:
+        out &= ~_union(exclude, wcs, shape_yx)
+    if not out.any():
+        raise KinemapError(f"the regions in {path} leave no pixel of the cube")
+    return out
+
+
+def _union(regs, wcs, shape_yx) -> np.ndarray:
+    """True inside any of ``regs`` (sky or pixel regions) on the (ny, nx) pixel grid."""
+    import regions
+
+    out = np.zeros(shape_yx, bool)
     for reg in regs:
-        pix = reg.to_pixel(wcs) if hasattr(reg, "to_pixel") and not isinstance(
-            reg, regions.PixelRegion) else reg
-        mask = pix.to_mask(mode="center")
-        img = mask.to_image((ny, nx))
+        pix = reg if isinstance(reg, regions.PixelRegion) else reg.to_pixel(wcs)
+        try:
+            img = pix.to_mask(mode="center").to_image(shape_yx)
+        except ValueError:  # a region whose position does not project onto this map (NaN)
+            continue
         if img is not None:
             out |= img.astype(bool)
-    if not out.any():
-        raise KinemapError(f"the regions in {path} do not overlap the cube")
     return out
 
 
