@@ -256,7 +256,7 @@ def test_user_catalogue_errors(tmp_path, text, match):
 
 
 def test_user_catalogue_missing_file(tmp_path):
-    with pytest.raises(KinemapError, match=r"'extra_toml_path' .*nope.toml' does not exist"):
+    with pytest.raises(KinemapError, match=r"the line catalogue .*nope.toml' does not exist"):
         load_catalogue(tmp_path / "nope.toml")
 
 

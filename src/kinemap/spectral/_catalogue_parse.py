@@ -51,11 +51,11 @@ def read_file(path) -> tuple[dict, str]:
         text = p.read_text(encoding="utf-8")
     except FileNotFoundError:
         raise KinemapError(
-            f"'extra_toml_path' {str(p)!r} does not exist; give the path of a line-catalogue TOML file"
+            f"the line catalogue {str(p)!r} does not exist; give the path of a line-catalogue TOML file"
         ) from None
     except (OSError, UnicodeDecodeError) as exc:
         raise KinemapError(
-            f"'extra_toml_path' {str(p)!r} could not be read ({exc}); give a readable UTF-8 TOML file"
+            f"the line catalogue {str(p)!r} could not be read ({exc}); give a readable UTF-8 TOML file"
         ) from None
     return read_toml(text, repr(str(p))), repr(str(p))
 

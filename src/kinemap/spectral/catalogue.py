@@ -178,7 +178,7 @@ def _resolve(line, catalogue: Mapping[str, Line] | None = None) -> Line:
     if not isinstance(line, str) or line not in cat:
         raise KinemapError(
             f"unknown line {line!r}; known lines are {', '.join(cat)} "
-            "(add others with a TOML file via 'extra_toml_path')"
+            "(add others with a catalogue TOML file: --catalogue FILE, or catalogue= in Python)"
         )
     return cat[line]
 
