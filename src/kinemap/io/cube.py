@@ -136,15 +136,15 @@ class Cube:
         frame.  The velocities go through frequency or wavelength with the old rest value,
         so a frame change made on reading is kept."""
         from kinemap.errors import KinemapError
-        from kinemap.spectral.axes import check_rest_value, from_velocity, to_velocity
+        from kinemap.spectral.axes import from_velocity, to_velocity
+        from kinemap.spectral.catalogue import resolve_rest_value
 
-        rest = _rest_in_medium(rest_value, self.meta.medium)
+        rest = resolve_rest_value(rest_value, self.meta.ctype)
         old = self.meta.rest_value
         if old is None:
             raise KinemapError("the cube's axis is a velocity axis with no rest value, so "
                                "velocities cannot be moved to another line; give the cube's "
                                "rest value with --rest-value")
-        rest = check_rest_value(rest)
         physical = from_velocity(self.velocity, convention=self.meta.convention,
                                  rest_value=old, unit=old.unit)
         velocity = to_velocity(physical.to(rest.unit, equivalencies=u.spectral()),
@@ -156,24 +156,3 @@ class Cube:
         if "data" in kwargs and "source" not in kwargs:
             kwargs["source"] = None
         return replace(self, **kwargs)
-
-
-def _rest_in_medium(value, medium):
-    """A rest Quantity from a Quantity, a string with a unit or a catalogue line name (in
-    the cube's medium: air or vacuum wavelength, or frequency)."""
-    if isinstance(value, u.Quantity):
-        return value
-    from kinemap.spectral.catalogue import get_line, load_catalogue
-
-    from kinemap.errors import KinemapError
-
-    text = str(value).strip()
-    catalogue = load_catalogue()
-    if text in catalogue:
-        return get_line(text).rest_value(medium if medium in ("air", "vacuum") else "frequency")
-    try:
-        return u.Quantity(text)
-    except (TypeError, ValueError):
-        raise KinemapError(f"{text!r} is neither a rest value nor a catalogue line; give a "
-                           f"value such as '6562.80 Angstrom' or one of "
-                           f"{', '.join(catalogue)}") from None

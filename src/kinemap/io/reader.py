@@ -13,7 +13,6 @@ from astropy.coordinates import SkyCoord
 from astropy.io import fits
 from astropy.wcs.utils import pixel_to_skycoord
 
-from kinemap.units import parse_quantity
 from kinemap.spectral.airvac import fits_vacuum_to_air
 from kinemap.errors import KinemapError, KinemapWarning
 from kinemap.io._header import build_wcs, parse_bunit, sha256
@@ -22,7 +21,10 @@ from kinemap.io.beams import Beam, as_beam, check_policy, read_beam
 from kinemap.io._source import FileSource
 from kinemap.io.cube import Cube, CubeMeta
 from kinemap.spectral.frames import change_frame, normalise_frame
-from kinemap.spectral.axes import axis_kind, check_convention, check_rest_value, to_velocity
+from kinemap.spectral.catalogue import (
+    is_line_name, line_rest_value, medium_from_ctype, resolve_rest_value
+)
+from kinemap.spectral.axes import axis_kind, check_convention, to_velocity
 from kinemap.io.subset import channel_range, parse_box, region_footprint
 
 __all__ = ["read_cube"]
@@ -230,33 +232,21 @@ def _lazy_section(opened: Opened, raw_shape, compressed):
 
 
 def _line_rest_value(name: str, ax: _Axes) -> u.Quantity:
-    """The catalogue rest value of line ``name`` in the medium of the cube's axis: air
-    wavelength for AWAV, vacuum for WAVE and optical velocities, frequency otherwise."""
-    from kinemap.spectral.catalogue import get_line, medium_from_ctype
-
-    medium = medium_from_ctype(ax.ctype)
-    rest = get_line(name.strip(), medium=medium).rest_value(medium)
-    ax.repairs.append(f"rest value {rest:.9g} ({medium}) from the catalogue line {name.strip()}")
+    """The catalogue rest value of line ``name`` in the axis' medium, recorded."""
+    rest = line_rest_value(name, ax.ctype)
+    ax.repairs.append(f"rest value {rest:.9g} ({medium_from_ctype(ax.ctype)}) from the "
+                      f"catalogue line {name.strip()}")
     return rest
-
-
-def _is_line_name(value) -> bool:
-    """A string that names a catalogue line rather than a quantity ('Halpha', '13CO_1-0')."""
-    if not isinstance(value, str):
-        return False
-    from kinemap.spectral.catalogue import load_catalogue
-
-    return value.strip() in load_catalogue()
 
 
 def _rest_value(rest_value, ax: _Axes, line=None):
     """The rest value in the cube's medium: the caller's (a quantity or a catalogue line
     name), else the header's, else the fallback ``line``'s."""
     wcs, kind = ax.wcs, ax.kind
-    if _is_line_name(rest_value):
+    if is_line_name(rest_value):
         rest = _line_rest_value(rest_value, ax)
     elif rest_value is not None:
-        rest = check_rest_value(_parse_rest(rest_value))
+        rest = resolve_rest_value(rest_value, ax.ctype)
     elif wcs.wcs.restfrq > 0:
         rest = wcs.wcs.restfrq * u.Hz
     elif wcs.wcs.restwav > 0:
@@ -282,23 +272,6 @@ def _rest_value(rest_value, ax: _Axes, line=None):
             "has no RESTFRQ/RESTFREQ/RESTWAV; give one with --rest-value (a line name such "
             "as 'Halpha', or a value such as '1420.405751768 MHz' or '6562.80 Angstrom')")
     return rest
-
-
-def _parse_rest(value):
-    """A rest value as a Quantity; text that is neither a quantity nor a known line name
-    gets a message that lists both forms."""
-    try:
-        return parse_quantity(value, name="rest_value")
-    except KinemapError:
-        text = value.strip() if isinstance(value, str) else ""
-        if text and not (text[0].isdigit() or text[0] in ".+-"):  # a word: a line name?
-            from kinemap.spectral.catalogue import load_catalogue
-
-            raise KinemapError(
-                f"'rest_value' {value!r} is neither a quantity nor a catalogue line; give a "
-                f"value such as '6562.80 Angstrom' or one of {', '.join(load_catalogue())}"
-            ) from None
-        raise
 
 
 def _velocity_axis(ax: _Axes, header, nchan, shape_yx, *, rest_value, convention, frame,

@@ -33,6 +33,9 @@ __all__ = [
     "check_line_in_range",
     "air_to_vacuum",
     "vacuum_to_air",
+    "is_line_name",
+    "line_rest_value",
+    "resolve_rest_value",
 ]
 
 #: the three ways a rest value can be expressed; see :meth:`Line.rest_value`
@@ -378,3 +381,36 @@ def check_line_in_range(
             "and the cube's rest value"
         )
     return pos
+
+
+def is_line_name(value) -> bool:
+    """A string that names a catalogue line rather than a quantity ('Halpha', '13CO_1-0')."""
+    return isinstance(value, str) and value.strip() in load_catalogue()
+
+
+def line_rest_value(name: str, ctype: str) -> u.Quantity:
+    """The catalogue rest value of line ``name`` in the medium of a spectral axis of type
+    ``ctype``: air wavelength for AWAV, vacuum for WAVE and optical velocities, frequency
+    otherwise (:func:`medium_from_ctype`)."""
+    medium = medium_from_ctype(ctype)
+    return get_line(name.strip(), medium=medium).rest_value(medium)
+
+
+def resolve_rest_value(value, ctype: str) -> u.Quantity:
+    """A rest value from a catalogue line name (in the axis' medium) or a quantity
+    ('1420.405751768 MHz', a Quantity); text that is neither gets a message naming both."""
+    from kinemap.spectral.axes import check_rest_value
+    from kinemap.units import parse_quantity
+
+    if is_line_name(value):
+        return line_rest_value(value, ctype)
+    try:
+        return check_rest_value(parse_quantity(value, name="rest_value"))
+    except KinemapError:
+        text = value.strip() if isinstance(value, str) else ""
+        if text and not (text[0].isdigit() or text[0] in ".+-"):  # a word: a line name?
+            raise KinemapError(
+                f"'rest_value' {value!r} is neither a quantity nor a catalogue line; give a "
+                f"value such as '6562.80 Angstrom' or one of {', '.join(load_catalogue())}"
+            ) from None
+        raise
