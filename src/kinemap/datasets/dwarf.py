@@ -9,7 +9,6 @@ from typing import Any
 
 import astropy.units as u
 import numpy as np
-from astropy.wcs import WCS
 from scipy.signal import fftconvolve
 from scipy.special import ndtr
 
@@ -17,7 +16,8 @@ from kinemap.datasets._common import (
     C_KMS, DemoCube, cube_hdu, frozen, scalar, seed_value
 )
 from kinemap.datasets.galaxy import (
-    _HI_REST_FREQUENCY_HZ, _beam_kernel, _disk_cards, _disk_coordinates, _with_noise
+    _HI_REST_FREQUENCY_HZ, _beam_kernel, _disk_cards, _disk_coordinates, _observing_truth,
+    _with_noise
 )
 
 # width (arcsec) of the logistic outer edge of the disk (beyond the last fitted ring)
@@ -118,7 +118,6 @@ def _dwarf_disk(o, v_chan, x_c, y_c):
 
 
 def _dwarf_truth(o, hdu, f0, x_c, y_c, v_chan) -> dict[str, Any]:
-    centre = WCS(hdu.header).celestial.pixel_to_world(x_c, y_c)
     r = np.arange(0.0, o.r_out + 2 * o.pix, o.pix / 2.0)
     kpc_per_arcsec = o.dist * 1e3 * math.radians(1.0 / 3600.0)
     return {
@@ -138,17 +137,7 @@ def _dwarf_truth(o, hdu, f0, x_c, y_c, v_chan) -> dict[str, Any]:
         "outer_radius_arcsec": o.r_out,
         "edge_width_arcsec": _EDGE_WIDTH,
         "surface_brightness_peak_jy_beam_kms": o.sb_peak,
-        "center_x_pix": float(x_c),
-        "center_y_pix": float(y_c),
-        "center_ra_deg": float(centre.ra.deg),
-        "center_dec_deg": float(centre.dec.deg),
-        "pixel_scale_arcsec": o.pix,
-        "channel_width_kms": o.dv,
-        "beam_major_arcsec": o.bmaj,
-        "beam_minor_arcsec": o.bmin,
-        "beam_pa_deg": o.bpa,
-        "noise_rms_jy_beam": o.noise,
-        "distance_mpc": o.dist,
+        **_observing_truth(o, hdu, x_c, y_c),
         "drift_note": "V_A^2 = sigma^2 R / R_d (exponential disk, constant dispersion); "
                       "the soft edge beyond the last ring is not included",
         "channel_velocity_kms": frozen(v_chan),

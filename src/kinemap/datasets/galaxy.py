@@ -307,10 +307,27 @@ def _disk_cards(o, f0, freq, x_ref, y_ref, name: str = "demo disk galaxy") -> li
     ]
 
 
+def _observing_truth(o, hdu, x_c, y_c) -> dict[str, Any]:
+    """Truth keys of how an HI disk cube (the galaxy's, the dwarf's) was observed: where
+    its centre is, its pixels, channels, beam, noise and distance."""
+    centre = WCS(hdu.header).celestial.pixel_to_world(x_c, y_c)
+    return {
+        "center_x_pix": float(x_c),
+        "center_y_pix": float(y_c),
+        "center_ra_deg": float(centre.ra.deg),
+        "center_dec_deg": float(centre.dec.deg),
+        "pixel_scale_arcsec": o.pix,
+        "channel_width_kms": o.dv,
+        "beam_major_arcsec": o.bmaj,
+        "beam_minor_arcsec": o.bmin,
+        "beam_pa_deg": o.bpa,
+        "noise_rms_jy_beam": o.noise,
+        "distance_mpc": o.dist,
+    }
+
+
 def _disk_truth(o, hdu, f0, x_c, y_c, profile_norm, total_flux, v_chan, mom0_intr, maps) -> dict[str, Any]:
     """The truth of the galaxy cube (every numeric key with its unit in its name)."""
-    wcs = WCS(hdu.header).celestial
-    centre = wcs.pixel_to_world(x_c, y_c)
     r_curve = np.arange(0.0, o.r_out + 2 * o.pix, o.pix / 2.0)
     kpc_per_arcsec = o.dist * 1e3 * math.radians(1.0 / 3600.0)
     return {
@@ -333,17 +350,7 @@ def _disk_truth(o, hdu, f0, x_c, y_c, profile_norm, total_flux, v_chan, mom0_int
         "outer_radius_arcsec": o.r_out,
         "edge_width_arcsec": _EDGE_WIDTH,
         "surface_brightness_peak_jy_beam_kms": o.sb_peak,
-        "center_x_pix": float(x_c),
-        "center_y_pix": float(y_c),
-        "center_ra_deg": float(centre.ra.deg),
-        "center_dec_deg": float(centre.dec.deg),
-        "pixel_scale_arcsec": o.pix,
-        "channel_width_kms": o.dv,
-        "beam_major_arcsec": o.bmaj,
-        "beam_minor_arcsec": o.bmin,
-        "beam_pa_deg": o.bpa,
-        "noise_rms_jy_beam": o.noise,
-        "distance_mpc": o.dist,
+        **_observing_truth(o, hdu, x_c, y_c),
         "total_flux_jy_kms": total_flux,
         "max_projected_velocity_kms": float(np.nanmax(np.abs(maps["v_map"] - o.v_sys))),
         "channel_velocity_kms": frozen(v_chan),
