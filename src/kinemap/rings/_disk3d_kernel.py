@@ -29,6 +29,18 @@ _INV_SQRT2PI = 1.0 / math.sqrt(2.0 * math.pi)
 _NSIG = 6.0
 
 
+@nb.njit(cache=True, inline="always")
+def _to_pixel(xd, yd, z, cos_i, sin_i, sin_pa, cos_pa, xc, yc, jinv):
+    """Pixel position of the disk point (xd along the receding major axis, yd across it,
+    height z; arcsec) of a ring centred on pixel (xc, yc): tilt by the inclination, turn
+    by the position angle to (east, north), then through the inverse pixel Jacobian."""
+    big_y = yd * cos_i + z * sin_i
+    east = xd * sin_pa + big_y * cos_pa
+    north = xd * cos_pa - big_y * sin_pa
+    return (xc + jinv[0, 0] * east + jinv[0, 1] * north,
+            yc + jinv[1, 0] * east + jinv[1, 1] * north)
+
+
 @nb.njit(cache=True, parallel=True, fastmath=False)
 def deposit(out, a_lo, a_hi, r_mid, n_az, az0, weight, vrot, vexp, disp, x0, y0, sin_pa, cos_pa,
             sin_i, cos_i, vsys, z_nodes, z_weights, jinv, off_x, off_y, u0, inv_dv, tophat,
@@ -71,11 +83,8 @@ def deposit(out, a_lo, a_hi, r_mid, n_az, az0, weight, vrot, vexp, disp, x0, y0,
                 if j_lo >= j_hi:
                     continue
                 for iz in range(nz):
-                    big_y = yd * cos_i[a] + z_nodes[iz] * sin_i[a]
-                    east = xd * sin_pa[a] + big_y * cos_pa[a]
-                    north = xd * cos_pa[a] - big_y * sin_pa[a]
-                    px = x0[a] + jinv[0, 0] * east + jinv[0, 1] * north + off_x
-                    py = y0[a] + jinv[1, 0] * east + jinv[1, 1] * north + off_y
+                    px, py = _to_pixel(xd, yd, z_nodes[iz], cos_i[a], sin_i[a], sin_pa[a],
+                                       cos_pa[a], x0[a] + off_x, y0[a] + off_y, jinv)
                     ix = int(math.floor(px))
                     iy = int(math.floor(py))
                     if ix < -1 or iy < -1 or ix >= nx or iy >= ny:
@@ -127,11 +136,8 @@ def deposit_surface(out, a_lo, a_hi, r_mid, n_az, az0, weight, x0, y0, sin_pa, c
             xd = r * math.cos(th)
             yd = r * math.sin(th)
             for iz in range(z_nodes.size):
-                big_y = yd * cos_i[a] + z_nodes[iz] * sin_i[a]
-                east = xd * sin_pa[a] + big_y * cos_pa[a]
-                north = xd * cos_pa[a] - big_y * sin_pa[a]
-                px = x0[a] + jinv[0, 0] * east + jinv[0, 1] * north + off_x
-                py = y0[a] + jinv[1, 0] * east + jinv[1, 1] * north + off_y
+                px, py = _to_pixel(xd, yd, z_nodes[iz], cos_i[a], sin_i[a], sin_pa[a],
+                                   cos_pa[a], x0[a] + off_x, y0[a] + off_y, jinv)
                 ix = int(math.floor(px))
                 iy = int(math.floor(py))
                 if ix < -1 or iy < -1 or ix >= nx or iy >= ny:
