@@ -51,6 +51,10 @@ _API = {
     "WidthBudget": "kinemap.widths.stage",
     "turbulence_statistics": "kinemap.turbulence.stage",
     "TurbulenceStatistics": "kinemap.turbulence.stage",
+    "extract_spectrum": "kinemap.extract.spectrum",
+    "SpectrumResult": "kinemap.extract.spectrum",
+    "pv_diagram": "kinemap.extract.pv",
+    "PVDiagram": "kinemap.extract.pv",
     "run": "kinemap.pipeline.runner",
     "Status": "kinemap.status",
 }
@@ -59,7 +63,7 @@ __all__ = ["__version__", "KinemapError", "KinemapWarning", *_API]
 
 
 _SUBPACKAGES = ("io", "spectral", "parallel", "maps", "linefit", "rings", "widths",
-                "turbulence", "plotting", "pipeline", "datasets", "status", "units", "errors")
+                "turbulence", "extract", "plotting", "pipeline", "datasets", "status", "units", "errors")
 
 
 def __getattr__(name):

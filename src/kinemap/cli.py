@@ -139,6 +139,22 @@ COMMANDS = {
                                                              "channel_response")]),
                     ("signal mask", [("mask", "method"), ("mask", "threshold")]),
                     _READING, _CONTINUUM, _OUTPUT, _EXECUTION]),
+    # --- extraction: kinemap spectrum and kinemap pv ---
+    "spectrum": ("a spectrum at a position, in a region or over the whole map, with errors",
+                 ("cube", "the cube (FITS)"), ("spectrum",),
+                 [("where (one of --at, --region, --global)",
+                   [("spectrum", "at"), ("spectrum", "radius"), ("input", "region"),
+                    ("spectrum", "global")]),
+                  ("reading the cube", [item for item in _READING[1]
+                                        if item != ("input", "region")]),
+                  _CONTINUUM, _OUTPUT, _EXECUTION]),
+    "pv": ("position-velocity diagram along a cut", ("cube", "the cube (FITS)"), ("pv",),
+           [("the cut (one of --path, --center with --pa and --length, --region)",
+             [("pv", k) for k in ("path", "center", "position_angle", "length", "region",
+                                  "width")]),
+            ("ring model", [("pv", "rings")]),
+            ("reading the cube", [item for item in _READING[1] if item != ("input", "region")]),
+            _CONTINUUM, _OUTPUT, _EXECUTION]),
 }
 
 
@@ -319,6 +335,34 @@ def _cmd_turbulence(args) -> int:
     return 0
 
 
+def _cmd_spectrum(args) -> int:
+    from kinemap.pipeline.runner import run_config
+
+    cfg = config_from_args(args)
+    state = run_config(cfg)
+    _report(state, cfg["output"]["dir"])
+    s = state.results["spectrum"].summary()
+    fit = (f"Gaussian at {s['fit_centre_kms']:.2f} km/s, dispersion "
+           f"{s['fit_dispersion_kms']:.2f} km/s" if s["fit_status"] == "ok"
+           else f"no Gaussian fit ({s['fit_status']})")
+    print(f"kinemap: spectrum of {s['aperture']} ({s['n_pixels']} pixels, in {s['unit']}): "
+          f"integral {s['integrated']:.4g} +- {s['integrated_err']:.2g} {s['unit']} km/s; {fit}")
+    return 0
+
+
+def _cmd_pv(args) -> int:
+    from kinemap.pipeline.runner import run_config
+
+    cfg = config_from_args(args)
+    state = run_config(cfg)
+    _report(state, cfg["output"]["dir"])
+    s = state.results["pv"].summary()
+    print(f"kinemap: {s['cut']}: {s['n_offset']} positions over {s['length_arcsec']:.1f} arcsec"
+          + (f", averaged over {s['width_arcsec']:g} arcsec" if s["width_arcsec"] else "")
+          + ("; ring model drawn" if s["ring_model"] else ""))
+    return 0
+
+
 def _cmd_run(args) -> int:
     from kinemap.pipeline.config import load_config
     from kinemap.pipeline.runner import run_config
@@ -370,7 +414,8 @@ def main(argv=None) -> int:
         warnings.filterwarnings("ignore", module="spectral_cube")
         warnings.filterwarnings("ignore", category=RuntimeWarning)
     handler = {"info": _cmd_info, "maps": _cmd_maps, "rings": _cmd_rings, "widths": _cmd_widths,
-               "turbulence": _cmd_turbulence, "run": _cmd_run, "demo": _cmd_demo}
+               "turbulence": _cmd_turbulence, "run": _cmd_run, "demo": _cmd_demo,
+               "spectrum": _cmd_spectrum, "pv": _cmd_pv}
     try:
         return handler[args.command](args)
     except KinemapError as exc:

@@ -10,7 +10,8 @@ from kinemap.errors import KinemapError
 
 __all__ = ["read_kwargs", "continuum_kwargs", "reference_line", "noise_kwargs", "mask_kwargs",
            "moments_kwargs", "fit_kwargs", "rings_kwargs", "rings3d_kwargs", "widths_kwargs",
-           "turbulence_kwargs", "parse_vrange", "parse_line_free"]
+           "turbulence_kwargs", "parse_vrange", "parse_line_free", "spectrum_kwargs",
+           "pv_kwargs"]
 
 
 def parse_vrange(value):
@@ -133,3 +134,27 @@ def turbulence_kwargs(cfg: dict) -> dict:
                 lag_range=t["lag_range"], nlags=t["nlags"], weighting=t["weighting"],
                 gradient_window=t["gradient_window"], nsizes=t["nsizes"],
                 jackknife_blocks=t["jackknife_blocks"])
+
+
+# --- extraction: kinemap spectrum and kinemap pv ---
+
+def spectrum_kwargs(cfg: dict) -> dict:
+    """[spectrum] (and [input] region) -> extract_spectrum.  Exactly one of a position, a
+    region or the global profile is asked for; the region itself is applied by the reader
+    (the cube's footprint), so it is not passed again."""
+    sp = cfg["spectrum"]
+    chosen = [flag for flag, given in (("--at", sp["at"]), ("--region", cfg["input"]["region"]),
+                                       ("--global", sp["global"])) if given]
+    if len(chosen) != 1:
+        raise KinemapError("give one of --at RA,DEC (with --radius), --region FILE or --global"
+                           + (f", not {' and '.join(chosen)}" if chosen else ""))
+    if sp["radius"] is not None and sp["at"] is None:
+        raise KinemapError("--radius needs --at RA,DEC (the centre of the circle)")
+    return dict(at=sp["at"], radius=sp["radius"], snr_threshold=sp["snr_threshold"])
+
+
+def pv_kwargs(cfg: dict) -> dict:
+    """[pv] -> pv_diagram (the ring table is read by the runner)."""
+    p = cfg["pv"]
+    return dict(path=p["path"], center=p["center"], position_angle=p["position_angle"],
+                length=p["length"], width=p["width"], region=p["region"])

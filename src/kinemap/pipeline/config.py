@@ -52,6 +52,11 @@ Sections and keys (defaults in brackets)::
               fit range of the structure function), nlags [12], weighting ["errors"] |
               "uniform", gradient_window (arcsec), nsizes [10], jackknife_blocks [3]; with a
               [widths] section the budget gives sigma_nt and the sonic scale
+    [spectrum] at ("RA,DEC"), radius (arcsec), global [false], snr_threshold [3] (with
+              [input] region: the spectrum of the regions)
+    [pv]      path ("RA1,DEC1;RA2,DEC2"), or center ("RA,DEC") + position_angle (deg) +
+              length (arcsec), or region (a line in a region file); width (arcsec), rings
+              (rotation_curve.ecsv whose model is drawn)
     [output]  dir ["kinemap-out"], overwrite [false], plots [true]
     [run]     max_memory [a quarter of the machine's memory], progress [true],
               scheduler ["tcp://host:port" of a dask scheduler], workers [N local processes]
@@ -489,6 +494,42 @@ SCHEMA: dict[str, dict[str, Option]] = {
                                    help="blocks per side of the structure function's "
                                         "jackknife errors"),
     },
+    # --- extraction: kinemap spectrum and kinemap pv (stages in kinemap.extract) ---
+    "spectrum": {
+        "at": Option((str, _NONE), metavar="RA,DEC",
+                     help="spectrum at this position (degrees or sexagesimal); with --radius "
+                          "a circle, else the one pixel there"),
+        "radius": Option((int, float, str, _NONE), metavar="RADIUS", unit="arcsec",
+                         help="radius of the circle at --at"),
+        "global": Option((bool,), False,
+                         help="the global profile: every pixel of the map (inside --region, "
+                              "when given)"),
+        "snr_threshold": Option((int, float), 3.0, cli=False,
+                                help="the Gaussian is fitted when the peak exceeds this many "
+                                     "times its error"),
+    },
+    "pv": {
+        "path": Option((str, list, _NONE), metavar="RA1,DEC1;RA2,DEC2[;...]",
+                       help="cut along this path (a polyline, offsets from its first point)"),
+        "center": Option((str, _NONE), metavar="RA,DEC",
+                         help="straight cut through this position (offset 0 there), with "
+                              "--pa and --length"),
+        "position_angle": Option((int, float, str, _NONE), metavar="ANGLE", unit="deg",
+                                 aliases=("--pa",),
+                                 help="direction of a --center cut, east of north (positive "
+                                      "offsets that way)"),
+        "length": Option((int, float, str, _NONE), metavar="LENGTH", unit="arcsec",
+                         help="length of a --center cut"),
+        "width": Option((int, float, str, _NONE), metavar="WIDTH", unit="arcsec",
+                        help="average over this width across the cut (default: one line of "
+                             "samples)"),
+        "region": Option((str, _NONE), metavar="FILE", path=True,
+                         help="DS9 or CRTF file whose line (or lines joined end to start) is "
+                              "the cut"),
+        "rings": Option((str, _NONE), metavar="ECSV", path=True,
+                        help="rotation_curve.ecsv of a ring fit of this cube: draw its model "
+                             "on the diagram"),
+    },
     "output": {
         "dir": Option((str,), "kinemap-out", cli="out", metavar="DIR", path=True,
                       help="output folder"),
@@ -600,10 +641,24 @@ def validate_config(user: dict, *, base_dir: str | None = None) -> dict:
                 v = cfg[sec][key]
                 if opt.path and v and not os.path.isabs(v):
                     cfg[sec][key] = os.path.normpath(os.path.join(base_dir, v))
-    # a cube always gets the maps stages (moment maps come with every cube run)
+    # a cube gets the maps stages (moment maps come with every cube run) unless the run
+    # only extracts (a spectrum or a PV cut are not a reason to make maps)
     cfg["_sections"] = sorted(sections | {"input", "continuum", "noise", "mask", "output", "run"}
-                              | ({"maps"} if cfg["input"]["cube"] else set()))
+                              | ({"maps"} if cfg["input"]["cube"] and not only_extracts(sections)
+                                 else set()))
     return cfg
+
+
+# sections whose stages need no maps: a config of only these (and the shared sections)
+# makes no moment maps
+EXTRACTION_SECTIONS = ("spectrum", "pv")
+_SHARED = {"input", "continuum", "noise", "mask", "output", "run"}
+
+
+def only_extracts(sections) -> bool:
+    """Whether the stages of ``sections`` are extraction only (no [maps], no later stage)."""
+    stages = set(sections) - _SHARED
+    return bool(stages) and stages <= set(EXTRACTION_SECTIONS)
 
 
 def load_config(path) -> dict:

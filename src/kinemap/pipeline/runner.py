@@ -24,7 +24,7 @@ from kinemap.maps.moments import compute_moments, noise_and_moments
 from kinemap.maps.noise import estimate_noise
 from kinemap.parallel.cluster import open_client
 from kinemap.pipeline import adapters as ad
-from kinemap.pipeline.config import parse_size
+from kinemap.pipeline.config import only_extracts, parse_size
 
 # The fitting, ring and width stages import scipy.optimize, numba kernels and more; they
 # are imported inside their stage functions so a moments-only run starts faster.
@@ -78,6 +78,11 @@ def prepare(cfg: dict, state: RunState | None = None) -> RunState:
                        **ad.continuum_kwargs(cfg), **state.blocks)
     state.results["continuum"] = continuum  # its products are empty when nothing was removed
     state.cube = continuum.cube
+    if only_extracts(cfg.get("_sections", ())):
+        # spectra and cuts need the noise (for errors) but no signal mask
+        state.noise = _timed(state, "noise", estimate_noise, state.cube, **ad.noise_kwargs(cfg),
+                             **state.blocks)
+        return state
     if _can_fuse(cfg):
         # threshold and no mask need only each spectrum's own noise: one read of the cube
         # gives the noise and the moment maps together (stage_moments hands them on)
@@ -257,13 +262,52 @@ def stage_turbulence(state: RunState):
                   widths=state.results.get("widths"), **kwargs)
 
 
+# --- extraction: kinemap spectrum and kinemap pv ---
+
+def stage_spectrum(state: RunState):
+    from kinemap.extract.spectrum import extract_spectrum
+
+    return _timed(state, "spectrum", extract_spectrum, state.cube, noise=state.noise,
+                  **ad.spectrum_kwargs(state.config))
+
+
+def stage_pv(state: RunState):
+    from kinemap.extract.pv import pv_diagram
+
+    rings = None
+    path = state.config["pv"]["rings"]
+    if path:
+        rings = _ring_model(path, state.cube)
+    return _timed(state, "pv", pv_diagram, state.cube, rings=rings,
+                  **ad.pv_kwargs(state.config))
+
+
+def _ring_model(path, cube):
+    """A ring table written by ``kinemap rings`` (rotation_curve.ecsv) as a model to draw."""
+    import os
+
+    from astropy.table import Table
+
+    from kinemap.rings.model import RingModel
+
+    if not os.path.exists(path):
+        raise KinemapError(f"ring table not found: {path}; give the rotation_curve.ecsv of "
+                           "'kinemap rings'")
+    try:
+        table = Table.read(path, format="ascii.ecsv")
+    except Exception as exc:  # astropy raises many types for a file that is not ECSV
+        raise KinemapError(f"could not read {path} as an ECSV ring table: {exc}") from None
+    return RingModel(table, cube.meta.wcs)
+
+
 # (config section, result name, stage function).  A stage runs when its section is in the
 # config; later capabilities add their entry here.
 STAGES = [("maps", "moments", stage_moments), ("maps", "fit", stage_fit),
           ("maps", "model", stage_model), ("maps", "lines", stage_lines),
           ("rings", "rings", stage_rings),
           ("widths", "widths", stage_widths),
-          ("turbulence", "turbulence", stage_turbulence)]
+          ("turbulence", "turbulence", stage_turbulence),
+          ("spectrum", "spectrum", stage_spectrum), ("pv", "pv", stage_pv)]
 
 
 def _options(cfg):
@@ -327,7 +371,8 @@ def _run_stages(cfg, client) -> RunState:
         sections.discard("maps")
     else:
         state = prepare(cfg, RunState(config=cfg, client=client))
-        sections.add("maps")
+        if not only_extracts(sections):
+            sections.add("maps")
     for section, name, fn in STAGES:
         if section in sections:
             result = fn(state)

@@ -23,6 +23,8 @@ def figures_for(result) -> dict:
         from kinemap.plotting.widths import figures
     elif name == "turbulence":
         from kinemap.plotting.turbulence import figures
+    elif name in ("spectrum", "pv"):
+        from kinemap.plotting.extract import figures
     else:
         return {}
     return figures(result)

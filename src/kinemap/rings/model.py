@@ -10,7 +10,7 @@ from kinemap.errors import KinemapError
 from kinemap.rings._geometry import disk_coords
 from kinemap.rings.grid import as_grid
 
-__all__ = ["model_velocity_field"]
+__all__ = ["model_velocity_field", "RingModel", "MODEL_NOTE"]
 
 
 def model_velocity_field(rings: Table, shape: tuple[int, int], grid) -> u.Quantity:
@@ -45,12 +45,23 @@ def model_velocity_field(rings: Table, shape: tuple[int, int], grid) -> u.Quanti
     within half a ring width outside the last ring the last ring is used unchanged.
     """
     grid = as_grid(grid)
+    if len(shape) != 2:
+        raise KinemapError(f"'shape' must be (ny, nx), got {shape!r}")
+    params, width = _ring_params(rings)
+    return model_field(params, float(width), tuple(shape), grid.jacobian) * KMS
+
+
+MODEL_NOTE = ("ring model evaluated at each sample of the cut (no pixel interpolation); "
+              "inside the first ring v_rot and v_exp fall linearly to 0 at the centre, so the "
+              "curve passes v_sys continuously (not beam-smeared)")
+
+
+def _ring_params(rings: Table):
+    """(per-ring parameter arrays, ring width in arcsec) of a ring table."""
     needed = ("radius", "v_rot", "v_exp", "position_angle", "inclination", "v_sys", "x_center", "y_center")
     missing = [c for c in needed if c not in rings.colnames]
     if missing:
         raise KinemapError(f"'rings' table lacks column(s) {', '.join(missing)}; pass a table from fit_velocity_field")
-    if len(shape) != 2:
-        raise KinemapError(f"'shape' must be (ny, nx), got {shape!r}")
     width = rings.meta.get("ring_width")
     radius = _plain(rings["radius"], u.arcsec)
     if width is None:
@@ -67,7 +78,38 @@ def model_velocity_field(rings: Table, shape: tuple[int, int], grid) -> u.Quanti
         "x_center": _plain(rings["x_center"], u.pix),
         "y_center": _plain(rings["y_center"], u.pix),
     }
-    return model_field(params, float(width), tuple(shape), grid.jacobian) * KMS
+    return params, float(width)
+
+
+class RingModel:
+    """A ring solution as a velocity model that can be evaluated anywhere on its grid.
+
+    ``RingModel(table, grid)``: ``table`` a ring table (a ``rotation_curve.ecsv`` read back
+    works: radius, v_rot, v_exp, geometry; x_center, y_center in 0-based pixels of the map
+    the rings were fitted on), ``grid`` a SkyGrid or the WCS of that map.
+    :meth:`model_velocity_at` is what :func:`kinemap.pv_diagram` draws.
+    """
+
+    model_note = MODEL_NOTE
+
+    def __init__(self, table: Table, grid):
+        from kinemap.rings.grid import SkyGrid
+
+        if not hasattr(grid, "jacobian"):
+            grid = SkyGrid.from_wcs(grid)
+        self.params, self.width = _ring_params(table)
+        self.grid = grid
+
+    def model_velocity_at(self, x, y) -> np.ndarray:
+        """km/s at 0-based pixel positions (arrays of one shape); NaN beyond the last ring."""
+        x, y = np.asarray(x, float), np.asarray(y, float)
+        out = model_at(self.params, self.width, x.ravel(), y.ravel(), self.grid.jacobian,
+                       to_centre=True)
+        return out.reshape(x.shape)
+
+    def systemic_velocity(self) -> float | None:
+        v = self.params["v_sys"][np.isfinite(self.params["v_sys"])]
+        return float(np.median(v)) if v.size else None
 
 
 def _plain(col, unit):
@@ -79,18 +121,32 @@ def _plain(col, unit):
 
 def model_field(params, width, shape, jac):
     """Plain-float model field; ``params`` maps names to per-ring arrays (NaN rows skipped)."""
-    names = ("radius", "v_rot", "v_exp", "position_angle", "inclination", "v_sys", "x_center", "y_center")
-    ok = np.all([np.isfinite(np.asarray(params[n], float)) for n in names], axis=0)
-    p = {n: np.asarray(params[n], float)[ok] for n in names}
-    out = np.full(shape, np.nan)
+    yy, xx = np.indices(shape, dtype=float)
+    return model_at(params, width, xx.ravel(), yy.ravel(), jac).reshape(shape)
+
+
+_NAMES = ("radius", "v_rot", "v_exp", "position_angle", "inclination", "v_sys", "x_center",
+          "y_center")
+
+
+def model_at(params, width, xx, yy, jac, *, to_centre: bool = False):
+    """The model's line-of-sight velocity at pixel positions ``xx``, ``yy`` (1-D arrays,
+    0-based, any fractional values); NaN where the model does not reach.
+
+    ``to_centre``: inside the inner edge of the first ring too, with v_rot and v_exp
+    falling linearly to 0 at the centre (solid-body rotation inside the first ring), so
+    that a cut through the centre passes v_sys continuously instead of leaving a gap.
+    """
+    ok = np.all([np.isfinite(np.asarray(params[n], float)) for n in _NAMES], axis=0)
+    p = {n: np.asarray(params[n], float)[ok] for n in _NAMES}
+    xx, yy = np.asarray(xx, float), np.asarray(yy, float)
+    npix = xx.size
+    out = np.full(npix, np.nan)
     n = p["radius"].size
     if n == 0:
         return out
     # PA interpolation must not jump across 0/360
     p["position_angle"] = np.rad2deg(np.unwrap(np.deg2rad(p["position_angle"])))
-    yy, xx = np.indices(shape, dtype=float)
-    xx, yy = xx.ravel(), yy.ravel()
-    npix = xx.size
     lower = np.full(npix, -1)  # ring index k (pixel between k-1 and k); -1 = not yet placed
     tfrac = np.zeros(npix)
     prev_f = None
@@ -100,7 +156,7 @@ def model_field(params, width, shape, jac):
         f = r - p["radius"][k]
         new = (lower < 0) & (f <= 0)
         if k == 0:
-            inside = new & (r >= p["radius"][0] - width / 2 - 1e-9)
+            inside = new & (to_centre | (r >= p["radius"][0] - width / 2 - 1e-9))
             lower[new] = 0
             # fraction of the first ring's velocities: r / R_0 (0 at the centre)
             tfrac[new] = r[new] / p["radius"][0] if p["radius"][0] > 0 else 1.0
@@ -124,7 +180,7 @@ def model_field(params, width, shape, jac):
         a = p[name]
         return a[km1] * (1 - t) + a[k] * t
 
-    g = {name: interp(name) for name in names}
+    g = {name: interp(name) for name in _NAMES}
     first = k == 0
     for name in ("x_center", "y_center", "position_angle", "inclination", "v_sys"):
         g[name][first] = p[name][0]
@@ -133,7 +189,5 @@ def model_field(params, width, shape, jac):
     _, c, s = disk_coords(jac, xx[placed], yy[placed], g["x_center"], g["y_center"], g["position_angle"],
                           g["inclination"])
     si = np.sin(np.deg2rad(g["inclination"]))
-    v = g["v_sys"] + si * (g["v_rot"] * c + g["v_exp"] * s)
-    flat = out.ravel()
-    flat[np.nonzero(placed)[0]] = v
-    return flat.reshape(shape)
+    out[np.nonzero(placed)[0]] = g["v_sys"] + si * (g["v_rot"] * c + g["v_exp"] * s)
+    return out

@@ -29,8 +29,8 @@ class PositionVelocitySlice:
         data or the slice leaves the map), in the cube's unit (``unit``).
     unit : Unit
     model_velocity : Quantity [km/s], shape (n_offset,)
-        The ring model's line-of-sight velocity sampled along the same line (NaN outside
-        the rings).
+        The ring model's line-of-sight velocity at the same positions (NaN beyond the
+        last ring; inside the first ring it falls linearly to v_sys at the centre).
     position_angle : Quantity [deg];  x_center, y_center : float (0-based pixels)
         The slice geometry.
     """
@@ -117,8 +117,12 @@ def major_axis_pv(cube, velocity_axis, result, *, position_angle=None, x_center=
         pv = np.where(count > 0, pv / count, np.nan)
     east, north = offs * along[0], offs * along[1]
     dx, dy = grid.pixel_offsets(east, north)
-    model = result.model.to_value(KMS)
-    mv = ndimage.map_coordinates(model, [y0 + dy, x0 + dx], order=1, cval=np.nan, prefilter=False)
+    # the model at the samples themselves, continuous through the centre (not the pixel
+    # map, whose bilinear interpolation across the centre pixel and the hole inside the
+    # first ring's inner edge put a kink in the curve there)
+    from kinemap.rings.model import RingModel
+
+    mv = RingModel(result.table, grid).model_velocity_at(x0 + dx, y0 + dy)
     return PositionVelocitySlice(
         offset=offs * u.arcsec, velocity=vaxis * KMS, data=pv, unit=unit, model_velocity=mv * KMS,
         position_angle=(pa % 360.0) * u.deg, x_center=x0, y_center=y0,

@@ -65,6 +65,19 @@ class RingFit(StageResult):
     def systemic_velocity(self) -> float | None:
         return float(self.result.global_geometry["v_sys"].to_value(KMS))
 
+    @property
+    def model_note(self) -> str:
+        from kinemap.rings.model import MODEL_NOTE
+
+        return MODEL_NOTE
+
+    def model_velocity_at(self, x, y):
+        """The ring model's line-of-sight velocity (km/s) at 0-based pixel positions of the
+        fitted map, passing v_sys continuously at the centre (for position-velocity cuts)."""
+        from kinemap.rings.model import RingModel
+
+        return RingModel(self.result.table, self.result.grid).model_velocity_at(x, y)
+
     def products(self) -> list[Product]:
         r = self.result
         tab = r.table.copy()
@@ -97,24 +110,11 @@ class RingFit(StageResult):
 
 def _center_pixels(center, wcs):
     """'RA,DEC' (degrees or sexagesimal) or a SkyCoord -> 0-based pixel (x, y)."""
-    from astropy.coordinates import SkyCoord
+    from kinemap.io.positions import parse_position
 
     if center is None:
         return None, None
-    if isinstance(center, SkyCoord):
-        sc = center
-    else:
-        text = str(center)
-        try:
-            ra, dec = (p.strip() for p in text.split(","))
-            if any(ch in text for ch in "hmsd:"):
-                sc = SkyCoord(ra, dec, unit=(u.hourangle, u.deg))
-            else:
-                sc = SkyCoord(float(ra) * u.deg, float(dec) * u.deg)
-        except (ValueError, TypeError):
-            raise KinemapError(f"'center' must be 'RA,DEC' in degrees or sexagesimal or a "
-                               f"SkyCoord, got {center!r}") from None
-    x, y = wcs.world_to_pixel(sc)
+    x, y = wcs.world_to_pixel(parse_position(center, "center"))
     return float(x), float(y)
 
 
