@@ -21,6 +21,8 @@ FUNCTIONS = {
     "fit_rings": ("rings",),
     "line_widths": ("widths", "maps"),
     "turbulence_statistics": ("turbulence",),
+    "extract_spectrum": ("spectrum",),
+    "pv_diagram": ("pv",),
 }
 # keys whose schema value is a parsed form of the function's (or set by the run, not the
 # function): checked elsewhere

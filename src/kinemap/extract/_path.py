@@ -69,8 +69,9 @@ def path_from_center(center, position_angle, length, wcs, shape_yx) -> CutPath:
     try:
         return _build(ends, wcs, shape_yx, 0.5, f"cut through {center} at PA {pa:g} deg, "
                       f"{ln:g} arcsec long", "center")
-    except KinemapError as exc:
-        raise KinemapError(f"{exc}: the cut's ends fall off the map; shorten --length") from None
+    except KinemapError:
+        raise KinemapError(f"a cut {ln:g} arcsec long through {center} at PA {pa:g} deg runs "
+                           "off the map; shorten --length or move --center") from None
 
 
 def path_from_region(path, wcs, shape_yx) -> CutPath:

@@ -88,6 +88,11 @@ class PVDiagram(StageResult):
         lin = np.linspace(self.velocity[0], self.velocity[-1], self.velocity.size)
         extra["VNONLIN"] = (float(np.max(np.abs(lin - self.velocity))),
                             "[km/s] largest departure of channels from axis 2")
+        # astropy writes spectral axes in SI; the velocity axis stays in km/s as asked
+        w = self.pv_wcs()
+        extra.update(CUNIT2=("km/s", "velocity unit"),
+                     CRVAL2=(float(w.wcs.crval[1]), "[km/s] velocity of the first channel"),
+                     CDELT2=(float(w.wcs.cdelt[1]), "[km/s] channel step"))
         return [Product("pv", self.data.astype(np.float32), self.unit,
                         "position-velocity diagram, " + self.description, kind="intensity",
                         plot=False, extra_header=extra, wcs=self.pv_wcs())]

@@ -33,6 +33,8 @@ def position_pixels(value, wcs, shape_yx, name: str = "position") -> tuple[float
     """0-based pixel (x, y) of a sky position on a map of ``shape_yx``; a position off the
     map is an error that gives the map's extent in pixels."""
     sc = parse_position(value, name)
+    shown = (f"{sc.icrs.ra.deg:.5f},{sc.icrs.dec.deg:.5f}" if not isinstance(value, str)
+             else value)
     try:
         x, y = (float(c) for c in wcs.world_to_pixel(sc))
     except Exception:  # wcslib refuses positions it cannot project
@@ -41,6 +43,6 @@ def position_pixels(value, wcs, shape_yx, name: str = "position") -> tuple[float
     if not (np.isfinite(x) and np.isfinite(y) and -0.5 <= x <= nx - 0.5 and -0.5 <= y <= ny - 0.5):
         where = (f"pixel ({x:.1f}, {y:.1f})" if np.isfinite(x) and np.isfinite(y)
                  else "a point the map's projection cannot reach")
-        raise KinemapError(f"'{name}' {value} lies off the map ({where}; the map is {nx} x {ny} "
+        raise KinemapError(f"'{name}' {shown} lies off the map ({where}; the map is {nx} x {ny} "
                            f"pixels); give a position inside it")
     return x, y
