@@ -345,8 +345,10 @@ def _cmd_spectrum(args) -> int:
     fit = (f"Gaussian at {s['fit_centre_kms']:.2f} km/s, dispersion "
            f"{s['fit_dispersion_kms']:.2f} km/s" if s["fit_status"] == "ok"
            else f"no Gaussian fit ({s['fit_status']})")
-    print(f"kinemap: spectrum of {s['aperture']} ({s['n_pixels']} pixels, in {s['unit']}): "
-          f"integral {s['integrated']:.4g} +- {s['integrated_err']:.2g} {s['unit']} km/s; {fit}")
+    unit = s["unit"] or "no unit (the cube has no BUNIT)"
+    print(f"kinemap: spectrum of {s['aperture']} ({s['n_pixels']} pixels, {unit}): integral "
+          f"{s['integrated']:.4g} +- {s['integrated_err']:.2g} {s['unit']} km/s".replace("  ", " ")
+          + f"; {fit}")
     return 0
 
 

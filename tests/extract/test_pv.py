@@ -10,7 +10,7 @@ from astropy.wcs import WCS
 from scipy import ndimage
 
 from conftest import make_header, run_cli, write_cube
-from kinemap import KinemapError, pv_diagram, read_cube
+from kinemap import pv_diagram, read_cube
 
 PIX_ARCSEC = 7.2  # make_header's 2e-3 deg pixels
 

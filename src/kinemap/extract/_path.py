@@ -24,6 +24,7 @@ class CutPath:
     lengths: np.ndarray
     zero: float
     description: str
+    bends: bool = True  # False for a straight --center cut (its centre is no bend)
 
     @property
     def length(self) -> float:
@@ -35,7 +36,7 @@ def _vertices(coords, wcs, shape_yx, name):
     return np.array([p[0] for p in xy]), np.array([p[1] for p in xy])
 
 
-def _build(coords, wcs, shape_yx, zero_fraction, description, name):
+def _build(coords, wcs, shape_yx, zero_fraction, description, name, bends=True):
     if len(coords) < 2:
         raise KinemapError(f"'{name}' needs at least two positions like 'RA1,DEC1;RA2,DEC2'")
     sky = [parse_position(c, name) for c in coords]
@@ -43,7 +44,7 @@ def _build(coords, wcs, shape_yx, zero_fraction, description, name):
     lengths = np.array([a.separation(b).to_value(u.arcsec) for a, b in zip(sky[:-1], sky[1:])])
     if np.any(lengths <= 0):
         raise KinemapError(f"'{name}' repeats a position; give distinct positions")
-    return CutPath(x, y, lengths, zero_fraction * float(lengths.sum()), description)
+    return CutPath(x, y, lengths, zero_fraction * float(lengths.sum()), description, bends)
 
 
 def path_from_points(path, wcs, shape_yx) -> CutPath:
@@ -68,7 +69,7 @@ def path_from_center(center, position_angle, length, wcs, shape_yx) -> CutPath:
             c.directional_offset_by(pa * u.deg, half)]
     try:
         return _build(ends, wcs, shape_yx, 0.5, f"cut through {center} at PA {pa:g} deg, "
-                      f"{ln:g} arcsec long", "center")
+                      f"{ln:g} arcsec long", "center", bends=False)
     except KinemapError:
         raise KinemapError(f"a cut {ln:g} arcsec long through {center} at PA {pa:g} deg runs "
                            "off the map; shorten --length or move --center") from None

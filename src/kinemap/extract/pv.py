@@ -50,6 +50,8 @@ class PVDiagram(StageResult):
         How the model was sampled.
     beam_along : float or None
         FWHM of the beam along the cut's first segment (arcsec), for the plot.
+    vertices : tuple of float
+        Offsets (arcsec) of the cut's vertices, its ends included.
     """
 
     name: ClassVar[str] = "pv"
@@ -67,6 +69,7 @@ class PVDiagram(StageResult):
     model_note: str = ""
     v_sys: float | None = None
     beam_along: float | None = None
+    vertices: tuple = ()
     seconds: float = 0.0
     settings: dict = field(default_factory=dict)
 
@@ -199,7 +202,9 @@ def pv_diagram(cube, *, path=None, center=None, position_angle=None, length=None
         model = np.asarray(rings.model_velocity_at(xc, yc), float)
         note = getattr(rings, "model_note", "ring model at the cut's positions")
         v_sys = rings.systemic_velocity()
-    return PVDiagram(beam_along=_beam_along(cube.meta, cut), data=data, offset=offsets, velocity=np.asarray(cube.velocity, float),
+    ends = np.concatenate([[0.0], np.cumsum(cut.lengths)]) - cut.zero
+    vertices = tuple(float(v) for v in (ends if cut.bends else ends[[0, -1]]))
+    return PVDiagram(beam_along=_beam_along(cube.meta, cut), vertices=vertices, data=data, offset=offsets, velocity=np.asarray(cube.velocity, float),
                      unit=cube.meta.bunit, x=xs[mid] if xs.shape[0] % 2 else xs.mean(axis=0),
                      y=ys[mid] if ys.shape[0] % 2 else ys.mean(axis=0),
                      description=cut.description, width=w or 0.0, meta=cube.meta,

@@ -1,9 +1,9 @@
 """A spectrum at a position, in a region or over the whole map: ``kinemap spectrum``.
 
-Flux-density cubes (Jy/beam and the like) are summed over the aperture's pixels and
-divided by the beam area in pixels, which gives a flux density in Jy (a point source of
-S Jy gives S).  Brightness cubes (K, or anything not per beam) are averaged over the
-pixels.  The error of each channel is the noise of that sum or mean with the noise of
+Jy/beam cubes are summed over the aperture's pixels and divided by the beam area in
+pixels, which gives a flux density in Jy (a point source of S Jy gives S); cubes of a
+flux per pixel (Jy/pixel, erg/s/cm2/Angstrom per spaxel) are summed.  Brightness cubes
+(K, surface brightness per solid angle, no unit) are averaged over the pixels.  The error of each channel is the noise of that sum or mean with the noise of
 neighbouring pixels correlated like the beam.
 """
 from __future__ import annotations
@@ -93,6 +93,9 @@ def _flux_mode(meta):
         return "sum", u.Jy, scale
     if bunit.is_equivalent(_PER_PIXEL):
         return "sum", u.Jy, bunit.to(_PER_PIXEL)
+    if any(t in ("spectral flux density", "spectral flux density wav")
+           for t in str(bunit.physical_type).split("/")):
+        return "sum", bunit, 1.0  # a flux per pixel (spaxel) adds up
     return "mean", bunit, 1.0
 
 
@@ -145,8 +148,9 @@ def extract_spectrum(cube, *, at=None, radius=None, region=None, noise=None,
     Returns
     -------
     SpectrumResult
-        Per-beam cubes: ``flux`` is the sum over the aperture / beam area in pixels (Jy).
-        Others (K, ...): the mean over the aperture, in the cube's unit.  NaN channels of a
+        Per-beam cubes: ``flux`` is the sum over the aperture / beam area in pixels (Jy);
+        fluxes per pixel: the sum; others (K, per solid angle, no unit): the mean over the
+        aperture, in the cube's unit.  NaN channels of a
         pixel are left out of that channel's sum (``n_pixels`` counts the rest).
     """
     t0 = time.perf_counter()
@@ -168,7 +172,8 @@ def extract_spectrum(cube, *, at=None, radius=None, region=None, noise=None,
         flux, err = total * scale, np.full(total.shape, sum_err * scale)
         how = (f"sum over the aperture's pixels divided by the beam area "
                f"({beam_area_pixels(cube.meta):.4g} pixels): flux density"
-               if cube.meta.bunit.is_equivalent(_PER_BEAM) else "sum over the aperture's pixels")
+               if cube.meta.bunit.is_equivalent(_PER_BEAM)
+               else "sum over the aperture's pixels (a flux per pixel adds up)")
     else:
         with np.errstate(invalid="ignore", divide="ignore"):
             flux = np.where(count > 0, total / count, np.nan)

@@ -44,8 +44,8 @@ def plot_spectrum(result) -> Figure:
         vv = np.linspace(v[0], v[-1], 800)
         g = fit["amplitude"] * np.exp(-0.5 * ((vv - fit["centre"]) / fit["dispersion"]) ** 2)
         ax.plot(vv, g, color="tab:red", lw=1.3,
-                label=(f"Gaussian: {fit['centre']:.1f} {_KMS}, "
-                       rf"$\sigma$ = {fit['dispersion']:.1f} {_KMS}"))
+                label=(f"Gaussian: {fit['centre']:.4g} {_KMS}, "
+                       rf"$\sigma$ = {fit['dispersion']:.3g} {_KMS}"))
     lo, hi = mom["window"]
     if np.isfinite(lo) and fit["status"] == "ok":
         ax.axvspan(lo, hi, color="tab:blue", alpha=0.07, lw=0, label="moment window")
@@ -56,7 +56,7 @@ def plot_spectrum(result) -> Figure:
     what = "Flux density" if result.mode == "sum" else "Mean brightness"
     ax.set_ylabel(what + _unit_label(t["flux"].unit))
     ax.set_title(_wrap(result.table.meta["aperture"]), fontsize=9)
-    ax.legend(frameon=False, fontsize=7, loc="upper right")
+    ax.legend(fontsize=7, loc="best", framealpha=0.85, edgecolor="none")
     ax.grid(alpha=0.25)
     return fig
 
@@ -91,6 +91,8 @@ def plot_pv(pv) -> Figure:
         ax.axhline(pv.v_sys, color="tab:blue", ls="--", lw=0.8, label=r"$v_{\rm sys}$")
     if off[0] < 0 < off[-1]:
         ax.axvline(0.0, color="tab:blue", ls=":", lw=0.8)
+    for k, at in enumerate(pv.vertices[1:-1]):  # the bends of a polyline
+        ax.axvline(at, color="tab:green", ls="-.", lw=0.8, label="vertex" if k == 0 else None)
     if pv.beam_along:
         x0 = off[0] + 0.06 * (off[-1] - off[0]) + pv.beam_along / 2
         y0 = vs[0] + 0.08 * (vs[-1] - vs[0])
