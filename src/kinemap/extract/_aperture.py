@@ -7,7 +7,7 @@ import astropy.units as u
 import numpy as np
 
 from kinemap.errors import KinemapError
-from kinemap.io.positions import position_pixels
+from kinemap.io.positions import position_pixels, show_position
 from kinemap.units import to_value
 
 __all__ = ["aperture", "beam_kernel", "correlated_sum_variance", "beam_area_pixels"]
@@ -34,7 +34,8 @@ def aperture(cube, *, at=None, radius=None, region=None) -> tuple[np.ndarray, st
         pixels = dist <= r
         if not pixels.any():  # a radius smaller than half a pixel: the nearest pixel
             pixels[int(round(y0)), int(round(x0))] = True
-        what = (f"circle of radius {r:g} arcsec at {at}" if r > 0 else f"the pixel at {at}")
+        where = show_position(at)
+        what = f"circle of radius {r:g} arcsec at {where}" if r > 0 else f"the pixel at {where}"
     elif region is not None:
         if isinstance(region, np.ndarray):
             if region.shape != (ny, nx):

@@ -7,7 +7,7 @@ import astropy.units as u
 import numpy as np
 
 from kinemap.errors import KinemapError
-from kinemap.io.positions import parse_position, position_pixels
+from kinemap.io.positions import parse_position, position_pixels, show_position
 from kinemap.units import to_value
 
 __all__ = ["CutPath", "path_from_points", "path_from_center", "path_from_region", "sample_points"]
@@ -50,8 +50,8 @@ def _build(coords, wcs, shape_yx, zero_fraction, description, name, bends=True):
 def path_from_points(path, wcs, shape_yx) -> CutPath:
     """'RA1,DEC1;RA2,DEC2[;...]' (or a list of positions): offsets from the first point."""
     coords = [p for p in path.split(";") if p.strip()] if isinstance(path, str) else list(path)
-    return _build(coords, wcs, shape_yx, 0.0, f"path {path}" if isinstance(path, str)
-                  else f"path through {len(coords)} points", "path")
+    return _build(coords, wcs, shape_yx, 0.0,
+                  "path " + ";".join(show_position(c).strip() for c in coords), "path")
 
 
 def path_from_center(center, position_angle, length, wcs, shape_yx) -> CutPath:
@@ -68,10 +68,12 @@ def path_from_center(center, position_angle, length, wcs, shape_yx) -> CutPath:
     ends = [c.directional_offset_by((pa + 180.0) * u.deg, half), c,
             c.directional_offset_by(pa * u.deg, half)]
     try:
-        return _build(ends, wcs, shape_yx, 0.5, f"cut through {center} at PA {pa:g} deg, "
+        return _build(ends, wcs, shape_yx, 0.5, f"cut through {show_position(center)} at PA "
+                      f"{pa:g} deg, "
                       f"{ln:g} arcsec long", "center", bends=False)
     except KinemapError:
-        raise KinemapError(f"a cut {ln:g} arcsec long through {center} at PA {pa:g} deg runs "
+        raise KinemapError(f"a cut {ln:g} arcsec long through {show_position(center)} at PA "
+                           f"{pa:g} deg runs "
                            "off the map; shorten --length or move --center") from None
 
 

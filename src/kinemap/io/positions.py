@@ -7,7 +7,7 @@ import numpy as np
 
 from kinemap.errors import KinemapError
 
-__all__ = ["parse_position", "position_pixels"]
+__all__ = ["parse_position", "position_pixels", "show_position"]
 
 _FORM = "'RA,DEC' in degrees ('150.01,2.2') or sexagesimal ('10h00m02s,+02d12m00s')"
 
@@ -29,12 +29,19 @@ def parse_position(value, name: str = "position"):
         raise KinemapError(f"'{name}' must be {_FORM} or a SkyCoord, got {value!r}") from None
 
 
+def show_position(value) -> str:
+    """A position as the user wrote it, or 'RA,DEC' in degrees for a SkyCoord."""
+    if isinstance(value, str):
+        return value
+    sc = parse_position(value)
+    return f"{sc.icrs.ra.deg:.5f},{sc.icrs.dec.deg:.5f}"
+
+
 def position_pixels(value, wcs, shape_yx, name: str = "position") -> tuple[float, float]:
     """0-based pixel (x, y) of a sky position on a map of ``shape_yx``; a position off the
     map is an error that gives the map's extent in pixels."""
     sc = parse_position(value, name)
-    shown = (f"{sc.icrs.ra.deg:.5f},{sc.icrs.dec.deg:.5f}" if not isinstance(value, str)
-             else value)
+    shown = show_position(sc if not isinstance(value, str) else value)
     try:
         x, y = (float(c) for c in wcs.world_to_pixel(sc))
     except Exception:  # wcslib refuses positions it cannot project
