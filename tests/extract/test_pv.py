@@ -10,7 +10,7 @@ from astropy.wcs import WCS
 from scipy import ndimage
 
 from conftest import make_header, run_cli, write_cube
-from kinemap import pv_diagram, read_cube
+from kinemap import KinemapError, pv_diagram, read_cube
 
 PIX_ARCSEC = 7.2  # make_header's 2e-3 deg pixels
 
@@ -190,3 +190,35 @@ def test_real_cube_cut(real_cube_path, tmp_path):
                                             prefilter=False) for c in range(data.shape[0])])
     ok = np.isfinite(ref)
     np.testing.assert_allclose(pv.data[ok], ref[ok], atol=1e-2 * np.nanstd(ref))
+
+
+def test_two_joined_lines_make_a_polyline_and_loose_ones_are_refused(cube_path, tmp_path):
+    """Two DS9 lines (regions package, reference library) joined end to start are one cut
+    through three points; lines that do not join give one clear error."""
+    from regions import LineSkyRegion, Regions
+
+    cube = read_cube(cube_path)
+    w = cube.meta.wcs
+    a, b, c = (w.pixel_to_world(x, y) for x, y in ((5, 10), (20, 12), (30, 30)))
+    sky = [SkyCoord(p.ra, p.dec) for p in (a, b, c)]
+    Regions([LineSkyRegion(sky[0], sky[1]), LineSkyRegion(sky[1], sky[2])]).write(
+        str(tmp_path / "two.reg"), format="ds9")
+    pv = pv_diagram(cube, region=str(tmp_path / "two.reg"))
+    ref = pv_diagram(cube, path=[a, b, c])
+    np.testing.assert_allclose(pv.data, ref.data, atol=1e-4)
+    assert len(pv.vertices) == 3
+    Regions([LineSkyRegion(sky[0], sky[1]), LineSkyRegion(sky[2], sky[1])]).write(
+        str(tmp_path / "loose.reg"), format="ds9", overwrite=True)
+    with pytest.raises(KinemapError, match="do not join end to start"):
+        pv_diagram(cube, region=str(tmp_path / "loose.reg"))
+
+
+def test_sexagesimal_and_degrees_give_the_same_cut(cube_path):
+    """'RA,DEC' in sexagesimal and in degrees (astropy's Angle formatting, reference
+    library) name the same position."""
+    cube = read_cube(cube_path)
+    p = cube.meta.wcs.pixel_to_world(22, 18)
+    sexa = f"{p.ra.to_string(unit=u.hourangle, precision=4)},{p.dec.to_string(precision=3)}"
+    one = pv_diagram(cube, center=sexa, position_angle=10, length=100)
+    two = pv_diagram(cube, center=f"{p.ra.deg},{p.dec.deg}", position_angle=10, length=100)
+    np.testing.assert_allclose(one.data, two.data, atol=1e-3)
