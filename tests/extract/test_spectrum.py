@@ -194,3 +194,16 @@ def test_real_cube_global_profile(real_cube_path, tmp_path):
     ref = sc.mean(axis=(1, 2)).value
     np.testing.assert_allclose(res.table["flux"].value, ref, rtol=1e-4, atol=1e-6)
     assert res.fit["status"] == "ok"
+
+
+def test_a_config_with_only_spectrum_makes_no_maps(tmp_path):
+    """kinemap.run with [spectrum]: the spectrum and its figure, no moment maps or mask."""
+    import kinemap
+
+    rng = np.random.default_rng(9)
+    path = _jy_cube(tmp_path, rng.normal(0, 1e-3, (30, 12, 12)))
+    state = kinemap.run({"input": {"cube": path}, "spectrum": {"global": True},
+                         "output": {"dir": str(tmp_path / "o")}}, progress=False)
+    assert set(state.results) == {"continuum", "spectrum"}
+    assert sorted(p.name for p in (tmp_path / "o").iterdir()) == [
+        "manifest.json", "spectrum.ecsv", "spectrum.png"]

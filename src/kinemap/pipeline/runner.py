@@ -274,10 +274,12 @@ def stage_spectrum(state: RunState):
 def stage_pv(state: RunState):
     from kinemap.extract.pv import pv_diagram
 
-    rings = None
     path = state.config["pv"]["rings"]
     if path:
         rings = _ring_model(path, state.cube)
+    else:  # a ring fit of the same run (a config with [rings] and [pv]) is drawn
+        rings = state.results.get("rings")
+        rings = rings if hasattr(rings, "model_velocity_at") else None
     return _timed(state, "pv", pv_diagram, state.cube, rings=rings,
                   **ad.pv_kwargs(state.config))
 
