@@ -79,7 +79,8 @@ def mask_kwargs(cfg: dict) -> dict:
     return dict(method=m["method"], threshold=m["threshold"], grow_threshold=m["grow_threshold"],
                 smooth_beams=m["smooth_beams"], smooth_pixels=m["smooth_pixels"],
                 smooth_channels=m["smooth_channels"], min_pixels=m["min_pixels"],
-                min_channels=m["min_channels"], channel_response=cfg["maps"]["channel_response"])
+                min_channels=m["min_channels"], channel_response=cfg["maps"]["channel_response"],
+                file=m["file"], mode=m["mode"])
 
 
 def moments_kwargs(cfg: dict) -> dict:

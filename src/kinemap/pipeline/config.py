@@ -24,7 +24,9 @@ Sections and keys (defaults in brackets)::
               be fitted on)
     [mask]    method ["smooth"; "none" when the config has [widths]] | "threshold",
               threshold, grow_threshold [2.0], smooth_beams [1.5], smooth_pixels [3.0],
-              smooth_channels [3], min_pixels, min_channels [2]
+              smooth_channels [3], min_pixels, min_channels [2], file (a 2D or 3D FITS
+              mask, non-zero = keep), mode ["and"] | "replace" (combine file with the
+              signal mask, or let it replace it)
     [maps]    method ["moments"] | "gauss", channel_response ["tophat"] | "hanning" | "none";
               for gauss: components [1] | 2 | 3 | "auto", baseline ["none"] | "constant" |
               "linear", instrument_sigma (km/s) or resolving_power, order ["flux"] |
@@ -348,6 +350,12 @@ SCHEMA: dict[str, dict[str, Option]] = {
                              help="smallest island footprint kept (pixels)"),
         "min_channels": Option((int,), 2, cli=False,
                                help="smallest island spectral extent kept (channels)"),
+        "file": Option((str, _NONE), metavar="FITS", cli="mask_file", path=True,
+                       help="your own mask: a 2D or 3D FITS image on the cube's pixels "
+                            "(non-zero = keep)"),
+        "mode": Option((str,), "and", choices=("and", "replace"), cli="mask_mode",
+                       help="and: use voxels both the signal mask and --mask-file keep; "
+                            "replace: --mask-file alone decides"),
     },
     "maps": {
         "method": Option((str,), "moments", choices=("moments", "gauss"),
