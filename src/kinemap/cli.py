@@ -79,7 +79,7 @@ def _group(p: _Parser, title):
 
 _READING = ("reading the cube",
             [("input", k) for k in ("convention", "rest_value", "frame", "vrange", "box",
-                                    "region", "beams", "beam", "bunit")]
+                                    "region", "beams", "beam", "bunit", "unit")]
             + [("noise", "line_free")])
 _CONTINUUM = ("continuum under the lines",
               [("continuum", k) for k in ("method", "line_window", "write_continuum")])

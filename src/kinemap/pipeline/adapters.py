@@ -58,7 +58,7 @@ def read_kwargs(cfg: dict) -> dict:
     return dict(convention=inp["convention"], rest_value=rest, frame=inp["frame"],
                 vrange=parse_vrange(inp["vrange"]), box=inp["box"], region=inp["region"],
                 beams=inp["beams"], bunit=inp["bunit"], hdu=inp["hdu"], beam=inp["beam"],
-                line=reference_line(cfg))
+                line=reference_line(cfg), unit=inp["unit"])
 
 
 def continuum_kwargs(cfg: dict) -> dict:

@@ -16,7 +16,8 @@ Sections and keys (defaults in brackets)::
 
     [input]   cube (required unless velocity_map), convention, rest_value, frame,
               vrange = [v1, v2], box, region, beams ["common"], beam ("46arcsec" or
-              "30arcsec,20arcsec,45deg"), bunit, hdu;
+              "30arcsec,20arcsec,45deg"), bunit, unit ("K" | "Jy/beam": convert the
+              values), hdu;
               velocity_map, velocity_err, intensity (2D FITS maps for [rings])
     [continuum] method ["auto"] | "none" | "constant" | "linear" | "poly:N", line_window
               [200] (km/s), clip [3.0] (sigma), write_continuum [false]
@@ -303,6 +304,10 @@ SCHEMA: dict[str, dict[str, Option]] = {
                             "'46arcsec' (circular) or '30arcsec,20arcsec,45deg' (FWHM major, "
                             "minor, position angle)"),
         "bunit": Option((str, _NONE), metavar="UNIT", help="unit of the cube values when BUNIT is missing or wrong"),
+        "unit": Option((str, _NONE), choices=("K", "Jy/beam"),
+                       help="convert the cube and its products to brightness temperature or "
+                            "Jy/beam (needs the beam and, for a velocity axis, the rest "
+                            "frequency)"),
         "hdu": Option((int, str, _NONE), cli=False, help="the HDU that holds the cube"),
         "velocity_map": Option((str, _NONE), cli=False, path=True,
                                help="a velocity map (2D FITS, km/s) instead of a cube, for [rings]"),
