@@ -97,20 +97,29 @@ def plot_ring_geometry(result, *, title: str | None = None) -> Figure:
     gg = result.global_geometry
     r = _vals(final["radius"], u.arcsec)
     panels = (
-        ("position_angle", u.deg, "Position angle (deg)"),
-        ("inclination", u.deg, "Inclination (deg)"),
-        ("v_sys", KMS, r"$v_{\rm sys}$ (km s$^{-1}$)"),
-        ("x_center", u.pix, "Centre x (pix)"),
-        ("y_center", u.pix, "Centre y (pix)"),
+        ("position_angle", u.deg, "Position angle (deg)", "position angle", "deg"),
+        ("inclination", u.deg, "Inclination (deg)", "inclination", "deg"),
+        ("v_sys", KMS, r"$v_{\rm sys}$ (km s$^{-1}$)", "v_sys", "km/s"),
+        ("x_center", u.pix, "Centre x (pix)", "centre x", "pix"),
+        ("y_center", u.pix, "Centre y (pix)", "centre y", "pix"),
     )
-    fig = _figure(6.4, 8.0)
-    axes = fig.subplots(len(panels), 1, sharex=True)
-    for ax, (name, unit, label) in zip(axes, panels):
+    drawn, notes = [], []
+    for name, unit, label, short, unit_text in panels:
         ref = gg[name].to_value(unit)
         fv = _vals(final[name], unit)
         if name == "position_angle":
             fv = ref + (fv - ref + 180) % 360 - 180
-        if rings is not None and name in result.settings.get("ring_free", ()):
+        per_ring = rings is not None and name in result.settings.get("ring_free", ())
+        finite = fv[np.isfinite(fv)]
+        if not per_ring and finite.size and np.ptp(finite) <= 1e-9 * max(1.0, abs(ref)):
+            # one value in every ring: a flat line says less than the number
+            notes.append(f"{short} {finite[0]:.6g} {unit_text}")
+            continue
+        drawn.append((name, unit, label, ref, fv, per_ring))
+    fig = _figure(6.4, 1.1 + 1.7 * max(1, len(drawn)))
+    axes = np.atleast_1d(fig.subplots(max(1, len(drawn)), 1, sharex=True))
+    for ax, (name, unit, label, ref, fv, per_ring) in zip(axes, drawn):
+        if per_ring:
             rv = _vals(rings[name], unit)
             if name == "position_angle":
                 rv = ref + (rv - ref + 180) % 360 - 180
@@ -122,6 +131,9 @@ def plot_ring_geometry(result, *, title: str | None = None) -> Figure:
         ax.grid(alpha=0.3)
     axes[0].legend(frameon=False, fontsize=7, ncol=3, loc="best")
     axes[-1].set_xlabel("Radius (arcsec)")
+    if notes:
+        fig.supxlabel("the same in every ring (panels not drawn): " + ", ".join(notes),
+                      fontsize=8, color="0.3")
     if title:
         fig.suptitle(title)
     return fig
