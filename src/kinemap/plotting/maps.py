@@ -59,9 +59,10 @@ def robust_limits(vals, kind: str, center: float | None = None) -> tuple[float, 
 
     Velocities: symmetric about ``center`` (the median unless given; 0 for residuals) at
     the 98th percentile of the deviations.  Errors and noise: the 1st percentile to the
-    smaller of the 99th percentile and median + 6 robust sigma (1.4826 MAD, common
-    practice), so a few huge values at the mask's edge do not wash out the map.  Others:
-    1st to 99.5th percentile.
+    smaller of the 99.5th percentile and median + 10 robust sigma (1.4826 MAD, common
+    practice), so a few huge values at the mask's edge do not wash out the map while a
+    broad spread of errors (faint regions) keeps its range.  Others: 1st to 99.5th
+    percentile.
     """
     if vals.size == 0:
         return 0.0, 1.0
@@ -71,9 +72,9 @@ def robust_limits(vals, kind: str, center: float | None = None) -> tuple[float, 
         half = float(np.percentile(np.abs(vals - c), 98)) or 1.0
         return c - half, c + half
     if kind in ("error", "noise"):
-        lo, hi, med = (float(x) for x in np.percentile(vals, [1, 99, 50]))
+        lo, hi, med = (float(x) for x in np.percentile(vals, [1, 99.5, 50]))
         mad = float(np.median(np.abs(vals - med))) * 1.4826
-        hi = min(hi, med + 6.0 * mad) if mad > 0 else hi
+        hi = min(hi, med + 10.0 * mad) if mad > 0 else hi
     else:
         lo, hi = (float(x) for x in np.percentile(vals, [1, 99.5]))
     if hi <= lo:

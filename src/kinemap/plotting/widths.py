@@ -143,8 +143,16 @@ def plot_width_histograms(budget, *, bins="auto") -> Figure:
         if vals.size == 0:
             ax.text(0.5, 0.5, "no valid pixels", transform=ax.transAxes, ha="center", va="center")
             continue
-        ax.hist(vals, bins=bins, color="0.6", edgecolor="0.3")
         med = float(np.median(vals))
+        # a long tail of a few pixels (more than twice the central 99 % beyond it) would
+        # squeeze the rest into a few bins: the axis then spans the central 99 %
+        lo, hi = np.percentile(vals, [0.5, 99.5])
+        far = np.ptp(vals) > 3.0 * (hi - lo)
+        inside = vals[(vals >= lo) & (vals <= hi)] if far else vals
+        ax.hist(inside if inside.size > 1 else vals, bins=bins, color="0.6", edgecolor="0.3")
+        if vals.size - inside.size and inside.size > 1:
+            ax.set_title(f"{vals.size - inside.size} of {vals.size} pixels beyond the axis",
+                         fontsize=8, color="0.3")
         ax.axvline(med, color="C3", ls="--", label=f"median {med:.3g}")
         if key == "mach_number":
             ax.axvline(1.0, color="k", ls=":", label="Mach 1")
