@@ -144,11 +144,10 @@ def plot_width_histograms(budget, *, bins="auto") -> Figure:
             ax.text(0.5, 0.5, "no valid pixels", transform=ax.transAxes, ha="center", va="center")
             continue
         med = float(np.median(vals))
-        # a long tail of a few pixels (more than twice the central 99 % beyond it) would
-        # squeeze the rest into a few bins: the axis then spans the central 99 %
+        # a few runaway pixels (further from the central 99 % than its own width) would
+        # squeeze the rest into a few bins: they are left off the axis and counted
         lo, hi = np.percentile(vals, [0.5, 99.5])
-        far = np.ptp(vals) > 3.0 * (hi - lo)
-        inside = vals[(vals >= lo) & (vals <= hi)] if far else vals
+        inside = vals[(vals >= lo - (hi - lo)) & (vals <= hi + (hi - lo))]
         ax.hist(inside if inside.size > 1 else vals, bins=bins, color="0.6", edgecolor="0.3")
         if vals.size - inside.size and inside.size > 1:
             ax.set_title(f"{vals.size - inside.size} of {vals.size} pixels beyond the axis",
