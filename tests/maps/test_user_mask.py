@@ -166,3 +166,12 @@ def test_cli_mask_file_and_mode(tmp_path):
     assert code == 2
     assert err.startswith("kinemap: error: the mask") and len(err.strip().splitlines()) == 1
     assert not (tmp_path / "out2").exists()
+
+
+def test_mask_file_with_a_velocity_map_input_is_refused():
+    from kinemap.pipeline.config import validate_config
+
+    with pytest.raises(KinemapError, match="--mask-file masks a cube, and the input is a "
+                                           "velocity map"):
+        validate_config({"input": {"velocity_map": "v.fits"}, "rings": {},
+                         "mask": {"file": "m.fits"}})

@@ -604,6 +604,9 @@ def validate_config(user: dict, *, base_dir: str | None = None) -> dict:
     if not cfg["input"]["cube"] and not cfg["input"]["velocity_map"]:
         raise KinemapError("the config needs [input] cube = \"path/to/cube.fits\" (or "
                            "velocity_map = \"map.fits\" for a rotation curve from a map)")
+    if cfg["input"]["velocity_map"] and cfg["mask"]["file"]:
+        raise KinemapError("--mask-file masks a cube, and the input is a velocity map; leave "
+                           "it out (blank the map's pixels instead) or give the cube")
     if cfg["input"]["velocity_map"] and "rings" not in user:
         raise KinemapError("[input] velocity_map is only used by [rings]; add a [rings] section "
                            "or give a cube")
