@@ -117,8 +117,7 @@ def _draw_discrete(fig, ax, data, kind, label):
     if table is None:
         from matplotlib.ticker import MaxNLocator
 
-        cmap = matplotlib.colormaps[CMAPS.get(kind, "viridis")].copy()
-        cmap.set_bad("#e8e8e8")
+        cmap = matplotlib.colormaps[CMAPS.get(kind, "viridis")].with_extremes(bad="#e8e8e8")
         im = ax.imshow(data, origin="lower", cmap=cmap, interpolation="nearest")
         cb = fig.colorbar(im, ax=ax)
         cb.locator = MaxNLocator(integer=True)
@@ -126,8 +125,7 @@ def _draw_discrete(fig, ax, data, kind, label):
         cb.set_label(label)
         return cb
     values, labels, colours = table
-    cmap = ListedColormap(colours)
-    cmap.set_bad("#e8e8e8")
+    cmap = ListedColormap(colours).with_extremes(bad="#e8e8e8")
     norm = BoundaryNorm(np.arange(values[0] - 0.5, values[-1] + 1.0), cmap.N)
     shown = (np.where(np.isfinite(data), data, Status.NO_DATA) if kind == "status"
              else np.asarray(data, dtype=float))
@@ -171,8 +169,7 @@ def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float
     if kind in _DISCRETE:
         cb = _draw_discrete(fig, ax, data, kind, label)
     else:
-        cmap = matplotlib.colormaps[CMAPS.get(kind, "viridis")].copy()
-        cmap.set_bad("#e8e8e8")
+        cmap = matplotlib.colormaps[CMAPS.get(kind, "viridis")].with_extremes(bad="#e8e8e8")
         vmin, vmax = robust_limits(vals, kind, center)
         im = ax.imshow(data, origin="lower", cmap=cmap, vmin=vmin, vmax=vmax,
                        interpolation="nearest")
