@@ -79,7 +79,7 @@ def _group(p: _Parser, title):
 
 _READING = ("reading the cube",
             [("input", k) for k in ("convention", "rest_value", "frame", "vrange", "box",
-                                    "region", "beams", "beam", "bunit")]
+                                    "region", "beams", "beam", "bunit", "unit")]
             + [("noise", "line_free")])
 _CONTINUUM = ("continuum under the lines",
               [("continuum", k) for k in ("method", "line_window", "write_continuum")])
@@ -102,7 +102,8 @@ COMMANDS = {
                                       "resolving_power", "order", "snr_threshold",
                                       "write_model")]),
               ("signal mask", [("mask", k) for k in ("method", "threshold", "grow_threshold",
-                                                     "smooth_channels", "min_pixels")]),
+                                                     "smooth_channels", "min_pixels", "file",
+                                                     "mode")]),
               _READING, _CONTINUUM, _OUTPUT, _EXECUTION]),
     "rings": ("rotation curve: tilted-ring fit of a velocity field",
               ("input", "a velocity map (2D FITS, km/s) or a cube"), ("rings",),
@@ -115,6 +116,7 @@ COMMANDS = {
                                                  "final_geometry", "bootstrap")]),
                ("velocity field", [("rings", "velocity_field"), ("input", "velocity_err"),
                                    ("input", "intensity")]),
+               ("signal mask (cube input)", [("mask", "file"), ("mask", "mode")]),
                _READING, _CONTINUUM, _OUTPUT, _EXECUTION]),
     "widths": ("line-width budget: instrumental, thermal, non-thermal", ("cube", "the cube (FITS)"),
                ("widths",),
@@ -125,7 +127,7 @@ COMMANDS = {
                  + [("maps", "instrument_sigma"), ("maps", "resolving_power"),
                     ("maps", "channel_response"), ("widths", "snr_threshold"),
                     ("widths", "baseline")]),
-                ("signal mask", [("mask", "method")]),
+                ("signal mask", [("mask", "method"), ("mask", "file"), ("mask", "mode")]),
                 _READING, _CONTINUUM, _OUTPUT, _EXECUTION]),
     "turbulence": ("structure function, size-linewidth, sonic scale, velocity gradients",
                    ("cube", "the cube (FITS)"), ("turbulence",),
@@ -137,7 +139,8 @@ COMMANDS = {
                                               "temperature_map", "mu")]),
                     ("Gaussian fits", [("maps", k) for k in ("components", "snr_threshold",
                                                              "channel_response")]),
-                    ("signal mask", [("mask", "method"), ("mask", "threshold")]),
+                    ("signal mask", [("mask", "method"), ("mask", "threshold"), ("mask", "file"),
+                                     ("mask", "mode")]),
                     _READING, _CONTINUUM, _OUTPUT, _EXECUTION]),
     # --- extraction: kinemap spectrum and kinemap pv ---
     "spectrum": ("a spectrum at a position, in a region or over the whole map, with errors",

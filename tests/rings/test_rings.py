@@ -541,7 +541,14 @@ def test_plots_return_figures(flat_field, flat_fit):
     pvf = pr.plot_pv_diagram(major_axis_pv(cube, vax, flat_fit), flat_fit)
     for f in figs + [vf, pvf]:
         assert isinstance(f, Figure)
-    assert len(figs[1].axes) == 5
+    # each of the five geometry parameters is a panel, or (one value in every ring) named
+    # in the note below the panels instead
+    labels = " ".join(ax.get_ylabel() for ax in figs[1].axes).lower()
+    note = figs[1]._supxlabel.get_text() if figs[1]._supxlabel is not None else ""
+    for panel, short in (("position angle", "position angle"), ("inclination", "inclination"),
+                         ("v_{\\rm sys}", "v_sys"), ("centre x", "centre x"),
+                         ("centre y", "centre y")):
+        assert (panel in labels) != (short in note), (panel, labels, note)
     image_axes = [ax for ax in vf.axes if ax.images]
     assert len(image_axes) == 3
     norm = image_axes[0].images[0].norm

@@ -61,7 +61,7 @@ _CHECKSUMS = ThreadPoolExecutor(max_workers=1, thread_name_prefix="kinemap-sha25
 def read_cube(source, *, rest_value=None, convention: str | None = None,
               frame: str | None = None, vrange=None, box=None, region=None,
               beams: str = "common", bunit=None, beam=None, hdu=None,
-              checksum: bool = True, line: str | None = None) -> Cube:
+              checksum: bool = True, line: str | None = None, unit: str | None = None) -> Cube:
     """Read a spectral-line cube and work out its velocity axis.
 
     Parameters
@@ -113,6 +113,10 @@ def read_cube(source, *, rest_value=None, convention: str | None = None,
     line : str, optional
         A catalogue line name whose rest value (in the cube's medium) applies when neither
         ``rest_value`` nor the header gives one (``kinemap widths`` passes its first line).
+    unit : {'K', 'Jy/beam'}, optional
+        Convert the values to brightness temperature or Jy/beam with astropy's
+        ``brightness_temperature`` equivalency, channel by channel (needs the beam, and a
+        rest frequency for a velocity axis); see :mod:`kinemap.io.brightness`.
 
     Returns
     -------
@@ -122,11 +126,16 @@ def read_cube(source, *, rest_value=None, convention: str | None = None,
     """
     opened = open_source(source, hdu=hdu)
     try:
-        return _read(opened, rest_value=rest_value, convention=convention, frame=frame,
+        cube = _read(opened, rest_value=rest_value, convention=convention, frame=frame,
                      vrange=vrange, box=box, region=region, beams=beams, bunit=bunit,
                      beam=beam, checksum=checksum, line=line)
     finally:
         opened.close()
+    if unit is None:
+        return cube
+    from kinemap.io.brightness import convert_brightness
+
+    return convert_brightness(cube, unit)
 
 
 @dataclass

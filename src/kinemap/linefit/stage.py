@@ -313,8 +313,8 @@ def fit_cube(cube, *, noise=None, mask=None, components=1, baseline: str = "none
     names = tuple(probe.param_names)
     npar = len(names)
     pixel_mask_full = None
-    if mask is not None and mask.mask is not None:
-        pixel_mask_full = mask.mask.any(axis=0)
+    if mask is not None and mask.voxels() is not None:
+        pixel_mask_full = mask.pixels()
     if cube.footprint is not None:
         pixel_mask_full = cube.footprint if pixel_mask_full is None else pixel_mask_full & cube.footprint
 

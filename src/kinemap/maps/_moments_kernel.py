@@ -10,8 +10,9 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-# Which channels count: 0 every finite channel, 1 value > threshold * sigma, 2 a given mask
-USE_FINITE, USE_THRESHOLD, USE_MASK = 0, 1, 2
+# Which channels count: 0 every finite channel, 1 value > threshold * sigma, 2 a given mask,
+# 3 both (a threshold inside the user's mask)
+USE_FINITE, USE_THRESHOLD, USE_MASK, USE_MASK_THRESHOLD = 0, 1, 2, 3
 
 
 @numba.njit(cache=True, nogil=True)
@@ -22,6 +23,8 @@ def _use(mode, x, thr_sigma, mask_val):
         return x > thr_sigma
     if mode == 2:
         return mask_val
+    if mode == 3:
+        return mask_val and x > thr_sigma
     return True
 
 
@@ -31,7 +34,7 @@ def spectrum_moments(spec, velocity, dv, mode, threshold, sigma_p, mask, p, insi
 
     ``spec`` may be float32 or float64 and strided: every product with the float64 channel
     widths and velocities is float64, so the sums are the same either way.  ``sigma_p`` is
-    the spectrum's noise, ``mask`` the (nchan, npix) voxel mask (read in mode 2 only),
+    the spectrum's noise, ``mask`` the (nchan, npix) voxel mask (read in modes 2 and 3),
     ``inside`` False for pixels outside the footprint.
     """
     nchan = spec.shape[0]
@@ -50,7 +53,7 @@ def spectrum_moments(spec, velocity, dv, mode, threshold, sigma_p, mask, p, insi
     ipk = -1
     for c in range(nchan):
         x = spec[c]
-        if _use(mode, x, thr, mask[c, p] if mode == 2 else True):
+        if _use(mode, x, thr, mask[c, p] if mode >= 2 else True):
             w = x * dv[c]
             S += w
             Sv += w * velocity[c]
@@ -73,7 +76,7 @@ def spectrum_moments(spec, velocity, dv, mode, threshold, sigma_p, mask, p, insi
     prev2 = 0.0
     for c in range(nchan):
         x = spec[c]
-        w = dv[c] if _use(mode, x, thr, mask[c, p] if mode == 2 else True) else 0.0
+        w = dv[c] if _use(mode, x, thr, mask[c, p] if mode >= 2 else True) else 0.0
         v0 += w * w
         if nlag > 1:
             v0 += 2.0 * rho[1] * w * prev1
@@ -92,7 +95,7 @@ def spectrum_moments(spec, velocity, dv, mode, threshold, sigma_p, mask, p, insi
     M2 = 0.0
     for c in range(nchan):
         x = spec[c]
-        if _use(mode, x, thr, mask[c, p] if mode == 2 else True):
+        if _use(mode, x, thr, mask[c, p] if mode >= 2 else True):
             d = velocity[c] - m1
             M2 += x * dv[c] * d * d
     M2 /= S
@@ -105,7 +108,7 @@ def spectrum_moments(spec, velocity, dv, mode, threshold, sigma_p, mask, p, insi
     b2 = 0.0
     for c in range(nchan):
         x = spec[c]
-        if _use(mode, x, thr, mask[c, p] if mode == 2 else True):
+        if _use(mode, x, thr, mask[c, p] if mode >= 2 else True):
             d = velocity[c] - m1
             w1 = dv[c] * d / S
             w2 = dv[c] * (d * d - M2) / S
@@ -146,7 +149,7 @@ def moments_kernel(data, velocity, dv, mode, threshold, sigma, mask, footprint, 
     """Fill ``out`` (9, npix) from ``data`` (nchan, npix).
 
     Rows of ``out``: moment0, moment1, moment2, moment0_err, moment1_err, moment2_err,
-    peak, velocity_at_peak, nchan.  ``mask`` is (nchan, npix) bool (only read in mode 2),
+    peak, velocity_at_peak, nchan.  ``mask`` is (nchan, npix) bool (only read in modes 2 and 3),
     ``footprint`` (npix,) bool, ``rho`` the noise correlation at lags 0.. (len <= 3).
     """
     npix = data.shape[1]

@@ -15,19 +15,25 @@ Two methods:
 The smooth method works on the whole cube in memory as float32 (islands are global);
 the threshold method is computed block by block by the stages that use it.
 A mask is True where a voxel counts as signal; NaN voxels are never signal.
+
+The user's own mask (``file``: a 2D or 3D FITS image or boolean array, True / non-zero =
+keep) is combined with the signal mask (``mode='and'``: a voxel counts when both keep it)
+or replaces it (``mode='replace'``).  A 2D mask keeps or drops whole spectra.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+import os
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from kinemap.errors import KinemapError
 from kinemap.spectral.response import noise_correlation, variance_of_sum
 
-__all__ = ["SignalMask", "make_mask", "as_mask", "MASK_METHODS"]
+__all__ = ["SignalMask", "make_mask", "as_mask", "MASK_METHODS", "MASK_MODES"]
 
 MASK_METHODS = ("smooth", "threshold", "none")
+MASK_MODES = ("and", "replace")
 
 
 @dataclass(frozen=True)
@@ -45,12 +51,39 @@ class SignalMask:
         S/N threshold used by 'threshold' (and the seed threshold of 'smooth').
     settings : dict
         The parameters, for provenance.
+    keep : ndarray of bool (nchan, ny, nx) or None
+        The user's mask a 'threshold' mask is combined with (the other methods fold it into
+        ``mask``); a (ny, nx) mask is broadcast along the channels (a view, no memory).
     """
 
     method: str
     mask: np.ndarray | None = None
     threshold: float = 3.0
     settings: dict = field(default_factory=dict)
+    keep: np.ndarray | None = None
+
+    def describe(self) -> str:
+        """The method, and the user's mask file and how it was used (for provenance)."""
+        f = self.settings.get("file")
+        if not f:
+            return self.method
+        if self.method == "file":
+            return f"{f} (mode {self.settings.get('mode')})"
+        return f"{self.method} and {f}"
+
+    def voxels(self) -> np.ndarray | None:
+        """The precomputed voxel mask the kernels read (``mask``, else ``keep``), or None."""
+        return self.mask if self.mask is not None else self.keep
+
+    def pixels(self) -> np.ndarray | None:
+        """(ny, nx) True where a spectrum may hold signal (any kept voxel); None = all."""
+        v = self.voxels()
+        return None if v is None else v.any(axis=0)
+
+    def channels(self, cs: slice) -> "SignalMask":
+        """The mask of the channels ``cs`` (a velocity window of the cube)."""
+        return replace(self, mask=None if self.mask is None else self.mask[cs],
+                       keep=None if self.keep is None else self.keep[cs])
 
     def block(self, ys: slice, data: np.ndarray, noise_sigma: np.ndarray,
               footprint: np.ndarray | None = None) -> np.ndarray:
@@ -61,6 +94,8 @@ class SignalMask:
         elif self.mask is None:  # threshold: evaluated on the block
             with np.errstate(invalid="ignore"):
                 out = finite & (data > self.threshold * noise_sigma[None])
+            if self.keep is not None:
+                out = out & self.keep[:, ys, :]
         else:
             out = finite & self.mask[:, ys, :]
         if footprint is not None:
@@ -95,28 +130,58 @@ def _smoothing_noise_factor(filled, finite, sig, nbox, rho, nplanes=24):
 
 def as_mask(mask, cube) -> SignalMask | None:
     """A :class:`SignalMask` from what a caller passes as ``mask``: None, a SignalMask,
-    or a boolean array of shape (nchan, ny, nx) (voxels) or (ny, nx) (whole spectra),
-    True where the data count as signal."""
+    a boolean array of shape (nchan, ny, nx) (voxels) or (ny, nx) (whole spectra), True
+    where the data count as signal, or the path of a FITS mask (non-zero = keep, on the
+    cube's grid; see :func:`kinemap.io.maskfile.read_mask`)."""
     if mask is None or isinstance(mask, SignalMask):
         return mask
-    arr = np.asarray(mask)
-    if arr.dtype != bool:
-        raise KinemapError(f"'mask' must be a SignalMask or a boolean array, got an array of "
-                           f"{arr.dtype}; use mask > 0 to make one")
+    if isinstance(mask, (str, os.PathLike)):
+        keep = _user_mask(mask, cube)
+        return SignalMask(method="file", mask=keep, threshold=float("nan"),
+                          settings={"file": os.path.basename(os.fspath(mask)), "mode": "replace"})
+    return SignalMask(method="given", mask=_user_mask(mask, cube), threshold=float("nan"))
+
+
+def _user_mask(mask, cube) -> np.ndarray:
+    """The user's mask as bool (nchan, ny, nx) (2D masks broadcast as a view)."""
     shape = tuple(cube.shape)
+    if isinstance(mask, (str, os.PathLike)):
+        from kinemap.io.maskfile import read_mask
+
+        arr = read_mask(mask, cube)
+        if not arr.any():
+            raise KinemapError(f"the mask {mask} keeps no pixel of the cube (it is zero "
+                               "everywhere here); give a mask that is non-zero where to measure")
+    else:
+        arr = np.asarray(mask)
+        if arr.dtype != bool:
+            raise KinemapError(f"'mask' must be a SignalMask, a FITS file or a boolean array, "
+                               f"got an array of {arr.dtype}; use mask > 0 to make one")
     if arr.shape == shape[1:]:
         arr = np.broadcast_to(arr[None], shape)
     elif arr.shape != shape:
         raise KinemapError(f"'mask' has shape {arr.shape}; give (nchan, ny, nx) = {shape} or "
                            f"(ny, nx) = {shape[1:]}")
-    return SignalMask(method="given", mask=arr, threshold=float("nan"))
+    return arr
+
+
+def _with_user_mask(signal: SignalMask, keep, name: str, mode: str) -> SignalMask:
+    """``signal`` combined with the user's mask ``keep`` ('and') or replaced by it."""
+    settings = {**signal.settings, "file": name, "mode": mode}
+    if mode == "replace":
+        return SignalMask("file", keep, float("nan"), settings)
+    if signal.method == "none":
+        return SignalMask("file", keep, 0.0, settings)
+    if signal.mask is None:  # threshold: evaluated per block, with the user's mask
+        return replace(signal, keep=keep, settings=settings)
+    return replace(signal, mask=signal.mask & keep, settings=settings)
 
 
 def make_mask(cube, *, noise=None, method: str = "smooth", threshold: float | None = None,
               grow_threshold: float = 2.0, smooth_beams: float = 1.5,
               smooth_pixels: float = 3.0, smooth_channels: int = 3, min_pixels: int | None = None,
               min_channels: int = 2, channel_response: str = "tophat",
-              max_memory: int | None = None) -> SignalMask:
+              max_memory: int | None = None, file=None, mode: str = "and") -> SignalMask:
     """Build a :class:`SignalMask` for ``cube`` with noise map ``noise``.
 
     Parameters
@@ -146,7 +211,35 @@ def make_mask(cube, *, noise=None, method: str = "smooth", threshold: float | No
     max_memory : int, optional
         Bytes the run may use; 'smooth' needs about three float32 copies of the cube and
         refuses with a clear message when they do not fit.
+    file : str, path-like or boolean array, optional
+        The user's mask: a 2D or 3D FITS image (non-zero = keep) on the cube's grid (a
+        larger mask on the same pixels is cut to the cube), or a boolean array (nchan, ny,
+        nx) or (ny, nx).
+    mode : {'and', 'replace'}
+        'and': a voxel counts when the signal mask and ``file`` both keep it; 'replace':
+        ``file`` alone decides (the signal-mask method is not run).
     """
+    md = str(mode).strip().lower()
+    if md not in MASK_MODES:
+        raise KinemapError(f"'mask mode' must be one of {', '.join(MASK_MODES)}, got {mode!r}")
+    if file is None:
+        return _signal_mask(cube, noise, method, threshold, grow_threshold, smooth_beams,
+                            smooth_pixels, smooth_channels, min_pixels, min_channels,
+                            channel_response, max_memory)
+    keep = _user_mask(file, cube)  # read (or refused) before the slow smooth mask is made
+    name = (os.path.basename(os.fspath(file)) if isinstance(file, (str, os.PathLike))
+            else "array")
+    if md == "replace":
+        return _with_user_mask(SignalMask("none"), keep, name, md)
+    signal = _signal_mask(cube, noise, method, threshold, grow_threshold, smooth_beams,
+                          smooth_pixels, smooth_channels, min_pixels, min_channels,
+                          channel_response, max_memory)
+    return _with_user_mask(signal, keep, name, md)
+
+
+def _signal_mask(cube, noise, method, threshold, grow_threshold, smooth_beams, smooth_pixels,
+                 smooth_channels, min_pixels, min_channels, channel_response, max_memory):
+    """The signal mask of :func:`make_mask` (its parameters)."""
     m = str(method).strip().lower()
     if m not in MASK_METHODS:
         raise KinemapError(f"'mask method' must be one of {', '.join(MASK_METHODS)}, got {method!r}")

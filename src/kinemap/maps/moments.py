@@ -43,7 +43,8 @@ from kinemap.io.results import StageResult
 from kinemap.maps.masks import as_mask
 from kinemap.maps.noise import CLIP, clip_correction, noise_map, noise_settings
 from kinemap.maps._fused_kernel import fused_kernel, fused_kernel_swapped
-from kinemap.maps._moments_kernel import USE_FINITE, USE_MASK, USE_THRESHOLD, moments_kernel
+from kinemap.maps._moments_kernel import (USE_FINITE, USE_MASK, USE_MASK_THRESHOLD,
+                                          USE_THRESHOLD, moments_kernel)
 from kinemap.spectral.response import check_response, noise_correlation
 
 __all__ = ["MomentMaps", "compute_moments", "noise_and_moments"]
@@ -172,7 +173,7 @@ def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "top
     def block_args(ys):
         return {"sigma": sigma_map[ys],
                 "footprint": None if cube.footprint is None else cube.footprint[ys],
-                "mask": mask.mask[:, ys, :] if mode == USE_MASK else None}
+                "mask": mask.voxels()[:, ys, :] if mode in _READS_MASK else None}
 
     out = map_blocks(cube, _moments_block, outputs={k: ((), np.float64, np.nan) for k in _KEYS},
                      max_memory=max_memory, factor=2.5, block_args=block_args,
@@ -181,9 +182,14 @@ def compute_moments(cube, *, mask=None, noise=None, channel_response: str = "top
     return _moment_maps(out, noise, mask, cube, response, t0)
 
 
+_READS_MASK = (USE_MASK, USE_MASK_THRESHOLD)
+
+
 def _mask_mode(mask):
     """(kernel mode, S/N threshold) for a SignalMask or None."""
     if mask is not None and mask.method == "threshold":
+        if mask.keep is not None:  # inside the user's mask
+            return USE_MASK_THRESHOLD, float(mask.threshold)
         return USE_THRESHOLD, float(mask.threshold)
     if mask is not None and mask.mask is not None:
         return USE_MASK, 0.0
@@ -194,7 +200,7 @@ def _moment_maps(out, noise, mask, cube, response, t0) -> MomentMaps:
     out["noise"] = noise.sigma if noise is not None else None
     out["mask"] = out["nchan"] > 0
     return MomentMaps(arrays=out, meta=cube.meta, channel_response=response,
-                      settings={"mask": mask.method if mask is not None else "none",
+                      settings={"mask": mask.describe() if mask is not None else "none",
                                 "channel_response": response},
                       seconds=time.perf_counter() - t0)
 
@@ -258,7 +264,7 @@ def noise_and_moments(cube, *, mask=None, line_free="auto", channel_response: st
 
     def block_args(ys):
         return {"footprint": None if cube.footprint is None else cube.footprint[ys],
-                "mask": mask.mask[:, ys, :] if mode == USE_MASK else None}
+                "mask": mask.voxels()[:, ys, :] if mode in _READS_MASK else None}
 
     outputs = {k: ((), np.float64, np.nan) for k in _KEYS}
     outputs.update(sigma=((), np.float64, np.nan), nused=((), np.int32, 0),

@@ -59,7 +59,7 @@ def read_kwargs(cfg: dict) -> dict:
     return dict(convention=inp["convention"], rest_value=rest, frame=inp["frame"],
                 vrange=parse_vrange(inp["vrange"]), box=inp["box"], region=inp["region"],
                 beams=inp["beams"], bunit=inp["bunit"], hdu=inp["hdu"], beam=inp["beam"],
-                line=reference_line(cfg))
+                line=reference_line(cfg), unit=inp["unit"])
 
 
 def continuum_kwargs(cfg: dict) -> dict:
@@ -80,7 +80,8 @@ def mask_kwargs(cfg: dict) -> dict:
     return dict(method=m["method"], threshold=m["threshold"], grow_threshold=m["grow_threshold"],
                 smooth_beams=m["smooth_beams"], smooth_pixels=m["smooth_pixels"],
                 smooth_channels=m["smooth_channels"], min_pixels=m["min_pixels"],
-                min_channels=m["min_channels"], channel_response=cfg["maps"]["channel_response"])
+                min_channels=m["min_channels"], channel_response=cfg["maps"]["channel_response"],
+                file=m["file"], mode=m["mode"])
 
 
 def moments_kwargs(cfg: dict) -> dict:

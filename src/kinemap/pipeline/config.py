@@ -16,7 +16,8 @@ Sections and keys (defaults in brackets)::
 
     [input]   cube (required unless velocity_map), convention, rest_value, frame,
               vrange = [v1, v2], box, region, beams ["common"], beam ("46arcsec" or
-              "30arcsec,20arcsec,45deg"), bunit, hdu;
+              "30arcsec,20arcsec,45deg"), bunit, unit ("K" | "Jy/beam": convert the
+              values), hdu;
               velocity_map, velocity_err, intensity (2D FITS maps for [rings])
     [continuum] method ["auto"] | "none" | "constant" | "linear" | "poly:N", line_window
               [200] (km/s), clip [3.0] (sigma), write_continuum [false]
@@ -24,7 +25,9 @@ Sections and keys (defaults in brackets)::
               be fitted on)
     [mask]    method ["smooth"; "none" when the config has [widths]] | "threshold",
               threshold, grow_threshold [2.0], smooth_beams [1.5], smooth_pixels [3.0],
-              smooth_channels [3], min_pixels, min_channels [2]
+              smooth_channels [3], min_pixels, min_channels [2], file (a 2D or 3D FITS
+              mask, non-zero = keep), mode ["and"] | "replace" (combine file with the
+              signal mask, or let it replace it)
     [maps]    method ["moments"] | "gauss", channel_response ["tophat"] | "hanning" | "none";
               for gauss: components [1] | 2 | 3 | "auto", baseline ["none"] | "constant" |
               "linear", instrument_sigma (km/s) or resolving_power, order ["flux"] |
@@ -306,6 +309,10 @@ SCHEMA: dict[str, dict[str, Option]] = {
                             "'46arcsec' (circular) or '30arcsec,20arcsec,45deg' (FWHM major, "
                             "minor, position angle)"),
         "bunit": Option((str, _NONE), metavar="UNIT", help="unit of the cube values when BUNIT is missing or wrong"),
+        "unit": Option((str, _NONE), choices=("K", "Jy/beam"),
+                       help="convert the cube and its products to brightness temperature or "
+                            "Jy/beam (needs the beam and, for a velocity axis, the rest "
+                            "frequency)"),
         "hdu": Option((int, str, _NONE), cli=False, help="the HDU that holds the cube"),
         "velocity_map": Option((str, _NONE), cli=False, path=True,
                                help="a velocity map (2D FITS, km/s) instead of a cube, for [rings]"),
@@ -353,6 +360,12 @@ SCHEMA: dict[str, dict[str, Option]] = {
                              help="smallest island footprint kept (pixels)"),
         "min_channels": Option((int,), 2, cli=False,
                                help="smallest island spectral extent kept (channels)"),
+        "file": Option((str, _NONE), metavar="FITS", cli="mask_file", path=True,
+                       help="your own mask: a 2D or 3D FITS image on the cube's pixels "
+                            "(non-zero = keep)"),
+        "mode": Option((str,), "and", choices=("and", "replace"), cli="mask_mode",
+                       help="and: use voxels both the signal mask and --mask-file keep; "
+                            "replace: --mask-file alone decides"),
     },
     "maps": {
         "method": Option((str,), "moments", choices=("moments", "gauss"),
@@ -632,6 +645,9 @@ def validate_config(user: dict, *, base_dir: str | None = None) -> dict:
     if not cfg["input"]["cube"] and not cfg["input"]["velocity_map"]:
         raise KinemapError("the config needs [input] cube = \"path/to/cube.fits\" (or "
                            "velocity_map = \"map.fits\" for a rotation curve from a map)")
+    if cfg["input"]["velocity_map"] and cfg["mask"]["file"]:
+        raise KinemapError("--mask-file masks a cube, and the input is a velocity map; leave "
+                           "it out (blank the map's pixels instead) or give the cube")
     if cfg["input"]["velocity_map"] and "rings" not in user:
         raise KinemapError("[input] velocity_map is only used by [rings]; add a [rings] section "
                            "or give a cube")

@@ -8,7 +8,7 @@ result; :func:`kinemap.io.writer.write_results` writes them all.  No stage write
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import astropy.units as u
 
@@ -125,8 +125,8 @@ def _cut(cube, mask, window):
     if window is None:
         return cube, mask
     cut, cs = select_channels(cube, ad.parse_vrange(window))
-    if mask is not None and mask.mask is not None:
-        mask = replace(mask, mask=mask.mask[cs])
+    if mask is not None:
+        mask = mask.channels(cs)
     return cut, mask
 
 

@@ -2,7 +2,8 @@
 
 Colour choices: velocity maps use a diverging map centred on the systemic velocity
 (the median of the map unless given) with symmetric limits; intensities a sequential map
-with percentile limits; status maps a discrete map with a legend of the codes.
+with percentile limits; errors robust limits (a few edge pixels do not set the scale);
+integer maps (status, mask, counts) a discrete map with one labelled tick per value.
 """
 from __future__ import annotations
 
@@ -18,7 +19,7 @@ from matplotlib.patches import Ellipse
 
 from kinemap.status import Status
 
-__all__ = ["plot_map", "CMAPS"]
+__all__ = ["plot_map", "CMAPS", "robust_limits", "world_axes"]
 
 CMAPS = {"intensity": "inferno", "velocity": "RdBu_r", "residual": "RdBu_r", "dispersion": "viridis",
          "error": "cividis", "noise": "cividis", "count": "Greys", "mask": "Greys",
@@ -44,56 +45,155 @@ def _add_beam(ax, meta):
                          edgecolor="k", lw=1.2, hatch="///", zorder=5))
 
 
+# integer maps: a discrete colour bar with one labelled tick per value
+_DISCRETE = ("status", "mask", "count")
+_MASK_LABELS = {0: "0 outside", 1: "1 inside"}
+_STATUS_COLOURS = ["#2c7bb6", "#fdae61", "#ffffbf", "#d7d7d7", "#7f7f7f", "#ffffff",
+                   "#d7191c", "#000000"]
+# more whole values than this in a count map: a continuous bar with whole-number ticks
+_MAX_CODES = 16
+
+
+def robust_limits(vals, kind: str, center: float | None = None) -> tuple[float, float]:
+    """Colour limits of a map's finite values ``vals``.
+
+    Velocities: symmetric about ``center`` (the median unless given; 0 for residuals) at
+    the 98th percentile of the deviations.  Errors and noise: the 1st percentile to the
+    smaller of the 99.5th percentile and median + 10 robust sigma (1.4826 MAD, common
+    practice), so a few huge values at the mask's edge do not wash out the map while a
+    broad spread of errors (faint regions) keeps its range.  Others: 1st to 99.5th
+    percentile.
+    """
+    if vals.size == 0:
+        return 0.0, 1.0
+    if kind in ("velocity", "residual"):
+        c = 0.0 if kind == "residual" else (float(np.median(vals)) if center is None
+                                           else float(center))
+        half = float(np.percentile(np.abs(vals - c), 98)) or 1.0
+        return c - half, c + half
+    if kind in ("error", "noise"):
+        lo, hi, med = (float(x) for x in np.percentile(vals, [1, 99.5, 50]))
+        mad = float(np.median(np.abs(vals - med))) * 1.4826
+        hi = min(hi, med + 10.0 * mad) if mad > 0 else hi
+    else:
+        lo, hi = (float(x) for x in np.percentile(vals, [1, 99.5]))
+    if hi <= lo:
+        lo, hi = lo - 0.5, hi + 0.5
+    return lo, hi
+
+
+def _unit_label(unit, kind) -> str:
+    """What the colour bar says: the unit, or what the numbers are when they have none."""
+    if unit != u.one:
+        return f"[{unit.to_string()}]"
+    return {"status": "status code", "mask": "", "count": "number",
+            "ratio": "ratio (no unit)"}.get(kind, "no unit")
+
+
+def _codes(data, kind):
+    """(values, labels, colours) of an integer map's colour bar, or None when a count map
+    holds too many values for one tick each."""
+    if kind == "status":
+        codes = list(Status)
+        return ([int(c) for c in codes], [f"{int(c)} {c.name.lower()}" for c in codes],
+                _STATUS_COLOURS[: len(codes)])
+    vals = _finite(data)
+    lo, hi = (int(np.floor(vals.min())), int(np.ceil(vals.max()))) if vals.size else (0, 1)
+    if kind == "mask":
+        lo, hi = 0, 1
+    if hi - lo + 1 > _MAX_CODES:
+        return None
+    values = list(range(lo, hi + 1))
+    cmap = matplotlib.colormaps["Greys" if kind == "mask" else "viridis"]
+    colours = ([cmap(0.15), cmap(0.8)] if kind == "mask" else
+               [cmap(x) for x in np.linspace(0.0, 1.0, len(values))])
+    labels = [_MASK_LABELS[v] if kind == "mask" else str(v) for v in values]
+    return values, labels, colours
+
+
+def _draw_discrete(fig, ax, data, kind, label):
+    """An integer map with one colour and one labelled colour-bar tick per value."""
+    table = _codes(data, kind)
+    if table is None:
+        from matplotlib.ticker import MaxNLocator
+
+        cmap = matplotlib.colormaps[CMAPS.get(kind, "viridis")].with_extremes(bad="#e8e8e8")
+        im = ax.imshow(data, origin="lower", cmap=cmap, interpolation="nearest")
+        cb = fig.colorbar(im, ax=ax)
+        cb.locator = MaxNLocator(integer=True)
+        cb.update_ticks()
+        cb.set_label(label)
+        return cb
+    values, labels, colours = table
+    cmap = ListedColormap(colours).with_extremes(bad="#e8e8e8")
+    norm = BoundaryNorm(np.arange(values[0] - 0.5, values[-1] + 1.0), cmap.N)
+    shown = (np.where(np.isfinite(data), data, Status.NO_DATA) if kind == "status"
+             else np.asarray(data, dtype=float))
+    im = ax.imshow(shown, origin="lower", cmap=cmap, norm=norm, interpolation="nearest")
+    cb = fig.colorbar(im, ax=ax, ticks=values)
+    cb.ax.set_yticklabels(labels, fontsize=7 if kind == "status" else None)
+    cb.ax.minorticks_off()
+    cb.set_label(label)
+    return cb
+
+
+def _constant_note(vals, title, unit, figsize):
+    """A small figure that says the map holds one value (nothing to see in a map)."""
+    fig = Figure(figsize=(figsize[0], 1.1))
+    FigureCanvasAgg(fig)
+    unit_text = "" if unit == u.one else f" {unit.to_string()}"
+    fig.text(0.5, 0.62, textwrap.fill(title, 70), ha="center", va="center", fontsize=10)
+    fig.text(0.5, 0.28, f"{vals[0]:.6g}{unit_text} in all {vals.size} pixels with data: "
+             "a constant map is not drawn", ha="center", va="center", fontsize=9,
+             color="0.3")
+    return fig
+
+
 def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float | None = None,
              figsize=(6.0, 5.2)):
-    """Figure of one map with the cube's celestial WCS.  Returns a matplotlib Figure."""
+    """Figure of one map with the cube's celestial WCS.  Returns a matplotlib Figure.
+
+    The title holds the description and the colour bar the unit.  Integer maps (status,
+    mask, counts) get one colour and one labelled tick per value; error and noise maps
+    robust limits (:func:`robust_limits`); a map with a single value in every pixel is
+    not drawn: the figure says the value instead.
+    """
+    vals = _finite(data)
+    unit = u.Unit(unit)
+    if vals.size > 1 and vals.min() == vals.max() and kind != "status":
+        return _constant_note(vals, title, unit, figsize)
     fig = Figure(figsize=figsize)
     FigureCanvasAgg(fig)
     ax = fig.add_subplot(111, projection=meta.wcs)
-    vals = _finite(data)
-    # a long description goes in the (wrapped) title; the colour bar keeps the unit
-    label = title if len(title) <= 40 else ""
-    unit = u.Unit(unit)
-    if unit != u.one:
-        label = f"{label} [{unit.to_string()}]".strip()
-    if kind == "status":
-        codes = list(Status)
-        colours = ["#2c7bb6", "#fdae61", "#ffffbf", "#d7d7d7", "#7f7f7f", "#ffffff",
-                   "#d7191c", "#000000"][: len(codes)]
-        cmap = ListedColormap(colours)
-        norm = BoundaryNorm(np.arange(-0.5, len(codes) + 0.5), cmap.N)
-        im = ax.imshow(np.where(np.isfinite(data), data, Status.NO_DATA), origin="lower",
-                       cmap=cmap, norm=norm, interpolation="nearest")
-        cb = fig.colorbar(im, ax=ax, ticks=range(len(codes)))
-        cb.ax.set_yticklabels([f"{int(c)} {c.name.lower()}" for c in codes], fontsize=7)
-        cb.set_label("status")
+    label = _unit_label(unit, kind)
+    if kind in _DISCRETE:
+        cb = _draw_discrete(fig, ax, data, kind, label)
     else:
-        cmap = matplotlib.colormaps[CMAPS.get(kind, "viridis")].copy()
-        cmap.set_bad("#e8e8e8")
-        if vals.size == 0:
-            vmin, vmax = 0.0, 1.0
-        elif kind in ("velocity", "residual"):
-            c = 0.0 if kind == "residual" else (float(np.median(vals)) if center is None
-                                               else float(center))
-            half = float(np.percentile(np.abs(vals - c), 98)) or 1.0
-            vmin, vmax = c - half, c + half
-        else:
-            vmin, vmax = (float(np.percentile(vals, 1)), float(np.percentile(vals, 99.5)))
-            if vmax <= vmin:
-                vmin, vmax = vmin - 0.5, vmax + 0.5
+        cmap = matplotlib.colormaps[CMAPS.get(kind, "viridis")].with_extremes(bad="#e8e8e8")
+        vmin, vmax = robust_limits(vals, kind, center)
         im = ax.imshow(data, origin="lower", cmap=cmap, vmin=vmin, vmax=vmax,
                        interpolation="nearest")
         cb = fig.colorbar(im, ax=ax)
         cb.set_label(label)
     _add_beam(ax, meta)
-    lon, lat = ax.coords[0], ax.coords[1]
-    lon.set_axislabel(_axis_label(meta.wcs, 0))
-    lat.set_axislabel(_axis_label(meta.wcs, 1))
-    wrapped = textwrap.fill(title, 60)
-    ax.set_title(wrapped, fontsize=10 if len(title) > 60 else None)
-    _layout(fig, cb, (tuple(figsize), kind == "status", wrapped.count("\n"), bool(label),
+    world_axes(ax, meta.wcs)
+    # narrower than the image, so a long title never reaches over the colour bar
+    wrapped = textwrap.fill(title, 48)
+    ax.set_title(wrapped, fontsize=10 if len(title) > 48 else None)
+    _layout(fig, cb, (tuple(figsize), kind if kind in _DISCRETE else "", wrapped.count("\n"), bool(label),
                       tuple(meta.wcs.wcs.ctype), np.shape(data), _wcs_key(meta.wcs)))
     return fig
+
+
+def world_axes(ax, wcs, *, ticks: int = 4, ylabel: bool = True):
+    """Label the world axes of a WCSAxes panel; at most ``ticks`` longitude ticks, with
+    overlapping labels left out (sexagesimal RA labels are wide)."""
+    lon, lat = ax.coords[0], ax.coords[1]
+    lon.set_axislabel(_axis_label(wcs, 0))
+    lat.set_axislabel(_axis_label(wcs, 1) if ylabel else " ")
+    lon.set_ticks(number=ticks)
+    lon.set_ticklabel(exclude_overlapping=True)
+    lat.set_ticklabel(exclude_overlapping=True)
 
 
 # Layout of the figures drawn so far: key -> (subplot parameters, right edge of the colour

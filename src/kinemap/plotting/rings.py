@@ -97,20 +97,29 @@ def plot_ring_geometry(result, *, title: str | None = None) -> Figure:
     gg = result.global_geometry
     r = _vals(final["radius"], u.arcsec)
     panels = (
-        ("position_angle", u.deg, "Position angle (deg)"),
-        ("inclination", u.deg, "Inclination (deg)"),
-        ("v_sys", KMS, r"$v_{\rm sys}$ (km s$^{-1}$)"),
-        ("x_center", u.pix, "Centre x (pix)"),
-        ("y_center", u.pix, "Centre y (pix)"),
+        ("position_angle", u.deg, "Position angle (deg)", "position angle", "deg"),
+        ("inclination", u.deg, "Inclination (deg)", "inclination", "deg"),
+        ("v_sys", KMS, r"$v_{\rm sys}$ (km s$^{-1}$)", "v_sys", "km/s"),
+        ("x_center", u.pix, "Centre x (pix)", "centre x", "pix"),
+        ("y_center", u.pix, "Centre y (pix)", "centre y", "pix"),
     )
-    fig = _figure(6.4, 8.0)
-    axes = fig.subplots(len(panels), 1, sharex=True)
-    for ax, (name, unit, label) in zip(axes, panels):
+    drawn, notes = [], []
+    for name, unit, label, short, unit_text in panels:
         ref = gg[name].to_value(unit)
         fv = _vals(final[name], unit)
         if name == "position_angle":
             fv = ref + (fv - ref + 180) % 360 - 180
-        if rings is not None and name in result.settings.get("ring_free", ()):
+        per_ring = rings is not None and name in result.settings.get("ring_free", ())
+        finite = fv[np.isfinite(fv)]
+        if not per_ring and finite.size and np.ptp(finite) <= 1e-9 * max(1.0, abs(ref)):
+            # one value in every ring: a flat line says less than the number
+            notes.append(f"{short} {finite[0]:.6g} {unit_text}")
+            continue
+        drawn.append((name, unit, label, ref, fv, per_ring))
+    fig = _figure(6.4, 1.1 + 1.7 * max(1, len(drawn)))
+    axes = np.atleast_1d(fig.subplots(max(1, len(drawn)), 1, sharex=True))
+    for ax, (name, unit, label, ref, fv, per_ring) in zip(axes, drawn):
+        if per_ring:
             rv = _vals(rings[name], unit)
             if name == "position_angle":
                 rv = ref + (rv - ref + 180) % 360 - 180
@@ -122,6 +131,9 @@ def plot_ring_geometry(result, *, title: str | None = None) -> Figure:
         ax.grid(alpha=0.3)
     axes[0].legend(frameon=False, fontsize=7, ncol=3, loc="best")
     axes[-1].set_xlabel("Radius (arcsec)")
+    if notes:
+        fig.supxlabel("the same in every ring (panels not drawn): " + ", ".join(notes),
+                      fontsize=8, color="0.3")
     if title:
         fig.suptitle(title)
     return fig
@@ -146,12 +158,14 @@ def _draw_rings(ax, result, every: int):
         ax.plot([x0 + dx], [y0 + dy], marker="o", ms=3, color="tab:red")
 
 
-def plot_velocity_fields(result, *, rings_every: int = 1, title: str | None = None) -> Figure:
+def plot_velocity_fields(result, *, rings_every: int = 1, title: str | None = None,
+                         wcs=None) -> Figure:
     """Observed, model and residual velocity fields side by side, with ring ellipses.
 
     The velocity panels share a diverging colour map centred on the global v_sys with
     limits symmetric about it; the residual panel is centred on zero.  A red dot marks
-    the receding end of the major axis.
+    the receding end of the major axis.  With the maps' celestial ``wcs`` the axes are
+    in world coordinates (pixel axes otherwise).
     """
     vel = result.velocity.to_value(KMS)
     model = result.model.to_value(KMS)
@@ -164,7 +178,10 @@ def plot_velocity_fields(result, *, rings_every: int = 1, title: str | None = No
     rlim = float(np.percentile(np.abs(rfin), 99)) if rfin.size else 1.0
     rlim = rlim if rlim > 0 else 1.0
     fig = _figure(13.0, 4.4)
-    axes = fig.subplots(1, 3, sharex=True, sharey=True)
+    if wcs is None:
+        axes = fig.subplots(1, 3, sharex=True, sharey=True)
+    else:
+        axes = [fig.add_subplot(1, 3, i + 1, projection=wcs) for i in range(3)]
     norm = TwoSlopeNorm(vcenter=vsys, vmin=vsys - half, vmax=vsys + half)
     for ax, img, lab in ((axes[0], vel, "Observed"), (axes[1], model, "Model")):
         im = ax.imshow(img, origin="lower", cmap=_VELOCITY_CMAP, norm=norm, interpolation="nearest")
@@ -177,11 +194,19 @@ def plot_velocity_fields(result, *, rings_every: int = 1, title: str | None = No
     _draw_rings(axes[2], result, rings_every)
     fig.colorbar(im, ax=axes[2], shrink=0.85, label=r"residual (km s$^{-1}$)")
     ny, nx = vel.shape
-    for ax in axes:
+    for i, ax in enumerate(axes):
         ax.set_xlim(-0.5, nx - 0.5)
         ax.set_ylim(-0.5, ny - 0.5)
-        ax.set_xlabel("x (pix)")
-    axes[0].set_ylabel("y (pix)")
+        if wcs is None:
+            ax.set_xlabel("x (pix)")
+        else:
+            from kinemap.plotting.maps import world_axes
+
+            world_axes(ax, wcs, ticks=3, ylabel=i == 0)
+            if i:
+                ax.coords[1].set_ticklabel_visible(False)
+    if wcs is None:
+        axes[0].set_ylabel("y (pix)")
     if title:
         fig.suptitle(title)
     return fig
@@ -254,7 +279,8 @@ def figures(rings) -> dict:
         "rotation_curve": (plot_rotation_curve(r),
                            "rotation curve with approaching and receding halves"),
         "ring_geometry": (plot_ring_geometry(r), "ring geometry against radius"),
-        "velocity_fields": (plot_velocity_fields(r), "velocity field, ring model and residual"),
+        "velocity_fields": (plot_velocity_fields(r, wcs=getattr(rings.meta, "wcs", None)),
+                            "velocity field, ring model and residual"),
         "harmonics": (plot_harmonics(r), "harmonic terms per ring"),
     }
     if rings.pv is not None:

@@ -133,6 +133,13 @@ def rotation_curve(res) -> Figure:
     ax.set_xlabel("radius (arcsec)")
     ax.set_ylabel(f"face-on surface brightness ({_unit(res)} km/s)")
     ax.set_yscale("log")
+    # labels at 1, 2 and 5 per decade only: matplotlib labels every minor tick of a span of
+    # one or two decades, and they run into each other
+    from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+
+    ax.yaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
+    ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+    ax.yaxis.set_minor_formatter(NullFormatter())
     ax.set_title("surface brightness (3D)", fontsize=10)
     return fig
 

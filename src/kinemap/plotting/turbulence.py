@@ -88,9 +88,10 @@ def plot_gradients(result, *, arrows: int = 14) -> Figure:
     global plane's gradient."""
     v, loc = result.velocity, result.local
     fig = _figure(6.2, 5.4)
-    ax = fig.add_subplot()
-    im = ax.imshow(v, origin="lower", cmap="RdBu_r")
-    fig.colorbar(im, ax=ax, label="velocity (km s$^{-1}$)")
+    wcs = getattr(getattr(result, "meta", None), "wcs", None)
+    ax = fig.add_subplot(projection=wcs)
+    im = ax.imshow(v, origin="lower", cmap="RdBu_r", interpolation="nearest")
+    fig.colorbar(im, ax=ax, label="velocity [km/s]")
     ny, nx = v.shape
     step = max(1, max(ny, nx) // arrows)
     yy, xx = np.mgrid[step // 2:ny:step, step // 2:nx:step]
@@ -106,8 +107,13 @@ def plot_gradients(result, *, arrows: int = 14) -> Figure:
     ax.set_title(f"global gradient {result.to_gradient_unit(p['gradient']):.3g} "
                  f"{'km/s/pc' if result.distance_pc else 'km/s/arcsec'} towards PA {p['position_angle']:.0f} deg",
                  fontsize=9)
-    ax.set_xlabel("x (pixel)")
-    ax.set_ylabel("y (pixel)")
+    if wcs is None:
+        ax.set_xlabel("x (pixel)")
+        ax.set_ylabel("y (pixel)")
+    else:
+        from kinemap.plotting.maps import world_axes
+
+        world_axes(ax, wcs)
     return fig
 
 

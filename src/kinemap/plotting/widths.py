@@ -80,28 +80,51 @@ def plot_width_maps(
         if arr.ndim != 2:
             raise KinemapError(f"map '{k}' must be 2D (y, x) to draw, got shape {arr.shape}")
         maps.append(arr)
-    fig = _new_figure((4.2 * len(keys), 4.0))
-    projection = wcs.celestial if wcs is not None else None
-    for i, (k, arr) in enumerate(zip(keys, maps)):
-        ax = fig.add_subplot(1, len(keys), i + 1, projection=projection)
+    from kinemap.plotting.maps import robust_limits, world_axes
+
+    # a map with one value everywhere (an assumed temperature) says so in a note instead
+    drawn, notes = [], []
+    for k, arr in zip(keys, maps):
         finite = arr[np.isfinite(arr)]
-        # 2-98 percentile stretch so a few outliers do not wash out the map
-        vmin, vmax = (np.percentile(finite, [2, 98]) if finite.size else (None, None))
+        if finite.size > 1 and finite.min() == finite.max():
+            name, unit = _LABELS[k]
+            notes.append(f"{_title(k, budget)}: {finite[0]:.4g} {unit} in every pixel "
+                         "(constant, not drawn)".replace("  ", " "))
+        else:
+            drawn.append((k, arr))
+    if not drawn:
+        drawn, notes = list(zip(keys, maps))[:1], []
+    fig = _new_figure((4.2 * len(drawn), 4.0 + 0.25 * len(notes)))
+    projection = wcs.celestial if wcs is not None else None
+    for i, (k, arr) in enumerate(drawn):
+        ax = fig.add_subplot(1, len(drawn), i + 1, projection=projection)
+        finite = arr[np.isfinite(arr)]
+        # 2-98 percentile stretch so a few outliers do not wash out the map; errors robust
+        if k.endswith("_err"):
+            vmin, vmax = robust_limits(finite, "error")
+        else:
+            vmin, vmax = (np.percentile(finite, [2, 98]) if finite.size else (None, None))
         im = ax.imshow(arr, origin="lower", cmap=cmap, vmin=vmin, vmax=vmax, interpolation="nearest")
-        fig.colorbar(im, ax=ax, shrink=0.8, label=_label(k))
-        title = _LABELS[k][0]
-        if k == "temperature":
-            title += " (fitted)" if budget.temperature_solved else " (assumed)"
-        ax.set_title(title)
+        unit = _LABELS[k][1]
+        fig.colorbar(im, ax=ax, shrink=0.8, label=f"[{unit}]" if unit else "no unit")
+        ax.set_title(_title(k, budget))
         if projection is None:
             ax.set_xlabel("x [pixel]")
             ax.set_ylabel("y [pixel]")
         else:
-            from kinemap.plotting.maps import _axis_label
-
-            ax.coords[0].set_axislabel(_axis_label(projection, 0))
-            ax.coords[1].set_axislabel(_axis_label(projection, 1) if i == 0 else " ")
+            world_axes(ax, projection, ticks=3, ylabel=i == 0)
+    if notes:
+        fig.text(0.5, 0.01, "\n".join(notes), fontsize=9, color="0.3", ha="center",
+                 va="bottom")
+        fig.get_layout_engine().set(rect=(0, 0.06 * len(notes), 1, 1 - 0.06 * len(notes)))
     return fig
+
+
+def _title(key: str, budget) -> str:
+    title = _LABELS[key][0]
+    if key == "temperature":
+        title += " (fitted)" if budget.temperature_solved else " (assumed)"
+    return title
 
 
 def plot_width_histograms(budget, *, bins="auto") -> Figure:
@@ -120,8 +143,15 @@ def plot_width_histograms(budget, *, bins="auto") -> Figure:
         if vals.size == 0:
             ax.text(0.5, 0.5, "no valid pixels", transform=ax.transAxes, ha="center", va="center")
             continue
-        ax.hist(vals, bins=bins, color="0.6", edgecolor="0.3")
         med = float(np.median(vals))
+        # a few runaway pixels (further from the central 99 % than its own width) would
+        # squeeze the rest into a few bins: they are left off the axis and counted
+        lo, hi = np.percentile(vals, [0.5, 99.5])
+        inside = vals[(vals >= lo - (hi - lo)) & (vals <= hi + (hi - lo))]
+        ax.hist(inside if inside.size > 1 else vals, bins=bins, color="0.6", edgecolor="0.3")
+        if vals.size - inside.size and inside.size > 1:
+            ax.set_title(f"{vals.size - inside.size} of {vals.size} pixels beyond the axis",
+                         fontsize=8, color="0.3")
         ax.axvline(med, color="C3", ls="--", label=f"median {med:.3g}")
         if key == "mach_number":
             ax.axvline(1.0, color="k", ls=":", label="Mach 1")
