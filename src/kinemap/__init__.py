@@ -51,6 +51,10 @@ _API = {
     "WidthBudget": "kinemap.widths.stage",
     "turbulence_statistics": "kinemap.turbulence.stage",
     "TurbulenceStatistics": "kinemap.turbulence.stage",
+    "channel_maps": "kinemap.maps.channels",
+    "ChannelMaps": "kinemap.maps.channels",
+    "stack_spectra": "kinemap.stacking.stage",
+    "StackedSpectra": "kinemap.stacking.stage",
     "run": "kinemap.pipeline.runner",
     "Status": "kinemap.status",
 }
@@ -59,7 +63,7 @@ __all__ = ["__version__", "KinemapError", "KinemapWarning", *_API]
 
 
 _SUBPACKAGES = ("io", "spectral", "parallel", "maps", "linefit", "rings", "widths",
-                "turbulence", "plotting", "pipeline", "datasets", "status", "units", "errors")
+                "turbulence", "stacking", "plotting", "pipeline", "datasets", "status", "units", "errors")
 
 
 def __getattr__(name):

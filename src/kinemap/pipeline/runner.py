@@ -131,6 +131,9 @@ def _wants_fit(state) -> bool:
         return True
     if "turbulence" in sections and cfg["turbulence"]["velocity_field"] == "gauss":
         return True
+    if "stack" in sections and cfg["stack"]["velocity_field"] == "gauss" \
+            and not cfg["stack"]["velocity_map"]:
+        return True
     # the 3D ring fit takes its first guesses from the moments: a Gaussian fit of every
     # pixel would only cost time
     return ("rings" in sections and cfg["rings"]["velocity_field"] == "gauss"
@@ -257,13 +260,63 @@ def stage_turbulence(state: RunState):
                   widths=state.results.get("widths"), **kwargs)
 
 
+# ---- channel maps and stacking (issue 12) -------------------------------------------------
+def stage_channels(state: RunState):
+    from kinemap.maps.channels import channel_maps
+
+    return _timed(state, "channels", channel_maps, state.cube, noise=state.noise,
+                  **ad.channels_kwargs(state.config))
+
+
+def _stack_bins(state: RunState):
+    """The stacks' bins: deprojected radius or the values of a map."""
+    from kinemap.stacking.bins import map_bins, radial_bins
+
+    s, meta = state.config["stack"], state.cube.meta
+    if s["bins"].strip().lower() != "radius":
+        bmap = read_map(s["bins"], name="bin map")
+        if bmap.data.shape != state.cube.shape[1:]:
+            raise KinemapError(f"the bin map {s['bins']} has shape {bmap.data.shape}, the cube "
+                               f"{state.cube.shape[1:]}; give a map on the cube's pixel grid")
+        return map_bins(bmap.data, bmap.unit, s["edges"], name=f"map {s['bins']}")
+    beam = meta.beam.major.to_value(u.arcsec) if meta.beam is not None else None
+    g = ad.stack_geometry(state.config, beam, meta.pixel_scale_arcsec)
+    return radial_bins(meta.wcs, state.cube.shape[1:], center=g["center"],
+                       position_angle=g["position_angle"], inclination=g["inclination"],
+                       edges=g["edges"], bin_width=g["bin_width"], footprint=state.cube.footprint)
+
+
+def stage_stack(state: RunState):
+    from kinemap.stacking.stage import stack_spectra
+
+    s = state.config["stack"]
+    if s["velocity_map"]:
+        vmap = read_map(s["velocity_map"], unit="km/s", name="velocity map")
+        if vmap.data.shape != state.cube.shape[1:]:
+            raise KinemapError(f"the velocity map {s['velocity_map']} has shape "
+                               f"{vmap.data.shape}, the cube {state.cube.shape[1:]}; give a "
+                               "map on the cube's pixel grid")
+        velocity = vmap.data if vmap.unit == u.one else (vmap.data * vmap.unit).to_value(u.km / u.s)
+    else:
+        source = state.results.get("fit") if s["velocity_field"] == "gauss" else None
+        source = source or state.results["moments"]
+        velocity = source.velocity_field(min_snr=3.0)[0]
+    bins = _stack_bins(state)
+    return _timed(state, "stack", stack_spectra, state.cube, velocity, bins, noise=state.noise,
+                  components=s["components"],
+                  channel_response=state.config["maps"]["channel_response"],
+                  max_memory=state.blocks["max_memory"], progress=state.blocks["progress"])
+
+
 # (config section, result name, stage function).  A stage runs when its section is in the
 # config; later capabilities add their entry here.
 STAGES = [("maps", "moments", stage_moments), ("maps", "fit", stage_fit),
           ("maps", "model", stage_model), ("maps", "lines", stage_lines),
           ("rings", "rings", stage_rings),
           ("widths", "widths", stage_widths),
-          ("turbulence", "turbulence", stage_turbulence)]
+          ("turbulence", "turbulence", stage_turbulence),
+          ("channels", "channels", stage_channels),
+          ("stack", "stack", stage_stack)]
 
 
 def _options(cfg):
