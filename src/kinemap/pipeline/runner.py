@@ -11,6 +11,7 @@ import time
 from dataclasses import dataclass, field, replace
 
 import astropy.units as u
+import numpy as np
 
 from kinemap.errors import KinemapError
 from kinemap.io.maps import read_map
@@ -268,8 +269,9 @@ def stage_channels(state: RunState):
                   **ad.channels_kwargs(state.config))
 
 
-def _stack_bins(state: RunState):
-    """The stacks' bins: deprojected radius or the values of a map."""
+def _stack_bins(state: RunState, velocity):
+    """The stacks' bins: deprojected radius (by default out to the farthest pixel with a
+    velocity) or the values of a map."""
     from kinemap.stacking.bins import map_bins, radial_bins
 
     s, meta = state.config["stack"], state.cube.meta
@@ -280,10 +282,16 @@ def _stack_bins(state: RunState):
                                f"{state.cube.shape[1:]}; give a map on the cube's pixel grid")
         return map_bins(bmap.data, bmap.unit, s["edges"], name=f"map {s['bins']}")
     beam = meta.beam.major.to_value(u.arcsec) if meta.beam is not None else None
+    reach = np.isfinite(velocity)
+    if state.cube.footprint is not None:
+        reach &= state.cube.footprint
+    if not reach.any():
+        raise KinemapError("the velocity map has no finite pixel on the cube: nothing to "
+                           "stack (check --velocity-map, or the cube's signal for moment 1)")
     g = ad.stack_geometry(state.config, beam, meta.pixel_scale_arcsec)
     return radial_bins(meta.wcs, state.cube.shape[1:], center=g["center"],
                        position_angle=g["position_angle"], inclination=g["inclination"],
-                       edges=g["edges"], bin_width=g["bin_width"], footprint=state.cube.footprint)
+                       edges=g["edges"], bin_width=g["bin_width"], footprint=reach)
 
 
 def stage_stack(state: RunState):
@@ -301,7 +309,7 @@ def stage_stack(state: RunState):
         source = state.results.get("fit") if s["velocity_field"] == "gauss" else None
         source = source or state.results["moments"]
         velocity = source.velocity_field(min_snr=3.0)[0]
-    bins = _stack_bins(state)
+    bins = _stack_bins(state, velocity)
     return _timed(state, "stack", stack_spectra, state.cube, velocity, bins, noise=state.noise,
                   components=s["components"],
                   channel_response=state.config["maps"]["channel_response"],

@@ -30,10 +30,19 @@ def _bin_label(fits, b) -> str:
     return f"{q} {lo:.3g}-{hi:.3g}{ut}"
 
 
+def _window(v, disp, dv):
+    """Velocity range shown: about 8 fitted dispersions (at least 20 channels) each side,
+    inside the stacked axis."""
+    d = disp[np.isfinite(disp)]
+    half = max(8 * float(np.median(d)) if d.size else 0.0, 20 * dv)
+    lo, hi = (float(np.min(v)), float(np.max(v))) if v.size else (-half, half)
+    return max(lo, -half), min(hi, half)
+
+
 def _spectra_figure(result):
     spectra, fits = result.spectra, result.fits
     nbin = len(fits)
-    ncols = min(4, nbin)
+    ncols = min(4 if nbin <= 16 else 6, nbin)
     nrows = -(-nbin // ncols)
     fig = Figure(figsize=(2.9 * ncols + 0.6, 2.2 * nrows + 0.7))
     FigureCanvasAgg(fig)
@@ -56,20 +65,21 @@ def _spectra_figure(result):
             if np.isfinite(m).any():
                 ax.plot(v, m, color="#d62728", lw=1.2)
         ax.axhline(0, color="0.5", lw=0.5)
-        text = f"{_bin_label(fits, b)}\nN = {int(fits['n_spectra'][b])}"
+        text = f"{_bin_label(fits, b)}, N = {int(fits['n_spectra'][b])}"
         if np.isfinite(disp[b]):
             text += f"\n$\\sigma$ = {disp[b]:.2f} $\\pm$ {derr[b]:.2f} km/s"
             if ncomp[b] == 2:
-                text += " (+1 comp.)"
+                text += " (2 comp.)"
         else:
             text += "\nno fit"
-        ax.text(0.03, 0.96, text, transform=ax.transAxes, ha="left", va="top", fontsize=7)
+        ax.set_title(text, fontsize=7.5, loc="left")
         ax.tick_params(labelsize=7)
         if b % ncols == 0:
             ax.set_ylabel("mean flux" + _unit_text(spectra["flux"]), fontsize=8)
         if b >= nbin - ncols:
             ax.set_xlabel("velocity offset [km/s]", fontsize=8)
             ax.tick_params(labelbottom=True)
+    axes.flat[0].set_xlim(*_window(v_all, disp, spectra.meta.get("channel_width_kms", 1.0)))
     fig.suptitle("Stacked spectra (grey: 1-sigma error; red: Gaussian fit)", fontsize=10)
     fig.tight_layout()
     return fig

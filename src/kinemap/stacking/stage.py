@@ -139,8 +139,11 @@ def _fit(mean, err, count, axis, components, channel_response):
         noise = np.array([np.nanmedian(np.where(full[b], err[b], np.nan))
                           if full[b].any() and count[b].max() > 0 else np.nan
                           for b in range(nbin)])
+    # the noise correlation between neighbouring spectra, shifted by different amounts, is
+    # only roughly known: the errors follow the stack's own scatter about the fit
     res = fit_spectra(data, np.nan_to_num(noise, nan=-1.0), axis.offsets, ncomp=components,
-                      max_components=2, response=channel_response, order="flux")
+                      max_components=2, response=channel_response, order="flux",
+                      scale_errors=True)
     model = model_spectra(res.params, axis.offsets, model=res.model, response=channel_response)
     return res, model
 
@@ -215,9 +218,15 @@ def stack_spectra(cube, velocity_map, bins: Bins, *, noise=None, mask=None,
 
     Notes
     -----
+    Each spectrum contributes only on the channels its data reach after the shift: the
+    shift's ripple from the noise at the band's ends, which spreads beyond them, is left
+    out (flux is conserved exactly for lines that end inside the band).
     ``flux`` is the mean of the shifted spectra (the cube's unit); ``flux_err`` is
     sqrt(sum sigma_i^2 * min(n, A)) / n with A the beam area in pixels (noise correlated
-    over one beam; 1 without a beam).  The dispersion is the intrinsic Gaussian sigma of the
+    over one beam; 1 without a beam).  The fits' errors are scaled by sqrt(chi2_reduced), so
+    they follow the stack's scatter about the fit (shifting neighbouring spectra by different
+    amounts decorrelates part of their noise, so the formula above is only an upper bound
+    when A > 1).  The dispersion is the intrinsic Gaussian sigma of the
     stacked line: it includes any scatter of the velocity map about the true velocities
     (added in quadrature) and beam smearing within the pixels.
     """
