@@ -11,7 +11,7 @@ from kinemap.errors import KinemapError
 __all__ = ["read_kwargs", "continuum_kwargs", "reference_line", "noise_kwargs", "mask_kwargs",
            "moments_kwargs", "fit_kwargs", "rings_kwargs", "rings3d_kwargs", "widths_kwargs",
            "turbulence_kwargs", "parse_vrange", "parse_line_free", "channels_kwargs",
-           "stack_geometry"]
+           "stack_geometry", "check_stack"]
 
 
 def parse_vrange(value):
@@ -177,3 +177,22 @@ def stack_geometry(cfg: dict, beam_arcsec: float | None, pixel_arcsec: float) ->
                 position_angle=to_value(s["position_angle"], "deg", name="position_angle"),
                 inclination=to_value(s["inclination"], "deg", name="inclination"),
                 edges=s["edges"], bin_width=width)
+
+
+def check_stack(cfg: dict) -> None:
+    """[stack] mistakes found before the cube is read: bins that cannot be made."""
+    s = cfg["stack"]
+    if s["bins"].strip().lower() != "radius":
+        if s["edges"] is None:
+            raise KinemapError("binning by a map needs --edges (bin edges in the units of the "
+                               "map, e.g. '0,1,2,5')")
+        from kinemap.stacking.bins import check_edges
+
+        check_edges(s["edges"], "values of the bin map")
+        return
+    geometry = stack_geometry(cfg, None, 1.0)
+    from kinemap.stacking.bins import check_edges, check_inclination
+
+    check_inclination(geometry["inclination"])
+    if geometry["edges"] is not None:
+        check_edges(geometry["edges"], "radii in arcsec")

@@ -379,8 +379,15 @@ def run(config, *, out=None, overwrite: bool | None = None, plots: bool | None =
     return run_config(cfg)
 
 
+# section -> check of its options that needs no data, run before the cube is read
+PRECHECKS = {"stack": ad.check_stack}
+
+
 def _run_stages(cfg, client) -> RunState:
     sections = set(cfg.get("_sections", ()))
+    for section, check in PRECHECKS.items():
+        if section in sections:
+            check(cfg)
     if cfg["input"]["velocity_map"]:
         state = RunState(config=cfg, client=client)
         state.velocity_map = _timed(state, "read", read_map, cfg["input"]["velocity_map"],

@@ -15,7 +15,8 @@ import numpy as np
 
 from kinemap.errors import KinemapError
 
-__all__ = ["Bins", "radial_bins", "map_bins", "deprojected_radius", "center_pixel"]
+__all__ = ["Bins", "radial_bins", "map_bins", "deprojected_radius", "center_pixel",
+           "check_edges", "check_inclination"]
 
 
 @dataclass(frozen=True)
@@ -68,9 +69,7 @@ def center_pixel(center, wcs) -> tuple[float, float]:
 
 def deprojected_radius(wcs, shape, x0, y0, position_angle, inclination) -> np.ndarray:
     """Radius in the disk plane (arcsec) of every pixel of a (ny, nx) grid."""
-    if not 0.0 <= inclination < 90.0:
-        raise KinemapError(f"'inclination' must be in [0, 90) deg for radius bins, got "
-                           f"{inclination}; an edge-on disk cannot be deprojected")
+    check_inclination(inclination)
     ny, nx = shape
     yy, xx = np.mgrid[0:ny, 0:nx]
     centre = wcs.pixel_to_world(x0, y0)
@@ -84,13 +83,19 @@ def deprojected_radius(wcs, shape, x0, y0, position_angle, inclination) -> np.nd
     return np.hypot(major, minor / np.cos(np.deg2rad(inclination)))
 
 
+def check_inclination(inclination) -> None:
+    if not 0.0 <= inclination < 90.0:
+        raise KinemapError(f"'inclination' must be in [0, 90) deg for radius bins, got "
+                           f"{inclination:g}; an edge-on disk cannot be deprojected")
+
+
 def _labels(values, edges):
     lab = np.searchsorted(edges, values, side="right") - 1
     ok = np.isfinite(values) & (values >= edges[0]) & (values < edges[-1])
     return np.where(ok, lab, -1).astype(np.int64)
 
 
-def _check_edges(edges, what):
+def check_edges(edges, what):
     e = np.asarray(edges, dtype=np.float64)
     if e.ndim != 1 or e.size < 2 or not np.all(np.isfinite(e)) or np.any(np.diff(e) <= 0):
         raise KinemapError(f"'edges' must be at least two increasing numbers ({what}), got "
@@ -110,7 +115,7 @@ def radial_bins(wcs, shape, *, center, position_angle, inclination, edges=None,
                                f"{bin_width!r}")
         rmax = float(np.nanmax(r if footprint is None else np.where(footprint, r, np.nan)))
         edges = np.arange(0.0, rmax + bin_width, bin_width)
-    e = _check_edges(edges, "radii in arcsec")
+    e = check_edges(edges, "radii in arcsec")
     desc = (f"deprojected radius (centre pixel {x0:.1f},{y0:.1f}; PA {position_angle:g} deg, "
             f"inclination {inclination:g} deg)")
     return Bins(_labels(r, e), e, "radius", u.arcsec, r, desc)
@@ -121,6 +126,6 @@ def map_bins(values, unit, edges, *, name: str = "bin map") -> Bins:
     if edges is None:
         raise KinemapError(f"binning by a map needs --edges (bin edges in the units of the "
                            f"{name}, e.g. '0,1,2,5')")
-    e = _check_edges(edges, f"values of the {name}")
+    e = check_edges(edges, f"values of the {name}")
     v = np.asarray(values, dtype=np.float64)
     return Bins(_labels(v, e), e, "value", u.Unit(unit), v, f"values of the {name}")
