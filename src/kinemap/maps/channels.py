@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import math
 import time
+import warnings
 from dataclasses import dataclass, field
 from typing import ClassVar
 
@@ -139,8 +140,8 @@ def channel_maps(cube, *, noise=None, every: int = 1, levels=DEFAULT_LEVELS,
     for k in range(0, nchan, every):
         sl = slice(k, min(nchan, k + every))
         block = np.asarray(cube.data[sl], dtype=np.float32)
-        with np.errstate(invalid="ignore"), np.testing.suppress_warnings() as sup:
-            sup.filter(RuntimeWarning)
+        with warnings.catch_warnings():  # an all-NaN pixel is NaN, without a warning
+            warnings.simplefilter("ignore", RuntimeWarning)
             img = np.nanmean(block, axis=0)
         if outside is not None:
             img[outside] = np.nan
