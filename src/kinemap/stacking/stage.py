@@ -148,6 +148,22 @@ def _fit(mean, err, count, axis, components, channel_response):
     return res, model
 
 
+def _noise_scale(mean, err, model, count):
+    """Per bin, the robust scatter (1.4826 MAD) of the stack about its fit in units of the
+    estimated error, on the channels the fit used; 1 where there is no fit.  The estimate
+    counts every pair of spectra within a beam as fully correlated, which shifting by
+    different velocities undoes in part: the scatter says by how much."""
+    full = count >= COVERAGE * np.maximum(count.max(axis=1, keepdims=True), 1)
+    out = np.ones(mean.shape[0])
+    for b in range(mean.shape[0]):
+        with np.errstate(invalid="ignore", divide="ignore"):
+            z = ((mean[b] - model[b]) / err[b])[full[b] & (count[b] > 0)]
+        z = z[np.isfinite(z)]
+        if z.size >= 10:
+            out[b] = 1.4826 * float(np.median(np.abs(z - np.median(z))))
+    return np.where(np.isfinite(out) & (out > 0), out, 1.0)
+
+
 def _spectra_table(mean, err, count, model, axis, unit):
     b, j = np.nonzero(count > 0)
     t = Table()
@@ -223,7 +239,9 @@ def stack_spectra(cube, velocity_map, bins: Bins, *, noise=None, mask=None,
     out (flux is conserved exactly for lines that end inside the band).
     ``flux`` is the mean of the shifted spectra (the cube's unit); ``flux_err`` is
     sqrt(sum sigma_i^2 * min(n, A)) / n with A the beam area in pixels (noise correlated
-    over one beam; 1 without a beam).  The fits' errors are scaled by sqrt(chi2_reduced), so
+    over one beam; 1 without a beam), times the bin's ``noise_scale`` (the robust scatter
+    of the stack about its fit in those units).  The fits' errors are scaled by
+    sqrt(chi2_reduced), so
     they follow the stack's scatter about the fit (shifting neighbouring spectra by different
     amounts decorrelates part of their noise, so the formula above is only an upper bound
     when A > 1).  The dispersion is the intrinsic Gaussian sigma of the
@@ -261,9 +279,14 @@ def stack_spectra(cube, velocity_map, bins: Bins, *, noise=None, mask=None,
         value_mean = np.array([np.nanmean(bins.values[labels == b]) if np.any(labels == b)
                                else math.nan for b in range(bins.nbin)])
     res, model = _fit(mean, err, count, axis, components, channel_response)
+    scale = _noise_scale(mean, err, model, count)
+    err = err * scale[:, None]
     unit = cube.meta.bunit
     spectra = _spectra_table(mean, err, count, model, axis, unit)
     fits = _fits_table(bins, res, count, value_mean, unit)
+    fits["noise_scale"] = scale
+    fits["noise_scale"].description = ("flux_err over the beam-correlation estimate: the "
+                                       "stack's robust scatter about its fit")
     for t in (spectra, fits):
         t.meta.update(binned_by=bins.description, quantity=bins.quantity,
                       channel_width_kms=abs(axis.dv),
