@@ -64,14 +64,18 @@ def _spectra_figure(result):
             ax.step(v, f, where="mid", color="k", lw=0.8)
             if np.isfinite(m).any():
                 ax.plot(v, m, color="#d62728", lw=1.2)
+        if not v.size:
+            ax.set_yticks([])
         ax.axhline(0, color="0.5", lw=0.5)
         text = f"{_bin_label(fits, b)}, N = {int(fits['n_spectra'][b])}"
         if np.isfinite(disp[b]):
             text += f"\n$\\sigma$ = {disp[b]:.2f} $\\pm$ {derr[b]:.2f} km/s"
             if ncomp[b] == 2:
                 text += " (2 comp.)"
+        elif v.size:
+            text += "\nno fit (line under 5 errors)" if int(fits["status"][b]) == 3 else "\nno fit"
         else:
-            text += "\nno fit"
+            text += "\nno spectra"
         ax.set_title(text, fontsize=7.5, loc="left")
         ax.tick_params(labelsize=7)
         if b % ncols == 0:

@@ -30,6 +30,10 @@ __all__ = ["stack_spectra", "StackedSpectra", "COVERAGE"]
 KMS = u.km / u.s
 # channels of a stack that fewer than this fraction of its spectra reach are not fitted
 COVERAGE = 0.9
+# a fitted stack whose integrated intensity is below this many errors is rejected: across
+# the ~100 channels of a stack a 3-sigma noise peak is likely (about 1 - Phi(3)^100 = 13
+# per cent) and its fit passes the fitter's peak test; a 5-sigma line is not noise
+SNR_THRESHOLD = 5.0
 
 
 @dataclass(frozen=True)
@@ -144,8 +148,36 @@ def _fit(mean, err, count, axis, components, channel_response):
     res = fit_spectra(data, np.nan_to_num(noise, nan=-1.0), axis.offsets, ncomp=components,
                       max_components=2, response=channel_response, order="flux",
                       scale_errors=True)
+    res = _reject_faint(res)
     model = model_spectra(res.params, axis.offsets, model=res.model, response=channel_response)
     return res, model
+
+
+def _reject_faint(res):
+    """Fits whose total integrated intensity is under SNR_THRESHOLD errors: TOO_FAINT,
+    values NaN (as the fitter leaves spectra it does not fit)."""
+    from dataclasses import fields, replace
+
+    from kinemap.status import Status
+
+    with np.errstate(invalid="ignore", divide="ignore"):
+        total = np.nansum(res.integrated, axis=1)
+        err = np.sqrt(np.nansum(res.integrated_err ** 2, axis=1))
+        faint = ~(total / err >= SNR_THRESHOLD) & np.isin(res.status, (Status.OK, Status.AT_BOUND))
+    if not faint.any():
+        return res
+    changes = {}
+    for f in fields(res):
+        val = getattr(res, f.name)
+        if isinstance(val, np.ndarray) and val.dtype.kind == "f" and f.name not in ("peak_snr",):
+            val = val.copy()
+            val[faint] = np.nan
+            changes[f.name] = val
+    status = res.status.copy()
+    status[faint] = Status.TOO_FAINT
+    ncomp = res.ncomp.copy()
+    ncomp[faint] = 0
+    return replace(res, status=status, ncomp=ncomp, **changes)
 
 
 def _noise_scale(mean, err, model, count):
@@ -223,7 +255,8 @@ def stack_spectra(cube, velocity_map, bins: Bins, *, noise=None, mask=None,
     mask : bool array (ny, nx), optional
         Only pixels where True are stacked.
     components : 1, 2 or 'auto'
-        Gaussians fitted to each stacked spectrum; 'auto' fits 1 and 2 and keeps the lower
+        Gaussians fitted to each stacked spectrum; a fit whose integrated intensity is
+        under ``SNR_THRESHOLD`` (5) errors is rejected (status TOO_FAINT, values NaN); 'auto' fits 1 and 2 and keeps the lower
         BIC (Schwarz 1978) among the acceptable fits (see ``fit_spectra``).
     channel_response : {'tophat', 'hanning', 'none'}
         Channel response of the fitted model.
@@ -255,8 +288,9 @@ def stack_spectra(cube, velocity_map, bins: Bins, *, noise=None, mask=None,
         raise KinemapError(f"stacking needs at least 4 channels, the cube has {cube.nchan}")
     dv = np.diff(cube.velocity)
     if not np.allclose(dv, dv[0], rtol=1e-4, atol=0):
-        raise KinemapError("stacking needs a velocity axis of uniform channels; this cube's "
-                           "channel widths vary (convert it to a linear velocity axis first)")
+        raise KinemapError("stacking needs channels of equal velocity width; this cube's "
+                           "widths vary by more than 1e-4 (a frequency axis has equal widths "
+                           "in --convention radio, a wavelength axis in optical)")
     if noise is None:
         from kinemap.maps.noise import estimate_noise
 
