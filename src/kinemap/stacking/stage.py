@@ -84,7 +84,9 @@ def _accumulate(cube, velocity, labels, sigma, nbin, axis, max_memory, progress)
     var = np.zeros((nbin, axis.m))
     count = np.zeros((nbin, axis.m), dtype=np.int64)
     nchan, ny, nx = cube.shape
-    rows = block_rows(cube.shape, max_memory=max_memory, factor=2.0 * axis.m / nchan + 1.0)
+    # per spectrum: the block row (float64), the padded and shifted rows, their transform
+    # (complex, half length) and the coverage mask: about 3 padded lengths of float64
+    rows = block_rows(cube.shape, max_memory=max_memory, factor=3.0 * axis.m / nchan + 2.0)
     bar = None
     if progress:
         from tqdm.auto import tqdm
