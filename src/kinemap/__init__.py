@@ -55,6 +55,10 @@ _API = {
     "SpectrumResult": "kinemap.extract.spectrum",
     "pv_diagram": "kinemap.extract.pv",
     "PVDiagram": "kinemap.extract.pv",
+    "channel_maps": "kinemap.maps.channels",
+    "ChannelMaps": "kinemap.maps.channels",
+    "stack_spectra": "kinemap.stacking.stage",
+    "StackedSpectra": "kinemap.stacking.stage",
     "run": "kinemap.pipeline.runner",
     "Status": "kinemap.status",
 }
@@ -63,7 +67,8 @@ __all__ = ["__version__", "KinemapError", "KinemapWarning", *_API]
 
 
 _SUBPACKAGES = ("io", "spectral", "parallel", "maps", "linefit", "rings", "widths",
-                "turbulence", "extract", "plotting", "pipeline", "datasets", "status", "units", "errors")
+                "turbulence", "extract", "stacking", "plotting", "pipeline", "datasets", "status",
+                "units", "errors")
 
 
 def __getattr__(name):

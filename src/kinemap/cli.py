@@ -158,6 +158,18 @@ COMMANDS = {
             ("ring model", [("pv", "rings")]),
             ("reading the cube", [item for item in _READING[1] if item != ("input", "region")]),
             _CONTINUUM, _OUTPUT, _EXECUTION]),
+    # ---- channel maps and stacking ----
+    "channels": ("channel maps: a grid of panels with contours and the beam, paged into "
+                 "PNGs and one PDF", ("cube", "the cube (FITS)"), ("channels",),
+                 [("channel maps", [("channels", "every"), ("channels", "levels")]),
+                  _READING, _CONTINUUM, _OUTPUT, _EXECUTION]),
+    "stack": ("stack spectra shifted by their velocity, per radius or map bin, and fit "
+              "their widths", ("cube", "the cube (FITS)"), ("stack",),
+              [("velocities", [("stack", "velocity_map"), ("stack", "velocity_field")]),
+               ("bins", [("stack", k) for k in ("bins", "edges", "bin_width", "center",
+                                                "position_angle", "inclination", "rings")]),
+               ("fit", [("stack", "components"), ("maps", "channel_response")]),
+               _READING, _CONTINUUM, _OUTPUT, _EXECUTION]),
 }
 
 
@@ -368,6 +380,30 @@ def _cmd_pv(args) -> int:
     return 0
 
 
+def _cmd_channels(args) -> int:
+    from kinemap.pipeline.runner import run_config
+
+    cfg = config_from_args(args)
+    state = run_config(cfg)
+    _report(state, cfg["output"]["dir"])
+    s = state.results["channels"].summary()
+    print(f"kinemap: {s['panels']} channel maps ({s['channels_per_panel']} channel(s) each) on "
+          f"{s['pages']} page(s): channel_maps_p1.png ... and channel_maps.pdf")
+    return 0
+
+
+def _cmd_stack(args) -> int:
+    from kinemap.pipeline.runner import run_config
+
+    cfg = config_from_args(args)
+    state = run_config(cfg)
+    _report(state, cfg["output"]["dir"])
+    s = state.results["stack"].summary()
+    print(f"kinemap: {s['spectra_stacked']} spectra stacked into {s['bins']} bins of "
+          f"{s['binned_by']}; {s['bins_fitted']} fitted (see stack_fits.ecsv)")
+    return 0
+
+
 def _cmd_run(args) -> int:
     from kinemap.pipeline.config import load_config
     from kinemap.pipeline.runner import run_config
@@ -420,7 +456,8 @@ def main(argv=None) -> int:
         warnings.filterwarnings("ignore", category=RuntimeWarning)
     handler = {"info": _cmd_info, "maps": _cmd_maps, "rings": _cmd_rings, "widths": _cmd_widths,
                "turbulence": _cmd_turbulence, "run": _cmd_run, "demo": _cmd_demo,
-               "spectrum": _cmd_spectrum, "pv": _cmd_pv}
+               "spectrum": _cmd_spectrum, "pv": _cmd_pv,
+               "channels": _cmd_channels, "stack": _cmd_stack}
     try:
         return handler[args.command](args)
     except KinemapError as exc:

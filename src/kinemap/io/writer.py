@@ -68,7 +68,8 @@ def write_products(folder, meta, products, *, options: dict, timings: dict,
         WCS, conventions and provenance for every file.
     products : list of Product
     figures : dict name -> (matplotlib Figure, description)
-        Extra plots made by the stages (spectra panels, rotation curves, ...).
+        Extra plots made by the stages (spectra panels, rotation curves, ...), each a PNG;
+        a list of Figures instead of one is written as one multi-page PDF.
     center : float, optional
         Systemic velocity (km/s) at which velocity maps' colour scales are centred.
     execution : dict, optional
@@ -77,7 +78,7 @@ def write_products(folder, meta, products, *, options: dict, timings: dict,
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     if plots:  # matplotlib costs a third of a second to import: only when plotting
-        from kinemap.plotting.maps import plot_map, save
+        from kinemap.plotting.maps import plot_map, save, save_pages
     t0 = time.perf_counter()
     written = {}
     figure_list = {}
@@ -103,8 +104,10 @@ def write_products(folder, meta, products, *, options: dict, timings: dict,
         written[p.key] = {"path": name, "unit": p.unit, "description": p.description}
     for key, (fig, description) in (figures or {}).items():
         if plots:
-            save(fig, folder / f"{key}.png")
-            figure_list[key] = {"path": f"{key}.png", "description": description}
+            # a list of figures is a document of pages: one multi-page PDF
+            name = f"{key}.pdf" if isinstance(fig, (list, tuple)) else f"{key}.png"
+            (save_pages if isinstance(fig, (list, tuple)) else save)(fig, folder / name)
+            figure_list[key] = {"path": name, "description": description}
     timings = dict(timings)
     timings["export"] = time.perf_counter() - t0
     doc = build_manifest(meta, written, timings=timings, options=options, figures=figure_list,

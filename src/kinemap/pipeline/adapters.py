@@ -11,7 +11,8 @@ from kinemap.errors import KinemapError
 __all__ = ["read_kwargs", "continuum_kwargs", "reference_line", "noise_kwargs", "mask_kwargs",
            "moments_kwargs", "fit_kwargs", "rings_kwargs", "rings3d_kwargs", "widths_kwargs",
            "turbulence_kwargs", "parse_vrange", "parse_line_free", "spectrum_kwargs",
-           "pv_kwargs"]
+           "pv_kwargs", "channels_kwargs",
+           "stack_geometry", "check_stack"]
 
 
 def parse_vrange(value):
@@ -159,3 +160,63 @@ def pv_kwargs(cfg: dict) -> dict:
     p = cfg["pv"]
     return dict(path=p["path"], center=p["center"], position_angle=p["position_angle"],
                 length=p["length"], width=p["width"], region=p["region"])
+# ---- channel maps and stacking ----------------------------------------------------------
+def channels_kwargs(cfg: dict) -> dict:
+    """[channels] -> :func:`kinemap.maps.channels.channel_maps`."""
+    c = cfg["channels"]
+    return dict(every=c["every"], levels=c["levels"],
+                channel_response=cfg["maps"]["channel_response"])
+
+
+def stack_geometry(cfg: dict, beam_arcsec: float | None, pixel_arcsec: float) -> dict:
+    """[stack] radius-bin geometry: centre, PA, inclination and edges or width, from the
+    options or a rings table (not both).  Numbers may carry units ('40 deg')."""
+    from kinemap.units import to_value
+
+    s = cfg["stack"]
+    given = [k for k in ("center", "position_angle", "inclination") if s[k] is not None]
+    if s["rings"]:
+        if given:
+            raise KinemapError(f"give either --rings or --{given[0].replace('_', '-')} (the "
+                               "rings table has the geometry), not both")
+        from kinemap.io.tables import read_ring_geometry
+
+        g = read_ring_geometry(s["rings"])
+        if s["edges"] is not None:
+            g["edges"] = s["edges"]
+        return dict(g, bin_width=None)
+    missing = [k for k in ("center", "position_angle", "inclination") if s[k] is None]
+    if missing:
+        raise KinemapError("radius bins need the disk's --center, --position-angle and "
+                           f"--inclination (missing: {', '.join(missing)}), or --rings "
+                           "rotation_curve.ecsv, or --bins MAP.fits --edges ...")
+    width = s["bin_width"]
+    if width is not None:
+        width = to_value(width, "arcsec", name="bin_width")
+    elif beam_arcsec:
+        width = beam_arcsec
+    else:
+        width = 4 * pixel_arcsec
+    return dict(center=s["center"],
+                position_angle=to_value(s["position_angle"], "deg", name="position_angle"),
+                inclination=to_value(s["inclination"], "deg", name="inclination"),
+                edges=s["edges"], bin_width=width)
+
+
+def check_stack(cfg: dict) -> None:
+    """[stack] mistakes found before the cube is read: bins that cannot be made."""
+    s = cfg["stack"]
+    if s["bins"].strip().lower() != "radius":
+        if s["edges"] is None:
+            raise KinemapError("binning by a map needs --edges (bin edges in the units of the "
+                               "map, e.g. '0,1,2,5')")
+        from kinemap.stacking.bins import check_edges
+
+        check_edges(s["edges"], "values of the bin map")
+        return
+    geometry = stack_geometry(cfg, None, 1.0)
+    from kinemap.stacking.bins import check_edges, check_inclination
+
+    check_inclination(geometry["inclination"])
+    if geometry["edges"] is not None:
+        check_edges(geometry["edges"], "radii in arcsec")

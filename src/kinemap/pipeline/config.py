@@ -60,6 +60,10 @@ Sections and keys (defaults in brackets)::
     [pv]      path ("RA1,DEC1;RA2,DEC2"), or center ("RA,DEC") + position_angle (deg) +
               length (arcsec), or region (a line in a region file); width (arcsec), rings
               (rotation_curve.ecsv whose model is drawn)
+    [channels] every [1] (channels per panel), levels [[-3, 3, 6, 12, 24, 48]] (x noise)
+    [stack]   velocity_map (FITS) or velocity_field ["moments"] | "gauss", bins ["radius"] |
+              a map (FITS), edges, bin_width (arcsec), center, position_angle, inclination,
+              rings (a rotation_curve.ecsv), components ["auto"] | 1 | 2
     [output]  dir ["kinemap-out"], overwrite [false], plots [true]
     [run]     max_memory [a quarter of the machine's memory], progress [true],
               scheduler ["tcp://host:port" of a dask scheduler], workers [N local processes]
@@ -274,6 +278,29 @@ def _check_beam(value):
 
 def _check_size(value):
     parse_size(value)
+
+
+def _numbers(value):
+    """'3,6,12' or [3, 6, 12] -> [3.0, 6.0, 12.0]."""
+    items = _names(value) if isinstance(value, str) else list(value)
+    try:
+        out = [float(x) for x in items]
+    except (TypeError, ValueError):
+        out = []
+    if not out:
+        raise ValueError(f"must be numbers like '3,6,12', got {value!r}")
+    return out
+
+
+def _components(value):
+    """1, 2, '1', '2' or 'auto' -> 1, 2 or 'auto'."""
+    text = str(value).strip().lower()
+    return text if text == "auto" else _text_value(text, (int,))
+
+
+def _check_every(value):
+    if value < 1:
+        raise ValueError(f"must be a whole number of channels >= 1, got {value}")
 
 
 def _check_continuum(value):
@@ -542,6 +569,45 @@ SCHEMA: dict[str, dict[str, Option]] = {
         "rings": Option((str, _NONE), metavar="ECSV", path=True,
                         help="rotation_curve.ecsv of a ring fit of this cube: draw its model "
                              "on the diagram"),
+    # ---- channel maps and stacking -------------------------------------------
+    "channels": {
+        "every": Option((int,), 1, metavar="N", check=_check_every,
+                        help="channels averaged into one panel"),
+        "levels": Option((list, str), [-3.0, 3.0, 6.0, 12.0, 24.0, 48.0], parse=_numbers,
+                         metavar="L1,L2,...",
+                         help="contour levels in multiples of the panel noise (negative "
+                              "ones dashed)"),
+    },
+    "stack": {
+        "velocity_map": Option((str, _NONE), metavar="FITS", path=True,
+                               help="velocity of every spectrum (2D FITS on the cube's grid, "
+                                    "km/s); default: from the cube (--velocity-field)"),
+        "velocity_field": Option((str,), "moments", choices=("moments", "gauss"),
+                                 help="without --velocity-map: moment 1 (where moment 0 has "
+                                      "S/N >= 3) or Gaussian-fit velocities of the cube"),
+        "bins": Option((str,), "radius", metavar="radius|MAP.fits",
+                       help="stack by deprojected radius or by the values of a 2D FITS map "
+                            "on the cube's grid (with --edges)"),
+        "edges": Option((list, str, _NONE), parse=_numbers, metavar="E1,E2,...",
+                        help="bin edges: arcsec for radius bins, the map's unit for a map"),
+        "bin_width": Option((int, float, str, _NONE), metavar="WIDTH", unit="arcsec",
+                            help="radius bins of this width from the centre (default: one "
+                                 "beam, else 4 pixels)"),
+        "center": Option((str, _NONE), metavar="RA,DEC",
+                         help="disk centre for radius bins, degrees or sexagesimal"),
+        "position_angle": Option((int, float, str, _NONE), metavar="ANGLE", unit="deg",
+                                 aliases=("--pa",),
+                                 help="position angle for radius bins, east of north to the "
+                                      "receding side"),
+        "inclination": Option((int, float, str, _NONE), metavar="ANGLE", unit="deg",
+                              help="inclination for radius bins, 0 face-on"),
+        "rings": Option((str, _NONE), metavar="ECSV", path=True,
+                        help="take centre, PA, inclination and the ring edges from a "
+                             "rotation_curve.ecsv of 'kinemap rings'"),
+        "components": Option((int, str), "auto", choices=(1, 2, "auto"),
+                             parse=_components,
+                             help="Gaussians fitted to each stacked spectrum (auto: 1 or 2 "
+                                  "by BIC)"),
     },
     "output": {
         "dir": Option((str,), "kinemap-out", cli="out", metavar="DIR", path=True,
@@ -667,7 +733,7 @@ def validate_config(user: dict, *, base_dir: str | None = None) -> dict:
 
 # sections whose stages need no maps: a config of only these (and the shared sections)
 # makes no moment maps
-EXTRACTION_SECTIONS = ("spectrum", "pv")
+EXTRACTION_SECTIONS = ("spectrum", "pv", "channels")
 _SHARED = {"input", "continuum", "noise", "mask", "output", "run"}
 
 

@@ -11,6 +11,7 @@ import time
 from dataclasses import dataclass, field
 
 import astropy.units as u
+import numpy as np
 
 from kinemap.errors import KinemapError
 from kinemap.io.maps import read_map
@@ -135,6 +136,9 @@ def _wants_fit(state) -> bool:
     if cfg["maps"]["method"] == "gauss":
         return True
     if "turbulence" in sections and cfg["turbulence"]["velocity_field"] == "gauss":
+        return True
+    if "stack" in sections and cfg["stack"]["velocity_field"] == "gauss" \
+            and not cfg["stack"]["velocity_map"]:
         return True
     # the 3D ring fit takes its first guesses from the moments: a Gaussian fit of every
     # pixel would only cost time
@@ -300,6 +304,59 @@ def _ring_model(path, cube):
     except Exception as exc:  # astropy raises many types for a file that is not ECSV
         raise KinemapError(f"could not read {path} as an ECSV ring table: {exc}") from None
     return RingModel(table, cube.meta.wcs)
+# ---- channel maps and stacking -------------------------------------------------
+def stage_channels(state: RunState):
+    from kinemap.maps.channels import channel_maps
+
+    return _timed(state, "channels", channel_maps, state.cube, noise=state.noise,
+                  **ad.channels_kwargs(state.config))
+
+
+def _stack_bins(state: RunState, velocity):
+    """The stacks' bins: deprojected radius (by default out to the farthest pixel with a
+    velocity) or the values of a map."""
+    from kinemap.stacking.bins import map_bins, radial_bins
+
+    s, meta = state.config["stack"], state.cube.meta
+    if s["bins"].strip().lower() != "radius":
+        bmap = read_map(s["bins"], name="bin map")
+        if bmap.data.shape != state.cube.shape[1:]:
+            raise KinemapError(f"the bin map {s['bins']} has shape {bmap.data.shape}, the cube "
+                               f"{state.cube.shape[1:]}; give a map on the cube's pixel grid")
+        return map_bins(bmap.data, bmap.unit, s["edges"], name=f"map {s['bins']}")
+    beam = meta.beam.major.to_value(u.arcsec) if meta.beam is not None else None
+    reach = np.isfinite(velocity)
+    if state.cube.footprint is not None:
+        reach &= state.cube.footprint
+    if not reach.any():
+        raise KinemapError("the velocity map has no finite pixel on the cube: nothing to "
+                           "stack (check --velocity-map, or the cube's signal for moment 1)")
+    g = ad.stack_geometry(state.config, beam, meta.pixel_scale_arcsec)
+    return radial_bins(meta.wcs, state.cube.shape[1:], center=g["center"],
+                       position_angle=g["position_angle"], inclination=g["inclination"],
+                       edges=g["edges"], bin_width=g["bin_width"], footprint=reach)
+
+
+def stage_stack(state: RunState):
+    from kinemap.stacking.stage import stack_spectra
+
+    s = state.config["stack"]
+    if s["velocity_map"]:
+        vmap = read_map(s["velocity_map"], unit="km/s", name="velocity map")
+        if vmap.data.shape != state.cube.shape[1:]:
+            raise KinemapError(f"the velocity map {s['velocity_map']} has shape "
+                               f"{vmap.data.shape}, the cube {state.cube.shape[1:]}; give a "
+                               "map on the cube's pixel grid")
+        velocity = vmap.data if vmap.unit == u.one else (vmap.data * vmap.unit).to_value(u.km / u.s)
+    else:
+        source = state.results.get("fit") if s["velocity_field"] == "gauss" else None
+        source = source or state.results["moments"]
+        velocity = source.velocity_field(min_snr=3.0)[0]
+    bins = _stack_bins(state, velocity)
+    return _timed(state, "stack", stack_spectra, state.cube, velocity, bins, noise=state.noise,
+                  components=s["components"],
+                  channel_response=state.config["maps"]["channel_response"],
+                  max_memory=state.blocks["max_memory"], progress=state.blocks["progress"])
 
 
 # (config section, result name, stage function).  A stage runs when its section is in the
@@ -309,7 +366,9 @@ STAGES = [("maps", "moments", stage_moments), ("maps", "fit", stage_fit),
           ("rings", "rings", stage_rings),
           ("widths", "widths", stage_widths),
           ("turbulence", "turbulence", stage_turbulence),
-          ("spectrum", "spectrum", stage_spectrum), ("pv", "pv", stage_pv)]
+          ("spectrum", "spectrum", stage_spectrum), ("pv", "pv", stage_pv),
+          ("channels", "channels", stage_channels),
+          ("stack", "stack", stage_stack)]
 
 
 def _options(cfg):
@@ -364,8 +423,15 @@ def run(config, *, out=None, overwrite: bool | None = None, plots: bool | None =
     return run_config(cfg)
 
 
+# section -> check of its options that needs no data, run before the cube is read
+PRECHECKS = {"stack": ad.check_stack}
+
+
 def _run_stages(cfg, client) -> RunState:
     sections = set(cfg.get("_sections", ()))
+    for section, check in PRECHECKS.items():
+        if section in sections:
+            check(cfg)
     if cfg["input"]["velocity_map"]:
         state = RunState(config=cfg, client=client)
         state.velocity_map = _timed(state, "read", read_map, cfg["input"]["velocity_map"],

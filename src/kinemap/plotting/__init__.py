@@ -25,6 +25,10 @@ def figures_for(result) -> dict:
         from kinemap.plotting.turbulence import figures
     elif name in ("spectrum", "pv"):
         from kinemap.plotting.extract import figures
+    elif name == "channels":
+        from kinemap.plotting.channels import figures
+    elif name == "stack":
+        from kinemap.plotting.stacking import figures
     else:
         return {}
     return figures(result)

@@ -19,7 +19,7 @@ from matplotlib.patches import Ellipse
 
 from kinemap.status import Status
 
-__all__ = ["plot_map", "CMAPS", "robust_limits", "world_axes"]
+__all__ = ["plot_map", "CMAPS", "robust_limits", "world_axes", "save", "save_pages"]
 
 CMAPS = {"intensity": "inferno", "velocity": "RdBu_r", "residual": "RdBu_r", "dispersion": "viridis",
          "error": "cividis", "noise": "cividis", "count": "Greys", "mask": "Greys",
@@ -244,3 +244,13 @@ def save(fig, path, *, dpi=120):
     lossless), a map saved in about 40 % less time, files of about the same size (noisy
     maps compress little either way)."""
     fig.savefig(path, dpi=dpi, pil_kwargs={"compress_level": 1})
+
+
+def save_pages(figs, path):
+    """Write the figures ``figs`` as the pages of one PDF (vector graphics, images kept
+    at their pixel resolution)."""
+    from matplotlib.backends.backend_pdf import PdfPages
+
+    with PdfPages(path) as pdf:
+        for fig in figs:
+            pdf.savefig(fig)
