@@ -569,6 +569,7 @@ SCHEMA: dict[str, dict[str, Option]] = {
         "rings": Option((str, _NONE), metavar="ECSV", path=True,
                         help="rotation_curve.ecsv of a ring fit of this cube: draw its model "
                              "on the diagram"),
+    },
     # ---- channel maps and stacking -------------------------------------------
     "channels": {
         "every": Option((int,), 1, metavar="N", check=_check_every,
