@@ -62,6 +62,7 @@ from __future__ import annotations
 
 import copy
 import difflib
+import math
 import os
 import tomllib
 from dataclasses import dataclass
@@ -268,6 +269,32 @@ def _check_size(value):
     parse_size(value)
 
 
+def _kelvin(value, *, allow_zero: bool):
+    """A temperature given as a number (K) or text with a unit, checked to be finite and
+    positive (or zero for an error); raises ValueError with the reason."""
+    import astropy.units as u
+    import numpy as np
+
+    try:
+        q = u.Quantity(value) if isinstance(value, str) else u.Quantity(value, u.K)
+        if q.unit == u.one:
+            q = q.value * u.K
+        k = float(q.to_value(u.K, equivalencies=u.temperature()))
+    except (TypeError, ValueError, u.UnitsError):
+        raise ValueError(f"must be a temperature like '1e4 K', got {value!r}") from None
+    if not np.isfinite(k) or k < 0 or (k == 0 and not allow_zero):
+        bound = "at least 0 K" if allow_zero else "above 0 K"
+        raise ValueError(f"must be a finite temperature {bound}, got {value!r}")
+
+
+def _check_temperature(value):
+    _kelvin(value, allow_zero=False)
+
+
+def _check_temperature_err(value):
+    _kelvin(value, allow_zero=True)
+
+
 def _check_continuum(value):
     from kinemap.maps.continuum import parse_method
 
@@ -441,11 +468,12 @@ SCHEMA: dict[str, dict[str, Option]] = {
         "lines": Option((list, str), [], parse=_names, metavar="NAME[,NAME...]", required=True,
                         help="catalogue names, brightest first (e.g. Halpha,NII_6583,NII_6548)"),
         "temperature": Option((int, float, str, _NONE), metavar="T", unit="K",
+                              check=_check_temperature,
                               help="assumed temperature, e.g. '1e4 K'"),
         "temperature_map": Option((str, _NONE), metavar="FITS", path=True,
                                   help="assumed temperature per pixel (K)"),
         "temperature_err": Option((int, float, str, _NONE), metavar="T", unit="K",
-                                  help="1-sigma error of the assumed temperature"),
+                                  check=_check_temperature_err, help="1-sigma error of the assumed temperature"),
         "mu": Option((int, float), 2.33, metavar="MU",
                      help="mean particle mass / m_H for the sound speed (2.33 molecular, "
                           "0.6 ionized)"),
@@ -600,10 +628,46 @@ def validate_config(user: dict, *, base_dir: str | None = None) -> dict:
                 v = cfg[sec][key]
                 if opt.path and v and not os.path.isabs(v):
                     cfg[sec][key] = os.path.normpath(os.path.join(base_dir, v))
+    _check_input_paths(cfg)
+    if "widths" in sections and cfg["widths"]["ratios"]:
+        _check_ratio_lines(cfg["widths"])
     # a cube always gets the maps stages (moment maps come with every cube run)
     cfg["_sections"] = sorted(sections | {"input", "continuum", "noise", "mask", "output", "run"}
                               | ({"maps"} if cfg["input"]["cube"] else set()))
     return cfg
+
+
+def _check_input_paths(cfg: dict) -> None:
+    """A folder given where a file is read is one line here, before anything is read
+    (missing files are the readers' to name)."""
+    for sec, keys in SCHEMA.items():
+        for key, opt in keys.items():
+            v = cfg[sec][key]
+            if opt.path and sec != "output" and v and os.path.isdir(v):
+                raise KinemapError(f"[{sec}] {key} {v!r} is a folder (directory), not a file; "
+                                   "give the path of a file")
+
+
+def _check_ratio_lines(widths: dict) -> None:
+    """Every line a flux ratio names must be a catalogue line among [widths] lines; a
+    ratio of lines the fit does not have would be silently ignored."""
+    from kinemap.spectral.catalogue import load_catalogue
+
+    known = load_catalogue(widths["catalogue"])
+    for pair, ratio in widths["ratios"].items():
+        if not (math.isfinite(ratio) and ratio > 0):
+            raise KinemapError(f"[widths] ratios: {pair} must be a finite positive flux ratio, "
+                               f"got {ratio!r}")
+        for name in pair.split("/"):
+            if name not in known:
+                raise KinemapError(
+                    f"[widths] ratios: {pair!r} names '{name}', which is not a catalogue line"
+                    f"{_suggest(name, known)}; use catalogue names (or add the line with "
+                    "--catalogue)")
+            if name not in widths["lines"]:
+                raise KinemapError(
+                    f"[widths] ratios: {pair!r} names '{name}', which is not among the lines "
+                    f"fitted ({', '.join(widths['lines'])}); add it to --lines or drop the ratio")
 
 
 def load_config(path) -> dict:
@@ -637,9 +701,9 @@ def parse_size(value) -> int:
     """'1GB', '512 MB', '2GiB' or a number of bytes -> bytes; None -> the default."""
     if value is None:
         return default_max_memory()
-    n = -1
+    n = -1.0
     if isinstance(value, (int, float)) and not isinstance(value, bool):
-        n = int(value)
+        n = float(value)
     else:
         text = str(value).strip().upper().replace(" ", "")
         mult = 1
@@ -648,9 +712,10 @@ def parse_size(value) -> int:
                 text, mult = text[: -len(suffix)], m
                 break
         try:
-            n = int(float(text) * mult)
+            n = float(text) * mult
         except ValueError:
-            n = -1
-    if n <= 0:
-        raise KinemapError(f"'max_memory' must be a size like '1GB' or '512MB', got {value!r}")
-    return n
+            n = -1.0
+    if not (math.isfinite(n) and n >= 1):  # inf, nan, zero and negative sizes
+        raise KinemapError(f"'max_memory' must be a finite positive size like '1GB' or "
+                           f"'512MB', got {value!r}")
+    return int(n)
