@@ -80,13 +80,14 @@ def os_error_message(exc: OSError, where) -> str:
         return (f"{name} would exceed the file-size limit (ulimit -f); raise the limit or choose "
                 "another --out (nothing was written)")
     if code in (errno.EACCES, errno.EPERM):
-        return (f"cannot write in {where}: permission denied; choose another --out or fix the "
-                "folder's permissions")
+        return (f"cannot write the output folder {where}: permission denied; choose another "
+                "--out or fix the folder's permissions")
     if code == errno.EROFS:
-        return f"cannot write in {where}: the file system is read-only; choose another --out"
+        return (f"cannot write the output folder {where}: the file system is read-only; choose "
+                "another --out")
     if code == errno.ENOTDIR:
         return f"cannot make the output folder {where}: a part of that path is a file; choose another --out"
-    return f"cannot write in {where}: {exc.strerror or exc}; choose another --out"
+    return f"cannot write the output folder {where}: {exc.strerror or exc}; choose another --out"
 
 
 @contextlib.contextmanager
