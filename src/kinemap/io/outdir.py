@@ -148,6 +148,11 @@ def check_output_dir(path, *, overwrite: bool, inputs=()) -> Path:
 
 def _check_existing(p: Path, *, overwrite: bool, inputs) -> None:
     target = os.path.realpath(p)
+    for item in inputs if overwrite else ():
+        if os.path.realpath(item).startswith(target + os.sep):
+            raise KinemapError(
+                f"the input {item} lies in the output folder {p}, which --overwrite replaces; "
+                "move the input out or choose another --out")
     cwd = os.path.realpath(os.getcwd())
     if cwd == target or cwd.startswith(target + os.sep):
         raise KinemapError(f"the output folder {p} is the current folder or holds it; kinemap "
@@ -159,12 +164,6 @@ def _check_existing(p: Path, *, overwrite: bool, inputs) -> None:
     if not os.access(p, os.W_OK | os.X_OK):
         raise KinemapError(f"cannot write in {p}: permission denied; choose another --out or fix "
                            "the folder's permissions")
-    for item in inputs:
-        real = os.path.realpath(item)
-        if real.startswith(target + os.sep):
-            raise KinemapError(
-                f"the input {item} lies in the output folder {p}, which --overwrite replaces; "
-                "move the input out or choose another --out")
 
 
 def _kinemap_files(folder: Path) -> set[str] | None:
