@@ -35,8 +35,6 @@ BAD = [
     ("ratio-junk", [*WIDTHS, "--temperature", "1e4 K", "--ratio", "junk"], "flux ratios like"),
     ("ratio-unknown-lines", [*WIDTHS, "--temperature", "1e4 K", "--ratio", "FOO/BAR=3"],
      "'FOO', which is not a catalogue line"),
-    ("ratio-line-not-fitted", [*WIDTHS, "--temperature", "1e4 K", "--ratio",
-                               "SII_6716/SII_6731=1.2"], "not among the lines fitted"),
     ("ratio-nan", [*WIDTHS, "--temperature", "1e4 K", "--ratio", "NII_6583/NII_6548=nan"],
      "finite positive flux ratio"),
 ]

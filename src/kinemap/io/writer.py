@@ -34,6 +34,11 @@ def _has_finite(p) -> bool | None:
     return any(bool(np.isfinite(c).any()) for c in cols)
 
 
+def _listed(results):
+    """``(result, its products)`` pairs; a pair passes through (products are made once)."""
+    return [r if isinstance(r, tuple) else (r, r.products()) for r in results]
+
+
 def empty_products(results) -> dict:
     """``{stage name: [keys of products with no finite value]}`` for ``results``.
 
@@ -42,8 +47,8 @@ def empty_products(results) -> dict:
     others are returned, to be warned about and listed in the manifest.
     """
     out = {}
-    for r in results:
-        state = {p.key: _has_finite(p) for p in r.products()}
+    for r, products in _listed(results):
+        state = {p.key: _has_finite(p) for p in products}
         judged = {k: v for k, v in state.items() if v is not None}
         if judged and not any(judged.values()):
             raise KinemapError(
@@ -69,14 +74,15 @@ def write_results(results, folder, *, overwrite: bool = False, plots: bool = Tru
 
     Returns the manifest (a dict).
     """
-    results = list(results)
-    if not results:
+    listed = _listed(results)
+    if not listed:
         raise ValueError("write_results needs at least one result")
-    empty = empty_products(results)
+    results = [r for r, _ in listed]
+    empty = empty_products(listed)
     meta = next((r.meta for r in results if getattr(r, "meta", None) is not None), None)
     products, figures, summary = [], {}, {}
-    for r in results:
-        products.extend(r.products())
+    for r, made in listed:
+        products.extend(made)
         s = r.summary()
         if s or r.name in empty:
             summary[r.name] = dict(s or {})
