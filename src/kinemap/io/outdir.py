@@ -130,7 +130,13 @@ def check_output_dir(path, *, overwrite: bool, inputs=()) -> Path:
     write: a file (or a path below one), a folder that is not empty (unless ``overwrite``),
     a folder or parent without write permission, the current folder, or a folder that
     holds one of the run's ``inputs`` when ``overwrite`` would replace it."""
-    p = Path(path)
+    try:
+        return _check_output_dir(Path(path), overwrite=overwrite, inputs=inputs)
+    except OSError as exc:  # e.g. a folder that cannot be listed
+        raise KinemapError(os_error_message(exc, path)) from None
+
+
+def _check_output_dir(p: Path, *, overwrite: bool, inputs) -> Path:
     base = _first_existing(p)
     if base.exists() and not base.is_dir():
         if base == p:
