@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import argparse
 import re
+import signal
 import sys
 import warnings
 
@@ -431,10 +432,26 @@ def _report(state, out):
     if continuum is not None and continuum.requested != "none":
         print(f"kinemap: {continuum.message}")
     n = len(state.manifest["products"])
+    empty = len(state.manifest.get("empty_products", ()))
     total = sum(state.manifest["timings"].values())
-    print(f"kinemap: wrote {n} products to {out} in {total:.1f} s "
-          f"(velocities: {state.meta.convention} convention, frame "
-          f"{state.meta.frame or 'unknown'})")
+    print(f"kinemap: wrote {n} products" + (f" ({empty} of them all NaN)" if empty else "")
+          + f" to {out} in {total:.1f} s (velocities: {state.meta.convention} convention, "
+          f"frame {state.meta.frame or 'unknown'})")
+
+
+def _terminate(signum, frame):
+    """SIGTERM ends a run as Ctrl-C does: the same clean-up, nothing half-written."""
+    raise KeyboardInterrupt
+
+
+def _interrupted() -> str:
+    from kinemap.io.outdir import published
+
+    done = published()
+    if done:
+        return (f"kinemap: interrupted after the products were written; {done[-1]} is "
+                "complete")
+    return "kinemap: interrupted; nothing was written"
 
 
 def _one_line_warnings(message, category, filename, lineno, file=None, line=None):
@@ -450,6 +467,9 @@ def main(argv=None) -> int:
         parser.print_help()
         return EXIT_USAGE
     warnings.formatwarning = _one_line_warnings
+    signal.signal(signal.SIGTERM, _terminate)
+    if hasattr(signal, "SIGXFSZ"):  # past a file-size limit a write fails (EFBIG), no core dump
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
     if not args.debug:
         # Library chatter (spectral-cube, astropy) is not for the user of a command.
         warnings.filterwarnings("ignore", module="spectral_cube")
@@ -466,7 +486,7 @@ def main(argv=None) -> int:
         print(f"kinemap: error: {exc}", file=sys.stderr)
         return EXIT_USAGE
     except KeyboardInterrupt:
-        print("kinemap: interrupted; nothing was written", file=sys.stderr)
+        print(_interrupted(), file=sys.stderr)
         return 130
     except MemoryError:
         if args.debug:

@@ -14,6 +14,8 @@ __all__ = [
     "BeamWarning",
     "NoiseWarning",
     "FitWarning",
+    "OutputWarning",
+    "ProductWarning",
 ]
 
 
@@ -43,3 +45,11 @@ class NoiseWarning(KinemapWarning):
 
 class FitWarning(KinemapWarning):
     """Fits that failed or hit a bound for a notable fraction of pixels."""
+
+
+class OutputWarning(KinemapWarning):
+    """Something about the output folder: files kept, leftovers of killed runs removed."""
+
+
+class ProductWarning(KinemapWarning):
+    """A product holds no finite value (it is written, and listed in the manifest)."""

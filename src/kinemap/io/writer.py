@@ -11,11 +11,55 @@ from pathlib import Path
 
 import numpy as np
 
+from kinemap.errors import KinemapError, ProductWarning
 from kinemap.io.fitsmaps import product_header, write_fits
 from kinemap.io.manifest import build_manifest, write_json
-from kinemap.io.outdir import StagedOutput
+from kinemap.io.outdir import StagedOutput, writing_into
 
-__all__ = ["write_products", "write_results"]
+__all__ = ["write_products", "write_results", "empty_products"]
+
+
+def _has_finite(p) -> bool | None:
+    """Whether a product holds any finite value; None when it holds no floating-point
+    values at all (masks, counts, status codes, text columns), which cannot be NaN."""
+    if p.is_table:
+        cols = [np.asarray(p.data[c]) for c in p.data.colnames]
+        cols = [c for c in cols if np.issubdtype(c.dtype, np.floating)]
+    else:
+        cols = [np.asarray(p.data)]
+        cols = [c for c in cols if np.issubdtype(c.dtype, np.floating)
+                or np.issubdtype(c.dtype, np.complexfloating)]
+    if not cols:
+        return None
+    return any(bool(np.isfinite(c).any()) for c in cols)
+
+
+def _listed(results):
+    """``(result, its products)`` pairs; a pair passes through (products are made once)."""
+    return [r if isinstance(r, tuple) else (r, r.products()) for r in results]
+
+
+def empty_products(results) -> dict:
+    """``{stage name: [keys of products with no finite value]}`` for ``results``.
+
+    A stage none of whose products holds a finite value made nothing that could be right:
+    that is a KinemapError (nothing is written).  Single empty products of a stage that made
+    others are returned, to be warned about and listed in the manifest.
+    """
+    out = {}
+    for r, products in _listed(results):
+        state = {p.key: _has_finite(p) for p in products}
+        judged = {k: v for k, v in state.items() if v is not None}
+        if judged and not any(judged.values()):
+            raise KinemapError(
+                f"the {r.name} stage produced no finite value in any of its {len(judged)} "
+                f"products ({', '.join(list(judged)[:4])}{', ...' if len(judged) > 4 else ''}); "
+                "nothing it made could be right: check the cube with 'kinemap info', the mask "
+                "and this stage's options (nothing was written)")
+        empty = [k for k, v in judged.items() if v is False]
+        if empty:
+            out[r.name] = empty
+    return out
 
 
 def write_results(results, folder, *, overwrite: bool = False, plots: bool = True,
@@ -30,16 +74,20 @@ def write_results(results, folder, *, overwrite: bool = False, plots: bool = Tru
 
     Returns the manifest (a dict).
     """
-    results = list(results)
-    if not results:
+    listed = _listed(results)
+    if not listed:
         raise ValueError("write_results needs at least one result")
+    results = [r for r, _ in listed]
+    empty = empty_products(listed)
     meta = next((r.meta for r in results if getattr(r, "meta", None) is not None), None)
     products, figures, summary = [], {}, {}
-    for r in results:
-        products.extend(r.products())
+    for r, made in listed:
+        products.extend(made)
         s = r.summary()
-        if s:
-            summary[r.name] = s
+        if s or r.name in empty:
+            summary[r.name] = dict(s or {})
+        if r.name in empty:
+            summary[r.name]["empty_products"] = empty[r.name]
         if plots:
             from kinemap.plotting import figures_for
 
@@ -50,9 +98,14 @@ def write_results(results, folder, *, overwrite: bool = False, plots: bool = Tru
                    if c is not None), None)
     kwargs = dict(options=options or {}, timings=timings, figures=figures, plots=plots,
                   center=center, summary=summary, execution=execution)
-    if not staged:
+    keys = [k for ks in empty.values() for k in ks]
+    if keys:
+        warnings.warn(f"{len(keys)} product(s) hold no finite value and are written as NaN: "
+                      f"{', '.join(keys[:6])}{' and more' if len(keys) > 6 else ''} (see "
+                      "'empty_products' in the manifest)", ProductWarning, stacklevel=2)
+    if not staged:  # the caller staged the folder and names it in errors
         return write_products(folder, meta, products, **kwargs)
-    with StagedOutput(folder, overwrite=overwrite) as stage:
+    with StagedOutput(folder, overwrite=overwrite) as stage, writing_into(folder):
         return write_products(stage.path, meta, products, **kwargs)
 
 
@@ -112,5 +165,9 @@ def write_products(folder, meta, products, *, options: dict, timings: dict,
     timings["export"] = time.perf_counter() - t0
     doc = build_manifest(meta, written, timings=timings, options=options, figures=figure_list,
                          summary=summary, execution=execution)
+    empty = sorted(k for s in (summary or {}).values() if isinstance(s, dict)
+                   for k in s.get("empty_products", ()))
+    if empty:
+        doc["empty_products"] = empty
     write_json(folder / "manifest.json", doc)
     return doc

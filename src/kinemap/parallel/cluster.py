@@ -17,6 +17,21 @@ __all__ = ["open_client", "CONNECT_TIMEOUT"]
 CONNECT_TIMEOUT = 5
 
 
+def _connect(Client, scheduler: str):
+    """A Client of the scheduler at ``scheduler``, or one line saying why there is none."""
+    try:
+        return Client(scheduler, timeout=f"{CONNECT_TIMEOUT}s")
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise KinemapError(
+            f"cannot reach the dask scheduler at {scheduler!r} ({type(exc).__name__}); "
+            "check the address (tcp://host:port) and that the scheduler is running") from None
+    except Exception as exc:  # noqa: BLE001 - MemoryError too: garbage read as a frame length
+        raise KinemapError(
+            f"{scheduler!r} is not a dask scheduler (its reply is not dask's protocol: "
+            f"{type(exc).__name__}); give the address of a running dask.distributed scheduler "
+            "(tcp://host:port)") from None
+
+
 @contextlib.contextmanager
 def open_client(*, scheduler: str | None = None, workers: int | None = None):
     """Yield a distributed Client (or None for in-process runs) and close what was opened."""
@@ -39,12 +54,7 @@ def open_client(*, scheduler: str | None = None, workers: int | None = None):
                                    dashboard_address=None)
             client = Client(cluster)
         else:
-            try:
-                client = Client(scheduler, timeout=f"{CONNECT_TIMEOUT}s")
-            except (OSError, TimeoutError, ValueError) as exc:
-                raise KinemapError(
-                    f"cannot reach the dask scheduler at {scheduler!r} ({type(exc).__name__}); "
-                    "check the address (tcp://host:port) and that the scheduler is running") from None
+            client = _connect(Client, scheduler)
     except KinemapError:
         if cluster is not None:
             cluster.close()

@@ -74,12 +74,18 @@ from __future__ import annotations
 
 import copy
 import difflib
+import math
 import os
 import tomllib
 from dataclasses import dataclass
 from typing import Any, Callable
 
 from kinemap.errors import KinemapError
+from kinemap.pipeline.values import (check_beam, check_continuum, check_distance_pc, check_every,
+                                     check_lag_range, check_size, check_temperature,
+                                     check_temperature_err, components, lag_pair, name_list,
+                                     number_list, number_pair, parse_size, range_list, ratios,
+                                     stage_numbers, text_value)
 
 __all__ = ["SCHEMA", "Option", "default_config", "load_config", "validate_config",
            "parse_size", "option_default"]
@@ -150,7 +156,7 @@ class Option:
             return self.parse(value)
         if not isinstance(value, str):
             return value
-        return _text_value(value, self.types)
+        return text_value(value, self.types)
 
     def help_text(self, sections=()) -> str:
         text = self.help
@@ -164,149 +170,6 @@ class Option:
                 default = ",".join(str(d) for d in default)
             text += f"; default: {default}"
         return text.replace("%", "%%")  # argparse formats help text with %
-
-
-def _text_value(text: str, types: tuple):
-    numeric = int in types or float in types
-    t = text.strip()
-    if numeric:
-        try:
-            return int(t)
-        except ValueError:
-            pass
-        if float in types:
-            try:
-                return float(t)
-            except ValueError:
-                pass
-    if str in types:
-        return text
-    raise ValueError(f"must be {'a number' if float in types else 'a whole number'}, got {text!r}")
-
-
-def _number_or_text(text: str):
-    return _text_value(text, (int, float, str))
-
-
-def _two(value, what: str):
-    """'a,b' or [a, b] -> [a, b]; entries may carry units ('-50 km/s')."""
-    parts = ([p.strip() for p in value.split(",")] if isinstance(value, str) else list(value))
-    if len(parts) != 2 or any(p == "" for p in parts):
-        raise ValueError(f"must be two {what}, got {value!r}")
-    return [_number_or_text(p) if isinstance(p, str) else p for p in parts]
-
-
-def _pair(value):
-    """'-50,120' or [-50, 120] (km/s) -> [-50, 120]."""
-    return _two(value, "velocities like '-50,120' (km/s)")
-
-
-def _ranges(value):
-    """'auto', '-300,-200;250,400' or [[-300, -200], [250, 400]] -> 'auto' or a list of pairs."""
-    if isinstance(value, str):
-        if value.strip().lower() == "auto":
-            return "auto"
-        value = [part for part in value.split(";") if part.strip()]
-    try:
-        out = [_pair(p) for p in value]
-    except (ValueError, TypeError):
-        out = []
-    if not out:
-        raise ValueError(f"must be 'auto' or velocity ranges like '-300,-200;250,400' (km/s), "
-                         f"got {value!r}")
-    return out
-
-
-def _names(value):
-    """'a,b' or ['a', 'b'] -> ['a', 'b']."""
-    if isinstance(value, str):
-        return [p.strip() for p in value.split(",") if p.strip()]
-    return list(value)
-
-
-def _stage_numbers(value):
-    items = _names(value)
-    try:
-        return [int(s) for s in items]
-    except (TypeError, ValueError):
-        raise ValueError(f"must be stage numbers like '1,2,3', got {value!r}") from None
-
-
-def _ratios(value):
-    """{'NII_6583/NII_6548': 3.0}, ['NII_6583/NII_6548=3.0', ...] or that text -> dict."""
-    if isinstance(value, dict):
-        items = list(value.items())
-    else:
-        texts = _names(value) if isinstance(value, str) else [str(v) for v in value]
-        items = [t.split("=", 1) if "=" in t else (t, "") for t in texts]
-    out = {}
-    for key, ratio in items:
-        names = [p.strip() for p in str(key).split("/")]
-        try:
-            r = float(ratio)
-        except (TypeError, ValueError):
-            r = None
-        if len(names) != 2 or not all(names) or r is None:
-            raise ValueError(f"must be flux ratios like 'NII_6583/NII_6548=3.0', got "
-                             f"{key!r}={ratio!r}")
-        out["/".join(names)] = r
-    return out
-
-
-def _lag_pair(value):
-    """'90,600' or [90, 600] (arcsec) -> [90, 600]."""
-    return _two(value, "lags like '90,600' (arcsec)")
-
-
-def _check_lag_range(value):
-    from kinemap.turbulence.stage import check_lag_range
-
-    check_lag_range(value)
-
-
-def _check_distance_pc(value):
-    from kinemap.turbulence.stage import check_distance
-
-    check_distance(value)
-
-
-def _check_beam(value):
-    from kinemap.io.beams import parse_beam
-
-    parse_beam(value)
-
-
-def _check_size(value):
-    parse_size(value)
-
-
-def _numbers(value):
-    """'3,6,12' or [3, 6, 12] -> [3.0, 6.0, 12.0]."""
-    items = _names(value) if isinstance(value, str) else list(value)
-    try:
-        out = [float(x) for x in items]
-    except (TypeError, ValueError):
-        out = []
-    if not out:
-        raise ValueError(f"must be numbers like '3,6,12', got {value!r}")
-    return out
-
-
-def _components(value):
-    """1, 2, '1', '2' or 'auto' -> 1, 2 or 'auto'."""
-    text = str(value).strip().lower()
-    return text if text == "auto" else _text_value(text, (int,))
-
-
-def _check_every(value):
-    if value < 1:
-        raise ValueError(f"must be a whole number of channels >= 1, got {value}")
-
-
-def _check_continuum(value):
-    from kinemap.maps.continuum import parse_method
-
-    parse_method(value)
 
 
 SCHEMA: dict[str, dict[str, Option]] = {
@@ -324,14 +187,14 @@ SCHEMA: dict[str, dict[str, Option]] = {
             (str, _NONE), metavar="SPECSYS",
             help="spectral frame of the output velocities (TOPOCENT, BARYCENT, LSRK); "
                  "default: the cube's"),
-        "vrange": Option((list, tuple, str, _NONE), parse=_pair, metavar="V1,V2", unit="km/s",
+        "vrange": Option((list, tuple, str, _NONE), parse=number_pair, metavar="V1,V2", unit="km/s",
                          help="keep channels in this velocity range"),
         "box": Option((list, tuple, str, _NONE), metavar="X0:X1,Y0:Y1",
                       help="pixel box (0-based, end exclusive)"),
         "region": Option((str, _NONE), metavar="FILE", help="DS9 or CRTF region file", path=True),
         "beams": Option((str,), "common", choices=("common", "refuse"),
                         help="cube with a beam per channel: convolve to a common beam or refuse"),
-        "beam": Option((str, _NONE), metavar="MAJOR[,MINOR,PA]", check=_check_beam,
+        "beam": Option((str, _NONE), metavar="MAJOR[,MINOR,PA]", check=check_beam,
                        help="the cube's beam when the header has none or a wrong one: "
                             "'46arcsec' (circular) or '30arcsec,20arcsec,45deg' (FWHM major, "
                             "minor, position angle)"),
@@ -349,7 +212,7 @@ SCHEMA: dict[str, dict[str, Option]] = {
                             help="intensity map for a velocity-map input"),
     },
     "continuum": {
-        "method": Option((str,), "auto", cli="continuum", check=_check_continuum,
+        "method": Option((str,), "auto", cli="continuum", check=check_continuum,
                          metavar="auto|none|constant|linear|poly:N",
                          help="continuum under the lines, fitted per spectrum on line-free "
                               "channels and subtracted before noise and masks; auto: only "
@@ -363,7 +226,7 @@ SCHEMA: dict[str, dict[str, Option]] = {
                                   help="also write the fitted continuum cube"),
     },
     "noise": {
-        "line_free": Option((str, list, tuple, _NONE), "auto", parse=_ranges,
+        "line_free": Option((str, list, tuple, _NONE), "auto", parse=range_list,
                             metavar="V1,V2[;V3,V4]", unit="km/s",
                             help="line-free velocity ranges for the noise, or auto"),
     },
@@ -424,9 +287,9 @@ SCHEMA: dict[str, dict[str, Option]] = {
                        help="catalogue line to map (e.g. Halpha): sets the rest value in the "
                             "cube's medium and a velocity window that stops short of the "
                             "neighbouring catalogue lines"),
-        "vrange": Option((list, tuple, str, _NONE), parse=_pair, cli=False, unit="km/s",
+        "vrange": Option((list, tuple, str, _NONE), parse=number_pair, cli=False, unit="km/s",
                          help="velocity window of the moments and fits only"),
-        "lines": Option((list, str), [], parse=_names, metavar="NAME[,NAME...]",
+        "lines": Option((list, str), [], parse=name_list, metavar="NAME[,NAME...]",
                         help="catalogue lines to map one by one (e.g. Halpha,NII_6583): "
                              "moment (and fit) maps of each on its own velocity axis and "
                              "window, keys suffixed with the line's name"),
@@ -453,12 +316,12 @@ SCHEMA: dict[str, dict[str, Option]] = {
         "exclude_minor_axis": Option((int, float, str), 20.0, metavar="ANGLE", unit="deg",
                                      help="half-width of the wedge around the minor axis "
                                           "left out"),
-        "stages": Option((list, str), [1, 2, 3], parse=_stage_numbers, choices=(1, 2, 3),
+        "stages": Option((list, str), [1, 2, 3], parse=stage_numbers, choices=(1, 2, 3),
                          metavar="N[,N...]", help="stages to run"),
         "final_geometry": Option((str,), "median",
                                  choices=("median", "polynomial", "rings", "global"),
                                  help="stage 3: how the ring geometry is smoothed"),
-        "fix": Option((list, str), [], parse=_names, metavar="NAMES",
+        "fix": Option((list, str), [], parse=name_list, metavar="NAMES",
                       choices=("center", "x_center", "y_center", "position_angle",
                                "inclination", "v_sys", "v_exp"),
                       help="comma-separated parameters held fixed"),
@@ -483,19 +346,20 @@ SCHEMA: dict[str, dict[str, Option]] = {
                                       "or moment 1"),
     },
     "widths": {
-        "lines": Option((list, str), [], parse=_names, metavar="NAME[,NAME...]", required=True,
+        "lines": Option((list, str), [], parse=name_list, metavar="NAME[,NAME...]", required=True,
                         help="catalogue names, brightest first (e.g. Halpha,NII_6583,NII_6548)"),
         "temperature": Option((int, float, str, _NONE), metavar="T", unit="K",
+                              check=check_temperature,
                               help="assumed temperature, e.g. '1e4 K'"),
         "temperature_map": Option((str, _NONE), metavar="FITS", path=True,
                                   help="assumed temperature per pixel (K)"),
         "temperature_err": Option((int, float, str, _NONE), metavar="T", unit="K",
-                                  help="1-sigma error of the assumed temperature"),
+                                  check=check_temperature_err, help="1-sigma error of the assumed temperature"),
         "mu": Option((int, float), 2.33, metavar="MU",
                      help="mean particle mass / m_H for the sound speed (2.33 molecular, "
                           "0.6 ionized)"),
         "free_velocity": Option((bool,), False, help="a velocity per line"),
-        "ratios": Option((dict, list, str, _NONE), parse=_ratios, cli="ratio", repeat=True,
+        "ratios": Option((dict, list, str, _NONE), parse=ratios, cli="ratio", repeat=True,
                          metavar="STRONG/WEAK=R",
                          help="fixed flux ratio (NII_6583/NII_6548=3.0 always applies unless "
                               "given another value); repeatable"),
@@ -513,10 +377,10 @@ SCHEMA: dict[str, dict[str, Option]] = {
                                  aliases=("--method",),
                                  help="velocity field from Gaussian fits or moment 1"),
         "distance": Option((int, float, str, _NONE), metavar="DIST", unit="pc",
-                           check=_check_distance_pc,
+                           check=check_distance_pc,
                            help="e.g. '250 pc': sizes in pc and gradients in km/s/pc"),
-        "lag_range": Option((list, tuple, str, _NONE), parse=_lag_pair, metavar="L1,L2",
-                            check=_check_lag_range,
+        "lag_range": Option((list, tuple, str, _NONE), parse=lag_pair, metavar="L1,L2",
+                            check=check_lag_range,
                             unit="arcsec",
                             help="lags of the structure function's power-law fit "
                                  "(default: two beams to the largest lag)"),
@@ -572,9 +436,9 @@ SCHEMA: dict[str, dict[str, Option]] = {
     },
     # ---- channel maps and stacking -------------------------------------------
     "channels": {
-        "every": Option((int,), 1, metavar="N", check=_check_every,
+        "every": Option((int,), 1, metavar="N", check=check_every,
                         help="channels averaged into one panel"),
-        "levels": Option((list, str), [-3.0, 3.0, 6.0, 12.0, 24.0, 48.0], parse=_numbers,
+        "levels": Option((list, str), [-3.0, 3.0, 6.0, 12.0, 24.0, 48.0], parse=number_list,
                          metavar="L1,L2,...",
                          help="contour levels in multiples of the panel noise (negative "
                               "ones dashed)"),
@@ -589,7 +453,7 @@ SCHEMA: dict[str, dict[str, Option]] = {
         "bins": Option((str,), "radius", metavar="radius|MAP.fits",
                        help="stack by deprojected radius or by the values of a 2D FITS map "
                             "on the cube's grid (with --edges)"),
-        "edges": Option((list, str, _NONE), parse=_numbers, metavar="E1,E2,...",
+        "edges": Option((list, str, _NONE), parse=number_list, metavar="E1,E2,...",
                         help="bin edges: arcsec for radius bins, the map's unit for a map"),
         "bin_width": Option((int, float, str, _NONE), metavar="WIDTH", unit="arcsec",
                             help="radius bins of this width from the centre (default: one "
@@ -606,7 +470,7 @@ SCHEMA: dict[str, dict[str, Option]] = {
                         help="take centre, PA, inclination and the ring edges from a "
                              "rotation_curve.ecsv of 'kinemap rings'"),
         "components": Option((int, str), "auto", choices=(1, 2, "auto"),
-                             parse=_components,
+                             parse=components,
                              help="Gaussians fitted to each stacked spectrum (auto: 1 or 2 "
                                   "by BIC)"),
     },
@@ -617,7 +481,7 @@ SCHEMA: dict[str, dict[str, Option]] = {
         "plots": Option((bool,), True, help="skip PNG plots"),
     },
     "run": {
-        "max_memory": Option((str, int, float, _NONE), metavar="SIZE", check=_check_size,
+        "max_memory": Option((str, int, float, _NONE), metavar="SIZE", check=check_size,
                              help="working-set bound of the block-wise stages, e.g. 1GB "
                                   "(default: a quarter of the machine's memory)"),
         "progress": Option((bool,), True, help="no progress bars"),
@@ -724,8 +588,11 @@ def validate_config(user: dict, *, base_dir: str | None = None) -> dict:
                 v = cfg[sec][key]
                 if opt.path and v and not os.path.isabs(v):
                     cfg[sec][key] = os.path.normpath(os.path.join(base_dir, v))
+    _check_input_paths(cfg)
+    if "widths" in sections and cfg["widths"]["ratios"]:
+        _check_ratio_lines(cfg["widths"])
     # a cube gets the maps stages (moment maps come with every cube run) unless the run
-    # only extracts (a spectrum or a PV cut are not a reason to make maps)
+    # only extracts (a spectrum, a PV cut or channel maps are not a reason to make maps)
     cfg["_sections"] = sorted(sections | {"input", "continuum", "noise", "mask", "output", "run"}
                               | ({"maps"} if cfg["input"]["cube"] and not only_extracts(sections)
                                  else set()))
@@ -744,6 +611,35 @@ def only_extracts(sections) -> bool:
     return bool(stages) and stages <= set(EXTRACTION_SECTIONS)
 
 
+def _check_input_paths(cfg: dict) -> None:
+    """A folder given where a file is read is one line here, before anything is read
+    (missing files are the readers' to name)."""
+    for sec, keys in SCHEMA.items():
+        for key, opt in keys.items():
+            v = cfg[sec][key]
+            if opt.path and sec != "output" and v and os.path.isdir(v):
+                raise KinemapError(f"[{sec}] {key} {v!r} is a folder (directory), not a file; "
+                                   "give the path of a file")
+
+
+def _check_ratio_lines(widths: dict) -> None:
+    """Every line a flux ratio names must be a catalogue line (an unknown name would be
+    silently ignored), and the ratio finite and positive."""
+    from kinemap.spectral.catalogue import load_catalogue
+
+    known = load_catalogue(widths["catalogue"])
+    for pair, ratio in widths["ratios"].items():
+        if not (math.isfinite(ratio) and ratio > 0):
+            raise KinemapError(f"[widths] ratios: {pair} must be a finite positive flux ratio, "
+                               f"got {ratio!r}")
+        for name in pair.split("/"):
+            if name not in known:
+                raise KinemapError(
+                    f"[widths] ratios: {pair!r} names '{name}', which is not a catalogue line"
+                    f"{_suggest(name, known)}; use catalogue names (or add the line with "
+                    "--catalogue)")
+
+
 def load_config(path) -> dict:
     """Read and validate a TOML configuration; relative paths are relative to the file."""
     path = os.fspath(path)
@@ -755,40 +651,3 @@ def load_config(path) -> dict:
     except tomllib.TOMLDecodeError as exc:
         raise KinemapError(f"{path} is not valid TOML: {exc}") from None
     return validate_config(raw, base_dir=os.path.dirname(os.path.abspath(path)))
-
-
-_SIZE_UNITS = (("TIB", 1 << 40), ("GIB", 1 << 30), ("MIB", 1 << 20), ("KIB", 1 << 10),
-               ("TB", 10 ** 12), ("GB", 10 ** 9), ("MB", 10 ** 6), ("KB", 10 ** 3), ("B", 1))
-
-
-def default_max_memory() -> int:
-    """A quarter of the machine's memory (psutil comes with dask.distributed)."""
-    try:
-        import psutil
-
-        return int(psutil.virtual_memory().total // 4)
-    except (ImportError, OSError):
-        return 2 * 10 ** 9
-
-
-def parse_size(value) -> int:
-    """'1GB', '512 MB', '2GiB' or a number of bytes -> bytes; None -> the default."""
-    if value is None:
-        return default_max_memory()
-    n = -1
-    if isinstance(value, (int, float)) and not isinstance(value, bool):
-        n = int(value)
-    else:
-        text = str(value).strip().upper().replace(" ", "")
-        mult = 1
-        for suffix, m in _SIZE_UNITS:
-            if text.endswith(suffix):
-                text, mult = text[: -len(suffix)], m
-                break
-        try:
-            n = int(float(text) * mult)
-        except ValueError:
-            n = -1
-    if n <= 0:
-        raise KinemapError(f"'max_memory' must be a size like '1GB' or '512MB', got {value!r}")
-    return n

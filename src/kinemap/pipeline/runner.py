@@ -7,6 +7,7 @@ result; :func:`kinemap.io.writer.write_results` writes them all.  No stage write
 """
 from __future__ import annotations
 
+import contextlib
 import time
 from dataclasses import dataclass, field
 
@@ -15,7 +16,7 @@ import numpy as np
 
 from kinemap.errors import KinemapError
 from kinemap.io.maps import read_map
-from kinemap.io.outdir import check_output_dir
+from kinemap.io.outdir import StagedOutput, writing_into
 from kinemap.io.reader import read_cube
 from kinemap.io.subset import select_channels
 from kinemap.io.writer import write_results
@@ -25,12 +26,12 @@ from kinemap.maps.moments import compute_moments, noise_and_moments
 from kinemap.maps.noise import estimate_noise
 from kinemap.parallel.cluster import open_client
 from kinemap.pipeline import adapters as ad
-from kinemap.pipeline.config import only_extracts, parse_size
+from kinemap.pipeline.config import SCHEMA, only_extracts, parse_size
 
 # The fitting, ring and width stages import scipy.optimize, numba kernels and more; they
 # are imported inside their stage functions so a moments-only run starts faster.
 
-__all__ = ["RunState", "run", "run_config", "prepare", "STAGES"]
+__all__ = ["RunState", "run", "run_config", "prepare", "STAGES", "input_paths"]
 
 
 @dataclass
@@ -375,21 +376,34 @@ def _options(cfg):
     return {k: v for k, v in cfg.items() if not k.startswith("_")}
 
 
+def input_paths(cfg: dict) -> list[str]:
+    """Every file the run reads (the schema's path options outside [output])."""
+    return [cfg[sec][key] for sec, keys in SCHEMA.items() if sec != "output"
+            for key, opt in keys.items() if opt.path and cfg[sec][key]]
+
+
 def run_config(cfg: dict, *, stage_dir=None) -> RunState:
     """Run every configured stage and write the products.
 
-    ``stage_dir``: write into this (already staged) folder instead of ``[output] dir``;
-    used by the demo, which stages several runs into one output.
+    The output folder is checked, locked and staged before anything is computed (see
+    :class:`kinemap.io.outdir.StagedOutput`), so a run that cannot write stops at once and
+    an interrupted run leaves nothing.  ``stage_dir``: write into this (already staged)
+    folder instead of ``[output] dir``; used by the demo, which stages several runs into
+    one output.
     """
     out = cfg["output"]
+    staged = contextlib.nullcontext(None)
     if stage_dir is None:
-        check_output_dir(out["dir"], overwrite=out["overwrite"])
-    with open_client(scheduler=cfg["run"]["scheduler"], workers=cfg["run"]["workers"]) as client:
-        state = _run_stages(cfg, client)
-    state.manifest = write_results(
-        state.results.values(), stage_dir if stage_dir is not None else out["dir"],
-        overwrite=out["overwrite"], plots=out["plots"], options=_options(cfg),
-        timings=state.timings, execution=state.execution, staged=stage_dir is None)
+        staged = StagedOutput(out["dir"], overwrite=out["overwrite"], inputs=input_paths(cfg))
+    with staged as stage:
+        with open_client(scheduler=cfg["run"]["scheduler"],
+                         workers=cfg["run"]["workers"]) as client:
+            state = _run_stages(cfg, client)
+        with writing_into(out["dir"] if stage is not None else stage_dir):
+            state.manifest = write_results(
+                state.results.values(), stage_dir if stage is None else stage.path,
+                overwrite=out["overwrite"], plots=out["plots"], options=_options(cfg),
+                timings=state.timings, execution=state.execution, staged=False)
     return state
 
 

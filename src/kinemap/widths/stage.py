@@ -54,6 +54,7 @@ def line_axes(cube, lines) -> np.ndarray:
             raise KinemapError(
                 "the cube's spectral axis is a velocity axis, so only one line can be placed "
                 "on it; give one line or a cube with a frequency or wavelength axis")
+        _check_line_near_rest(cube, lines[0])
         return np.atleast_2d(cube.velocity)
     axes = []
     for line in lines:
@@ -61,6 +62,25 @@ def line_axes(cube, lines) -> np.ndarray:
         check_line_in_range(line, cube.spectral, medium=medium if medium != "frequency" else None)
         axes.append(to_velocity(cube.spectral, convention=cube.meta.convention, rest_value=rest))
     return np.ascontiguousarray(np.vstack(axes), dtype=np.float64)
+
+
+def _check_line_near_rest(cube, line) -> None:
+    """A velocity axis is relative to the cube's rest value: a line whose own rest value
+    lies further from it (in the cube's convention) than the band is wide cannot be in the
+    band at any source velocity (H-alpha on a CO cube)."""
+    rest, conv = cube.meta.rest_value, cube.meta.convention
+    doppler = {"radio": u.doppler_radio, "optical": u.doppler_optical,
+               "relativistic": u.doppler_relativistic}.get(conv)
+    if rest is None or doppler is None or cube.meta.medium == "air":
+        return
+    offset = line.rest_value("frequency").to_value(u.km / u.s, equivalencies=doppler(rest))
+    v = np.asarray(cube.velocity, dtype=float)
+    band = float(np.nanmax(v) - np.nanmin(v))
+    if not abs(offset) <= band:
+        raise KinemapError(
+            f"line '{line.name}' cannot be in this cube: its rest value is {offset:.6g} km/s "
+            f"from the cube's rest value ({rest:.8g}), more than the band's {band:.4g} km/s; "
+            "give a line the cube covers (or the cube's --rest-value)")
 
 
 def parse_ratios(ratios) -> dict:
