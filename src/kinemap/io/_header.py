@@ -16,16 +16,23 @@ __all__ = ["open_fits", "find_cube_hdu", "find_image_hdu_2d", "build_wcs", "pars
 
 
 def open_fits(path):
-    """Open ``path`` read-only with memory mapping; one clear error if it is not a FITS file."""
+    """Open ``path`` read-only with memory mapping, after :func:`validate.check_file` has
+    refused special files and broken structure; one clear error if astropy still cannot."""
+    from kinemap.io.validate import check_file
+
     path = os.fspath(path)
-    if not os.path.exists(path):
+    if not os.path.lexists(path):
         raise KinemapError(f"input file not found: {path}; check the path")
-    if os.path.isdir(path):
-        raise KinemapError(f"input {path} is a folder, not a FITS file")
-    try:
-        hdul = fits.open(path, memmap=True, mode="readonly", lazy_load_hdus=False)
-    except (OSError, ValueError, TypeError):
-        raise KinemapError(f"{path} is not a readable FITS file; give a FITS cube") from None
+    check_file(path)
+    # astropy's own notes on a file it then refuses would precede our one line: hold them
+    with warnings.catch_warnings(record=True):
+        warnings.simplefilter("always")
+        try:
+            hdul = fits.open(path, memmap=True, mode="readonly", lazy_load_hdus=False)
+        except (OSError, ValueError, TypeError, EOFError) as exc:
+            reason = " ".join(str(exc).split())[:200] or type(exc).__name__
+            raise KinemapError(f"{os.path.basename(path)} is not a readable FITS file "
+                               f"({reason}); give a FITS cube") from None
     return hdul
 
 
@@ -68,7 +75,7 @@ def build_wcs(header, path) -> tuple[WCS, list[str]]:
         warnings.simplefilter("always", FITSFixedWarning)
         try:
             wcs = WCS(header)
-        except (ValueError, MemoryError, KeyError) as exc:
+        except Exception as exc:  # wcslib's errors: ValueError and its own subclasses
             wcs = _retry_without_rest(header, exc, repairs, path)
     for w in caught:
         if issubclass(w.category, FITSFixedWarning):
@@ -84,8 +91,12 @@ def _retry_without_rest(header, exc, repairs, path):
     Such an axis is read as linear in optical velocity instead (exact at the reference
     channel, the usual approximation); the repair is recorded.
     """
+    from kinemap.io.validate import wcs_error_reason
+
     if "rest frequency" not in str(exc).lower():
-        raise KinemapError(f"the WCS of {path} cannot be read: {str(exc).splitlines()[0]}") from None
+        raise KinemapError(f"the WCS of {path} cannot be read: {wcs_error_reason(exc)}; fix "
+                           "the axis keywords (CTYPE, CUNIT, CRVAL, CDELT, CRPIX, PC) it "
+                           "names") from None
     header = header.copy()
     for key in list(header.keys()):
         if key.startswith("CTYPE") and str(header[key]).upper().startswith("FELO"):
@@ -102,9 +113,10 @@ def _retry_without_rest(header, exc, repairs, path):
         warnings.simplefilter("ignore", FITSFixedWarning)
         try:
             return WCS(header)
-        except (ValueError, KeyError) as exc2:
+        except Exception as exc2:
             raise KinemapError(
-                f"the WCS of {path} cannot be read: {str(exc2).splitlines()[0]}") from None
+                f"the WCS of {path} cannot be read: {wcs_error_reason(exc2)}; fix the axis "
+                "keywords it names") from None
 
 
 def parse_bunit(header, override=None) -> tuple[u.UnitBase, bool]:
