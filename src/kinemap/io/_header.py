@@ -11,7 +11,8 @@ from astropy.wcs import WCS, FITSFixedWarning
 
 from kinemap.errors import HeaderRepairWarning, KinemapError, MissingUnitWarning
 
-__all__ = ["open_fits", "find_cube_hdu", "find_image_hdu_2d", "build_wcs", "parse_bunit",
+__all__ = ["open_fits", "find_cube_hdu", "find_image_hdu_2d", "build_wcs", "warn_repairs",
+           "parse_bunit",
            "sha256"]
 
 
@@ -68,8 +69,10 @@ def find_image_hdu_2d(hdul, path):
     raise KinemapError(f"{path} holds no image; give a 2D FITS map")
 
 
-def build_wcs(header, path) -> tuple[WCS, list[str]]:
-    """Build the WCS, capturing wcslib's automatic fixes as a list of repair messages."""
+def build_wcs(header, path, *, emit: bool = True) -> tuple[WCS, list[str]]:
+    """Build the WCS, capturing wcslib's automatic fixes as a list of repair messages
+    (warned about now, or by :func:`warn_repairs` once the caller has checked the rest:
+    a refused cube then gets its one error line with no notes before it)."""
     repairs = []
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", FITSFixedWarning)
@@ -80,9 +83,14 @@ def build_wcs(header, path) -> tuple[WCS, list[str]]:
     for w in caught:
         if issubclass(w.category, FITSFixedWarning):
             repairs.append(" ".join(str(w.message).split()))
-    for msg in repairs:
-        warnings.warn(f"{os.path.basename(str(path))}: {msg}", HeaderRepairWarning, stacklevel=3)
+    if emit:
+        warn_repairs(repairs, path)
     return wcs, repairs
+
+
+def warn_repairs(repairs, path) -> None:
+    for msg in repairs:
+        warnings.warn(f"{os.path.basename(str(path))}: {msg}", HeaderRepairWarning, stacklevel=4)
 
 
 def _retry_without_rest(header, exc, repairs, path):

@@ -14,7 +14,7 @@ from astropy.wcs.utils import pixel_to_skycoord
 
 from kinemap.spectral.airvac import fits_vacuum_to_air
 from kinemap.errors import KinemapError, KinemapWarning
-from kinemap.io._header import build_wcs, parse_bunit, sha256
+from kinemap.io._header import build_wcs, parse_bunit, sha256, warn_repairs
 from kinemap.io._open import Opened, data_checksum, open_source
 from kinemap.io.beams import Beam, as_beam, check_policy, read_beam
 from kinemap.io._source import FileSource, SourceArray
@@ -124,6 +124,7 @@ class _Axes:
 
     wcs: object
     repairs: list
+    wcslib_repairs: tuple  # warned about once the whole cube has passed the checks
     spec: int
     lon: int
     lat: int
@@ -135,7 +136,7 @@ class _Axes:
 def _axes(opened: Opened) -> _Axes:
     header, name = opened.hdu.header, opened.name
     check_header(header, name)
-    wcs, repairs = build_wcs(header, name)
+    wcs, repairs = build_wcs(header, name, emit=False)
     spec = wcs.wcs.spec
     if spec < 0:
         raise KinemapError(f"{name} has no spectral axis (CTYPE values "
@@ -143,7 +144,8 @@ def _axes(opened: Opened) -> _Axes:
     if not wcs.has_celestial:
         raise KinemapError(f"{name} has no celestial axes (CTYPE values {list(wcs.wcs.ctype)})")
     ctype = wcs.wcs.ctype[spec]
-    return _Axes(wcs=wcs, repairs=repairs, spec=spec, lon=wcs.wcs.lng, lat=wcs.wcs.lat,
+    return _Axes(wcs=wcs, repairs=repairs, wcslib_repairs=tuple(repairs), spec=spec,
+                 lon=wcs.wcs.lng, lat=wcs.wcs.lat,
                  kind=axis_kind(ctype), ctype=ctype,
                  ctype_original=str(header.get(f"CTYPE{spec + 1}", ctype)))
 
@@ -458,6 +460,7 @@ def _read(opened: Opened, *, rest_value, convention, frame, vrange, box, region,
         wcs3d=ax.wcs.sub([ax.lon + 1, ax.lat + 1, ax.spec + 1]).slice((cs, ys, xs)))
     cube = Cube(data=arr[cs, ys, xs], velocity=velocity[cs], spectral=spectral[cs], meta=meta,
                 footprint=footprint, source=source)
+    warn_repairs(ax.wcslib_repairs, opened.name)
     return cube
 
 
