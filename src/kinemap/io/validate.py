@@ -104,8 +104,8 @@ def _walk(fh, size, name) -> None:
         fh.seek(offset)
         head = fh.read(CARD)
         if not head.startswith(b"XTENSION"):
-            if not head.strip(b"\0 "):
-                return  # zero or blank fill after the last HDU: harmless
+            if not head.strip(b"\0 ") and size - offset <= BLOCK:
+                return  # a block of zero or blank fill after the last HDU: harmless
             zero = [f"NAXIS{i}" for i in range(1, (cards.get("NAXIS") or 0) + 1)
                     if cards.get(f"NAXIS{i}") == 0]
             if zero or cards.get("NAXIS") == 0:
