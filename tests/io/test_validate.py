@@ -191,6 +191,13 @@ def test_unparsable_cards_are_named(tmp_path, key, text, match):
         read_cube(path)
 
 
+def test_absurd_beam_given_by_hand_refused(tmp_path):
+    path = _cube(tmp_path)
+    with pytest.raises(KinemapError, match=r"\(--beam\) is 100000 deg, larger than the sky; "
+                       "give --beam"):
+        read_cube(path, beam="100000deg")
+
+
 def test_time_keywords_checked_only_for_a_frame_change(tmp_path):
     path = _cube(tmp_path, SPECSYS="TOPOCENT", MJD__OBS="abc", OBSGEO__X=-1.6e6,
                  OBSGEO__Y=-5.0e6, OBSGEO__Z=3.5e6)

@@ -75,8 +75,11 @@ def read_map(path, *, unit=None, like: SkyMap | None = None, name: str = "map") 
         warnings.simplefilter("ignore", FITSFixedWarning)
         try:
             wcs = WCS(header)
-        except (ValueError, KeyError) as exc:
-            raise KinemapError(f"the WCS of {path} cannot be read: {str(exc).splitlines()[0]}") from None
+        except Exception as exc:  # wcslib's errors: ValueError and its own subclasses
+            from kinemap.io.validate import wcs_error_reason
+
+            raise KinemapError(f"the WCS of {path} cannot be read: {wcs_error_reason(exc)}; "
+                               "fix the axis keywords it names") from None
     if not wcs.has_celestial:
         raise KinemapError(f"{path} has no celestial axes; give a sky map with RA/Dec axes")
     data = np.asarray(hdu.data, dtype=np.float64).squeeze()

@@ -491,18 +491,19 @@ def check_beam(beam, *, name, pixel_deg, shape_yx, source="BMAJ/BMIN") -> None:
         return
     major = beam.major.to_value(u.deg)
     minor = beam.minor.to_value(u.deg)
+    fix = ("give --beam as a FWHM such as '46arcsec'" if source == "--beam" else
+           "fix BMAJ/BMIN (degrees) or give --beam")
     if not (math.isfinite(major) and math.isfinite(minor)):
-        raise KinemapError(f"{name}: the beam ({source}) is not finite; fix it or give --beam")
+        raise KinemapError(f"{name}: the beam ({source}) is not finite; {fix}")
     if major > 180:
         raise KinemapError(f"{name}: the beam major axis ({source}) is {major:.6g} deg, larger "
-                           "than the sky; fix BMAJ/BMIN (degrees) or give --beam")
+                           f"than the sky; {fix}")
     if pixel_deg and math.isfinite(pixel_deg) and pixel_deg > 0:
         extent = max(shape_yx) * pixel_deg
         if major > 10 * extent:
             raise KinemapError(
                 f"{name}: the beam ({source}, {major * 3600:.6g} arcsec) is over ten times the "
-                f"map's width ({extent * 3600:.6g} arcsec); fix BMAJ/BMIN (degrees) or give "
-                "--beam")
+                f"map's width ({extent * 3600:.6g} arcsec); {fix}")
         if major > extent:
             warnings.warn(f"{name}: the beam ({major * 3600:.4g} arcsec) is wider than the "
                           f"map ({extent * 3600:.4g} arcsec); spatial results will be one "
