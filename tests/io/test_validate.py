@@ -90,8 +90,8 @@ STRUCTURE = [
     ("bitpix_7", lambda r: _set_card(r, "BITPIX", 7), r"BITPIX = 7 .*8, 16, 32, 64, -32, -64"),
     ("bitpix_wrong", lambda r: _set_card(r, "BITPIX", -64), r"cut short.*BITPIX -64"),
     ("bitpix_short", lambda r: _set_card(r, "BITPIX", 16), r"not a FITS extension.*BITPIX 16"),
-    ("naxis1_zero", lambda r: _set_card(r, "NAXIS1", 0), r"NAXIS1 = 0 says .* no data"),
-    ("naxis_zero", lambda r: _set_card(r, "NAXIS", 0), r"NAXIS = 0 says .* no data"),
+    ("naxis1_zero", lambda r: _set_card(r, "NAXIS1", 0), r"NAXIS1 = 0 in the primary header says there are no data"),
+    ("naxis_zero", lambda r: _set_card(r, "NAXIS", 0), r"NAXIS = 0 .*says there are no data"),
     ("no_naxis2", lambda r: _blank_card(r, "NAXIS2"), r"NAXIS = 3 but no NAXIS2"),
     ("no_bitpix", lambda r: _blank_card(r, "BITPIX"), r"has no BITPIX"),
     ("longer", lambda r: r + b"\x01" * BLOCK, r"not a FITS extension: the data are longer"),
@@ -117,7 +117,7 @@ def test_huge_claim_refused_from_the_headers_alone(tmp_path):
         fh.truncate(4 * 2**30)
     tracemalloc.start()
     try:
-        with pytest.raises(KinemapError, match="NAXIS = 0 says"):
+        with pytest.raises(KinemapError, match="NAXIS = 0 .*says there are no data"):
             read_cube(str(path))
         peak = tracemalloc.get_traced_memory()[1]
     finally:

@@ -67,16 +67,18 @@ def check_file(path) -> None:
     except OSError as exc:
         _fail(name, f"cannot read the file ({exc.strerror}); check the path and its permissions")
     if stat.S_ISDIR(st.st_mode):
-        _fail(name, "is a folder, not a FITS file; give the path of a FITS cube")
+        raise KinemapError(f"{name} is a folder, not a FITS file; give the path of a FITS cube")
     if not stat.S_ISREG(st.st_mode):
         kind = ("a named pipe" if stat.S_ISFIFO(st.st_mode) else
                 "a device" if stat.S_ISCHR(st.st_mode) or stat.S_ISBLK(st.st_mode) else
                 "a socket" if stat.S_ISSOCK(st.st_mode) else "a special file")
-        _fail(name, f"is {kind}, not a regular file; copy the cube into a FITS file first")
+        raise KinemapError(f"{name} is {kind}, not a regular file; copy the cube into a FITS "
+                           "file first")
     if not os.access(path, os.R_OK):
-        _fail(name, "is not readable (permission denied); check the file's permissions")
+        raise KinemapError(f"{name} is not readable (permission denied); check the file's "
+                           "permissions")
     if st.st_size == 0:
-        _fail(name, "is empty (0 bytes); give a FITS cube")
+        raise KinemapError(f"{name} is empty (0 bytes); give a FITS cube")
     if compression(path):
         return  # astropy decompresses it; the sizes are checked on the decompressed bytes
     with open(path, "rb") as fh:
@@ -110,9 +112,9 @@ def _walk(fh, size, name) -> None:
                     if cards.get(f"NAXIS{i}") == 0]
             if zero or cards.get("NAXIS") == 0:
                 what = f"{zero[0]} = 0" if zero else "NAXIS = 0"
-                _fail(name, f"{what} says {where} has no data, yet {size - offset} bytes "
-                            f"follow it; fix {zero[0] if zero else 'NAXIS'} (the cube's "
-                            "axis lengths)")
+                _fail(name, f"{what} in {where} says there are no data, yet "
+                            f"{size - offset} bytes follow; fix {zero[0] if zero else 'NAXIS'} "
+                            "(the cube's axis lengths)")
             _fail(name, f"{size - offset} bytes follow the last HDU and are not a FITS "
                         f"extension: the data are longer than {where} says "
                         f"({_shape_text(cards)}); check BITPIX and NAXISn")
