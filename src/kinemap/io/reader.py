@@ -205,6 +205,8 @@ def _data_view(opened: Opened, ax: _Axes) -> _Data:
         raw = _in_memory(opened, raw_shape)
     elif plain:
         raw = opened.hdu.data  # a memory map: lazy through squeeze/transpose/slicing views
+        if raw is None:
+            raise KinemapError(f"{name}: the cube HDU holds no data")
     else:
         raw = _compressed_array(opened, raw_shape)
     arr = raw.squeeze(axis=drop) if drop else raw
