@@ -210,3 +210,14 @@ def test_cli_moments_identical_to_the_plain_cube(tmp_path, kind):
     for k, ref in maps["plain"].items():
         assert np.isfinite(ref).any()
         np.testing.assert_allclose(maps[kind][k], ref, rtol=1e-6, atol=1e-9, equal_nan=True)
+
+
+def test_cut_short_archive_is_named(tmp_path):
+    from kinemap.errors import KinemapError
+
+    path, _ = _archive(tmp_path, "gz")
+    raw = open(path, "rb").read()
+    cut = tmp_path / "cut.fits.gz"
+    cut.write_bytes(raw[: len(raw) // 2])
+    with pytest.raises(KinemapError, match="gzip stream ends early: the file is cut short"):
+        read_cube(str(cut))

@@ -31,10 +31,33 @@ def open_fits(path):
         try:
             hdul = fits.open(path, memmap=True, mode="readonly", lazy_load_hdus=False)
         except (OSError, ValueError, TypeError, EOFError) as exc:
-            reason = " ".join(str(exc).split())[:200] or type(exc).__name__
+            reason = _archive_damage(path) or " ".join(str(exc).split())[:200] or \
+                type(exc).__name__
             raise KinemapError(f"{os.path.basename(path)} is not a readable FITS file "
                                f"({reason}); give a FITS cube") from None
     return hdul
+
+
+def _archive_damage(path) -> str | None:
+    """For a gzip/bzip2 file astropy refused: what is wrong with the compressed stream."""
+    import bz2
+    import gzip
+
+    from kinemap.io.validate import compression
+
+    kind = compression(path)
+    if kind is None:
+        return None
+    opener = gzip.open if kind == "gzip" else bz2.open
+    try:
+        with opener(path, "rb") as fh:
+            while fh.read(1 << 24):
+                pass
+    except EOFError:
+        return f"the {kind} stream ends early: the file is cut short, copy it again"
+    except OSError as exc:
+        return f"the {kind} stream is damaged ({exc})"
+    return None
 
 
 def find_cube_hdu(hdul, path, hdu_index=None):

@@ -223,7 +223,15 @@ def _in_memory(opened: Opened, raw_shape):
                    f"decompresses the whole cube into memory ({nbytes / 2**20:.3g} MB as "
                    "stored, more once scaled to floats) before kinemap reads it; decompress "
                    "the file first to read it block by block within --max-memory")
-    raw = opened.hdu.data
+    try:
+        raw = opened.hdu.data
+    except (EOFError, OSError, ValueError, TypeError) as exc:
+        if not opened.archive:
+            raise
+        from kinemap.io._header import _archive_damage
+
+        reason = _archive_damage(opened.path) or " ".join(str(exc).split())[:200]
+        raise KinemapError(f"{opened.name}: the cube's data cannot be read ({reason})") from None
     if raw is None:
         raise KinemapError(f"{opened.name}: the cube HDU holds no data")
     raw = np.asarray(raw)
