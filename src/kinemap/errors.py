@@ -10,6 +10,7 @@ __all__ = [
     "KinemapError",
     "KinemapWarning",
     "HeaderRepairWarning",
+    "HeaderWarning",
     "MissingUnitWarning",
     "BeamWarning",
     "NoiseWarning",
@@ -29,6 +30,10 @@ class KinemapWarning(UserWarning):
 
 class HeaderRepairWarning(KinemapWarning):
     """astropy/wcslib changed the header on reading (the original is kept and reported)."""
+
+
+class HeaderWarning(KinemapWarning):
+    """The header is usable but something in it looks wrong (a value to check)."""
 
 
 class MissingUnitWarning(KinemapWarning):

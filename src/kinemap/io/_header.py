@@ -11,22 +11,53 @@ from astropy.wcs import WCS, FITSFixedWarning
 
 from kinemap.errors import HeaderRepairWarning, KinemapError, MissingUnitWarning
 
-__all__ = ["open_fits", "find_cube_hdu", "find_image_hdu_2d", "build_wcs", "parse_bunit",
+__all__ = ["open_fits", "find_cube_hdu", "find_image_hdu_2d", "build_wcs", "warn_repairs",
+           "parse_bunit",
            "sha256"]
 
 
 def open_fits(path):
-    """Open ``path`` read-only with memory mapping; one clear error if it is not a FITS file."""
+    """Open ``path`` read-only with memory mapping, after :func:`validate.check_file` has
+    refused special files and broken structure; one clear error if astropy still cannot."""
+    from kinemap.io.validate import check_file
+
     path = os.fspath(path)
-    if not os.path.exists(path):
+    if not os.path.lexists(path):
         raise KinemapError(f"input file not found: {path}; check the path")
-    if os.path.isdir(path):
-        raise KinemapError(f"input {path} is a folder, not a FITS file")
-    try:
-        hdul = fits.open(path, memmap=True, mode="readonly", lazy_load_hdus=False)
-    except (OSError, ValueError, TypeError):
-        raise KinemapError(f"{path} is not a readable FITS file; give a FITS cube") from None
+    check_file(path)
+    # astropy's own notes on a file it then refuses would precede our one line: hold them
+    with warnings.catch_warnings(record=True):
+        warnings.simplefilter("always")
+        try:
+            hdul = fits.open(path, memmap=True, mode="readonly", lazy_load_hdus=False)
+        except (OSError, ValueError, TypeError, EOFError) as exc:
+            reason = _archive_damage(path) or " ".join(str(exc).split())[:200] or \
+                type(exc).__name__
+            raise KinemapError(f"{os.path.basename(path)} is not a readable FITS file "
+                               f"({reason}); give a FITS cube") from None
     return hdul
+
+
+def _archive_damage(path) -> str | None:
+    """For a gzip/bzip2 file astropy refused: what is wrong with the compressed stream."""
+    import bz2
+    import gzip
+
+    from kinemap.io.validate import compression
+
+    kind = compression(path)
+    if kind is None:
+        return None
+    opener = gzip.open if kind == "gzip" else bz2.open
+    try:
+        with opener(path, "rb") as fh:
+            while fh.read(1 << 24):
+                pass
+    except EOFError:
+        return f"the {kind} stream ends early: the file is cut short, copy it again"
+    except OSError as exc:
+        return f"the {kind} stream is damaged ({exc})"
+    return None
 
 
 def find_cube_hdu(hdul, path, hdu_index=None):
@@ -61,21 +92,28 @@ def find_image_hdu_2d(hdul, path):
     raise KinemapError(f"{path} holds no image; give a 2D FITS map")
 
 
-def build_wcs(header, path) -> tuple[WCS, list[str]]:
-    """Build the WCS, capturing wcslib's automatic fixes as a list of repair messages."""
+def build_wcs(header, path, *, emit: bool = True) -> tuple[WCS, list[str]]:
+    """Build the WCS, capturing wcslib's automatic fixes as a list of repair messages
+    (warned about now, or by :func:`warn_repairs` once the caller has checked the rest:
+    a refused cube then gets its one error line with no notes before it)."""
     repairs = []
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", FITSFixedWarning)
         try:
             wcs = WCS(header)
-        except (ValueError, MemoryError, KeyError) as exc:
+        except Exception as exc:  # wcslib's errors: ValueError and its own subclasses
             wcs = _retry_without_rest(header, exc, repairs, path)
     for w in caught:
         if issubclass(w.category, FITSFixedWarning):
             repairs.append(" ".join(str(w.message).split()))
-    for msg in repairs:
-        warnings.warn(f"{os.path.basename(str(path))}: {msg}", HeaderRepairWarning, stacklevel=3)
+    if emit:
+        warn_repairs(repairs, path)
     return wcs, repairs
+
+
+def warn_repairs(repairs, path) -> None:
+    for msg in repairs:
+        warnings.warn(f"{os.path.basename(str(path))}: {msg}", HeaderRepairWarning, stacklevel=4)
 
 
 def _retry_without_rest(header, exc, repairs, path):
@@ -84,8 +122,12 @@ def _retry_without_rest(header, exc, repairs, path):
     Such an axis is read as linear in optical velocity instead (exact at the reference
     channel, the usual approximation); the repair is recorded.
     """
+    from kinemap.io.validate import wcs_error_reason
+
     if "rest frequency" not in str(exc).lower():
-        raise KinemapError(f"the WCS of {path} cannot be read: {str(exc).splitlines()[0]}") from None
+        raise KinemapError(f"the WCS of {path} cannot be read: {wcs_error_reason(exc)}; fix "
+                           "the axis keywords (CTYPE, CUNIT, CRVAL, CDELT, CRPIX, PC) it "
+                           "names") from None
     header = header.copy()
     for key in list(header.keys()):
         if key.startswith("CTYPE") and str(header[key]).upper().startswith("FELO"):
@@ -102,9 +144,10 @@ def _retry_without_rest(header, exc, repairs, path):
         warnings.simplefilter("ignore", FITSFixedWarning)
         try:
             return WCS(header)
-        except (ValueError, KeyError) as exc2:
+        except Exception as exc2:
             raise KinemapError(
-                f"the WCS of {path} cannot be read: {str(exc2).splitlines()[0]}") from None
+                f"the WCS of {path} cannot be read: {wcs_error_reason(exc2)}; fix the axis "
+                "keywords it names") from None
 
 
 def parse_bunit(header, override=None) -> tuple[u.UnitBase, bool]:

@@ -37,6 +37,7 @@ class Opened:
     name: str
     path: str | None = None
     owned: bool = False
+    archive: str | None = None  # 'gzip' or 'bzip2': no block reads from the file
 
     def close(self):
         if self.owned:
@@ -54,7 +55,10 @@ def open_source(source, *, hdu=None) -> Opened:
         except BaseException:
             hdul.close()
             raise
-        return Opened(hdul, cube_hdu, os.path.basename(path), path=path, owned=True)
+        from kinemap.io.validate import compression
+
+        return Opened(hdul, cube_hdu, os.path.basename(path), path=path, owned=True,
+                      archive=compression(path))
     if isinstance(source, fits.HDUList):
         name = os.path.basename(source.filename() or "") or "in-memory HDUList"
         return Opened(source, find_cube_hdu(source, name, hdu), name)

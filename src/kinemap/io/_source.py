@@ -10,11 +10,11 @@ through a fresh memory map per block instead, which is dropped after the copy.
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
-__all__ = ["FileSource"]
+__all__ = ["FileSource", "SourceArray"]
 
 _NATIVE = "<" if np.little_endian else ">"
 
@@ -62,6 +62,15 @@ class FileSource:
         return values
 
     @property
+    def scaled(self) -> bool:
+        return np.dtype(self.dtype).kind != "f" or self.bscale != 1.0 or self.bzero != 0.0
+
+    def out_dtype(self):
+        """float32 for unscaled 4-byte floats, float64 for everything else."""
+        src = np.dtype(self.dtype)
+        return np.dtype(np.float32 if src.itemsize == 4 and not self.scaled else np.float64)
+
+    @property
     def standard(self) -> bool:
         return tuple(self.order) == (0, 1, 2)
 
@@ -74,8 +83,8 @@ class FileSource:
         for kernels that swap the bytes themselves while they load the data.
         """
         src = np.dtype(self.dtype)
-        scaled = src.kind != "f" or self.bscale != 1.0 or self.bzero != 0.0
-        out_dtype = dtype or (np.float32 if src.itemsize == 4 and not scaled else np.float64)
+        scaled = self.scaled
+        out_dtype = dtype or self.out_dtype()
         y0, y1 = self.rows[0] + ys.start, self.rows[0] + ys.stop
         c0, c1 = self.channels
         x0, x1 = self.cols
@@ -96,7 +105,7 @@ class FileSource:
                         view = memoryview(out[k]).cast("B")
                         got = os.preadv(fd, [view], start)
                         if got != view.nbytes:
-                            raise OSError(f"short read from {self.path}")
+                            _short_read(self.path)
                     if src.byteorder not in ("=", "|") and src.byteorder != _NATIVE:
                         if not swap and dtype is None:
                             return out.view(out.dtype.newbyteorder())
@@ -105,6 +114,8 @@ class FileSource:
                 for k, c in enumerate(range(c0, c1)):
                     start = self.offset + (c * nraw_y + y0) * rowbytes
                     buf = os.pread(fd, (y1 - y0) * rowbytes, start)
+                    if len(buf) != (y1 - y0) * rowbytes:
+                        _short_read(self.path)
                     plane = np.frombuffer(buf, dtype=src).reshape(y1 - y0, nraw_x)
                     out[k] = self._scale(plane[:, x0:x1])
             finally:
@@ -117,3 +128,56 @@ class FileSource:
             return np.ascontiguousarray(self._scale(arr), dtype=out_dtype)
         finally:
             del mm
+
+
+def _short_read(path):
+    from kinemap.errors import KinemapError
+
+    raise KinemapError(f"{os.path.basename(path)}: the file ended before the cube's data did "
+                       "(it was cut short or changed while kinemap read it); copy it again")
+
+
+class SourceArray:
+    """The whole (spectral, y, x) cube of a :class:`FileSource` as an array dask can slice.
+
+    Every ``__getitem__`` is an independent read (its own file descriptor, ``os.pread``):
+    no file handle or position is shared between threads, so threaded and prefetching
+    schedulers get the same values as a serial read.  Scaled integers (BSCALE/BZERO/BLANK)
+    come back as float64 with BLANK as NaN.
+    """
+
+    def __init__(self, source: FileSource):
+        self.source = source
+        self.shape = tuple(b - a for a, b in (source.channels, source.rows, source.cols))
+        self.ndim = 3
+        self.dtype = source.out_dtype()
+
+    def __getitem__(self, item):
+        if not isinstance(item, tuple):
+            item = (item,)
+        item = item + (slice(None),) * (3 - len(item))
+        bounds, post, squeeze = [], [], []
+        for axis, (key, n) in enumerate(zip(item, self.shape)):
+            if isinstance(key, slice):
+                start, stop, step = key.indices(n)
+                # the bounding range, read forwards; the step (reversed too) is applied after
+                bounds.append((start, max(stop, start)) if step > 0 else (stop + 1, start + 1))
+                post.append(slice(None, None, step))
+            else:
+                k = int(key) + (n if int(key) < 0 else 0)
+                bounds.append((k, k + 1))
+                post.append(slice(None))
+                squeeze.append(axis)
+        if any(hi <= lo for lo, hi in bounds):
+            out = np.empty([max(hi - lo, 0) for lo, hi in bounds], dtype=self.dtype)
+        else:
+            src = self.source
+            sub = replace(src, channels=_shift(src.channels, bounds[0]),
+                          rows=_shift(src.rows, bounds[1]), cols=_shift(src.cols, bounds[2]))
+            out = sub.read(slice(0, bounds[1][1] - bounds[1][0]))
+        out = out[tuple(post)]
+        return out.squeeze(axis=tuple(squeeze)) if squeeze else out
+
+
+def _shift(extent, bounds):
+    return (extent[0] + bounds[0], extent[0] + bounds[1])

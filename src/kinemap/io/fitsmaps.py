@@ -59,7 +59,10 @@ def product_header(meta, *, unit, description: str, key: str, options: dict | No
         h["BPA"] = (meta.beam.pa.to_value(u.deg), "[deg] beam position angle")
     h["ORIGIN"] = (f"kinemap {__version__}", "software that made this file")
     h["DATE"] = (datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S"), "UTC creation time")
-    h["KMINPUT"] = (meta.source[:60], "input cube file name")
+    # FITS cards hold printable ASCII only: other characters of a file name are escaped
+    # (Python's unicode_escape, reversible); a long name continues on CONTINUE cards
+    h["KMINPUT"] = (str(meta.source).encode("unicode_escape").decode("ascii"),
+                    "input cube file name")
     if meta.checksum:
         h["KMSHA256"] = meta.checksum  # 64 hex digits leave no room for a comment
     h["KMCTYPE"] = (meta.ctype_original, "spectral CTYPE of the input, as written")

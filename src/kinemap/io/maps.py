@@ -13,6 +13,7 @@ from kinemap.errors import KinemapError
 from kinemap.io._header import find_image_hdu_2d, open_fits, parse_bunit, sha256
 from kinemap.io.beams import read_beam
 from kinemap.io.cube import CubeMeta
+from kinemap.spectral.axes import SPECTRAL_CTYPES
 from kinemap.spectral.frames import normalise_frame
 
 __all__ = ["SkyMap", "read_map", "is_2d_image"]
@@ -28,16 +29,36 @@ class SkyMap:
 
 
 def is_2d_image(path) -> bool:
-    """True when the first image HDU of ``path`` has exactly two axes longer than one."""
+    """True when no image HDU of ``path`` holds a cube: no spectral axis (by CTYPE) longer
+    than one channel and no HDU with three axes longer than one.  A 2D primary HDU in front
+    of a cube in an extension is therefore a cube, as :func:`read_cube` reads it; a
+    one-channel cube is a 2D image (which :func:`read_map` refuses unless it is a map of
+    the unit asked for)."""
     hdul = open_fits(path)
     try:
-        for hdu in hdul:
-            if getattr(hdu, "is_image", False) and hdu.header.get("NAXIS", 0) >= 2:
-                n = [hdu.header.get(f"NAXIS{i + 1}", 1) for i in range(hdu.header["NAXIS"])]
-                return sum(k > 1 for k in n) == 2
-        return False
+        images = [h for h in hdul if getattr(h, "is_image", False)
+                  and h.header.get("NAXIS", 0) >= 2]
+        return bool(images) and not any(_holds_cube(h.header) for h in images)
     finally:
         hdul.close()
+
+
+def _holds_cube(header) -> bool:
+    naxis = int(header.get("NAXIS", 0))
+    lengths = [int(header.get(f"NAXIS{i}", 1)) for i in range(1, naxis + 1)]
+    spectral = [n for i, n in enumerate(lengths, 1)
+                if str(header.get(f"CTYPE{i}", "")).strip().upper()[:4] in SPECTRAL_CTYPES]
+    return any(n > 1 for n in spectral) or sum(n > 1 for n in lengths) >= 3
+
+
+def _one_channel_hint(header) -> str:
+    naxis = int(header.get("NAXIS", 0))
+    for i in range(1, naxis + 1):
+        if (str(header.get(f"CTYPE{i}", "")).strip().upper()[:4] in SPECTRAL_CTYPES
+                and header.get(f"NAXIS{i}") == 1):
+            return (f" (it is a cube with one channel, NAXIS{i} = 1: a cube needs several "
+                    "channels)")
+    return ""
 
 
 def read_map(path, *, unit=None, like: SkyMap | None = None, name: str = "map") -> SkyMap:
@@ -54,8 +75,11 @@ def read_map(path, *, unit=None, like: SkyMap | None = None, name: str = "map") 
         warnings.simplefilter("ignore", FITSFixedWarning)
         try:
             wcs = WCS(header)
-        except (ValueError, KeyError) as exc:
-            raise KinemapError(f"the WCS of {path} cannot be read: {str(exc).splitlines()[0]}") from None
+        except Exception as exc:  # wcslib's errors: ValueError and its own subclasses
+            from kinemap.io.validate import wcs_error_reason
+
+            raise KinemapError(f"the WCS of {path} cannot be read: {wcs_error_reason(exc)}; "
+                               "fix the axis keywords it names") from None
     if not wcs.has_celestial:
         raise KinemapError(f"{path} has no celestial axes; give a sky map with RA/Dec axes")
     data = np.asarray(hdu.data, dtype=np.float64).squeeze()
@@ -69,6 +93,11 @@ def read_map(path, *, unit=None, like: SkyMap | None = None, name: str = "map") 
         bunit, missing = u.Unit(unit), False
     else:
         bunit, missing = parse_bunit(header, None)
+        if unit is not None and not missing and not bunit.is_equivalent(u.Unit(unit)):
+            raise KinemapError(
+                f"{os.path.basename(path)} has BUNIT {bunit.to_string()!r}, so it is not a "
+                f"{name} (in {u.Unit(unit).to_string()}){_one_channel_hint(header)}; give a "
+                f"{name} or a spectral-line cube")
     if like is not None and data.shape != like.data.shape:
         raise KinemapError(f"{name} {path} has shape {data.shape}, the velocity map "
                            f"{like.data.shape}; give maps on the same pixel grid")

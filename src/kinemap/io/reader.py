@@ -3,7 +3,6 @@ from __future__ import annotations
 
 import os
 import warnings
-import weakref
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
@@ -15,10 +14,10 @@ from astropy.wcs.utils import pixel_to_skycoord
 
 from kinemap.spectral.airvac import fits_vacuum_to_air
 from kinemap.errors import KinemapError, KinemapWarning
-from kinemap.io._header import build_wcs, parse_bunit, sha256
+from kinemap.io._header import build_wcs, parse_bunit, sha256, warn_repairs
 from kinemap.io._open import Opened, data_checksum, open_source
 from kinemap.io.beams import Beam, as_beam, check_policy, read_beam
-from kinemap.io._source import FileSource
+from kinemap.io._source import FileSource, SourceArray
 from kinemap.io.cube import Cube, CubeMeta
 from kinemap.spectral.frames import change_frame, normalise_frame
 from kinemap.spectral.catalogue import (
@@ -26,6 +25,9 @@ from kinemap.spectral.catalogue import (
 )
 from kinemap.spectral.axes import axis_kind, check_convention, to_velocity
 from kinemap.io.subset import channel_range, parse_box, region_footprint
+from kinemap.io.validate import (
+    check_beam, check_beam_table, check_header, check_time_keywords, check_velocity_axis
+)
 
 __all__ = ["read_cube"]
 
@@ -34,25 +36,12 @@ _BITPIX = {8: "u1", 16: ">i2", 32: ">i4", 64: ">i8", -32: ">f4", -64: ">f8"}
 _WARNED: set = set()
 
 
-class _SectionArray:
-    """An HDU's lazy ``section`` with the array attributes dask asks for."""
-
-    def __init__(self, section, shape):
-        self.section, self.shape, self.ndim = section, tuple(shape), len(shape)
-        self.dtype = np.asarray(section[(slice(0, 1),) * self.ndim]).dtype
-
-    def __getitem__(self, item):
-        return np.asarray(self.section[item])
-
-
-def _warn_not_memmapped(path, why):
-    """Once per file and session: this cube is read through astropy, not memory-mapped."""
+def _warn_once(path, message):
+    """Once per file and session: how this file's data are read and what it costs."""
     if path in _WARNED:
         return
     _WARNED.add(path)
-    warnings.warn(f"{os.path.basename(path)} holds {why} data, which cannot be memory-mapped; "
-                  "blocks are decoded as they are read (slower than a plain float cube)",
-                  KinemapWarning, stacklevel=3)
+    warnings.warn(message, KinemapWarning, stacklevel=4)
 
 # hashlib releases the GIL, so the input's checksum is computed while the stages run.
 _CHECKSUMS = ThreadPoolExecutor(max_workers=1, thread_name_prefix="kinemap-sha256")
@@ -144,6 +133,7 @@ class _Axes:
 
     wcs: object
     repairs: list
+    wcslib_repairs: tuple  # warned about once the whole cube has passed the checks
     spec: int
     lon: int
     lat: int
@@ -154,7 +144,8 @@ class _Axes:
 
 def _axes(opened: Opened) -> _Axes:
     header, name = opened.hdu.header, opened.name
-    wcs, repairs = build_wcs(header, name)
+    check_header(header, name)
+    wcs, repairs = build_wcs(header, name, emit=False)
     spec = wcs.wcs.spec
     if spec < 0:
         raise KinemapError(f"{name} has no spectral axis (CTYPE values "
@@ -162,7 +153,8 @@ def _axes(opened: Opened) -> _Axes:
     if not wcs.has_celestial:
         raise KinemapError(f"{name} has no celestial axes (CTYPE values {list(wcs.wcs.ctype)})")
     ctype = wcs.wcs.ctype[spec]
-    return _Axes(wcs=wcs, repairs=repairs, spec=spec, lon=wcs.wcs.lng, lat=wcs.wcs.lat,
+    return _Axes(wcs=wcs, repairs=repairs, wcslib_repairs=tuple(repairs), spec=spec,
+                 lon=wcs.wcs.lng, lat=wcs.wcs.lat,
                  kind=axis_kind(ctype), ctype=ctype,
                  ctype_original=str(header.get(f"CTYPE{spec + 1}", ctype)))
 
@@ -181,11 +173,16 @@ class _Data:
     blank: object
     compressed: bool
     memmapped: bool
-    keep_open: object = None
 
 
 def _data_view(opened: Opened, ax: _Axes) -> _Data:
-    """Drop length-1 extra axes (Stokes) and order the values as (spectral, lat, lon)."""
+    """Drop length-1 extra axes (Stokes) and order the values as (spectral, lat, lon).
+
+    Plain float data on disk are memory-mapped; scaled or integer data on disk are read
+    through a :class:`SourceArray` (independent ``os.pread`` calls, so threads never share
+    a file position); tile-compressed HDUs through a fresh astropy handle per read; gzip or
+    bzip2 files are decompressed into memory once (astropy cannot read them in parts).
+    """
     header, name, wcs = opened.hdu.header, opened.name, ax.wcs
     naxis = wcs.naxis
     shape_wcs = [int(header.get(f"NAXIS{i + 1}", 1)) for i in range(naxis)]
@@ -196,48 +193,102 @@ def _data_view(opened: Opened, ax: _Axes) -> _Data:
                 "kinemap reads one Stokes plane: cut the cube to one plane first")
     bscale = float(header.get("BSCALE", 1.0))
     bzero = float(header.get("BZERO", 0.0))
+    raw_dtype = _BITPIX.get(int(header.get("BITPIX", 0)))
     compressed = isinstance(opened.hdu, fits.CompImageHDU)
-    on_disk = opened.path is not None
-    memmapped = on_disk and not (compressed or bscale != 1.0 or bzero != 0.0)
+    on_disk = opened.path is not None and not opened.archive
+    plain = (on_disk and not compressed and bscale == 1.0 and bzero == 0.0
+             and raw_dtype is not None and "f" in raw_dtype)
     raw_shape = tuple(int(header[f"NAXIS{naxis - i}"]) for i in range(naxis))
-    keep_open = None
+    np_axis = {i: naxis - 1 - i for i in range(naxis)}  # numpy order reverses the WCS order
+    drop = tuple(np_axis[i] for i in range(naxis) if i not in (ax.spec, ax.lon, ax.lat))
+    keep = sorted(np_axis[i] for i in (ax.spec, ax.lon, ax.lat))
+    pos = {a: k for k, a in enumerate(keep)}
+    order = (pos[np_axis[ax.spec]], pos[np_axis[ax.lat]], pos[np_axis[ax.lon]])
+    view = _Data(arr=None, raw_shape=raw_shape, raw_dtype=raw_dtype, drop=drop, order=order,
+                 bscale=bscale, bzero=bzero, blank=header.get("BLANK"), compressed=compressed,
+                 memmapped=bool(plain))
+    if on_disk and not plain and not compressed:
+        view.arr = _source_array(opened, view)
+        return view
     if not on_disk:
-        raw = opened.hdu.data  # in memory already (astropy has applied any scaling)
-        if raw is None:
-            raise KinemapError(f"{name}: the cube HDU holds no data")
-        raw = np.asarray(raw)
-    elif memmapped:
+        raw = _in_memory(opened, raw_shape)
+    elif plain:
         raw = opened.hdu.data  # a memory map: lazy through squeeze/transpose/slicing views
         if raw is None:
             raise KinemapError(f"{name}: the cube HDU holds no data")
     else:
-        raw, keep_open = _lazy_section(opened, raw_shape, compressed)
-    np_axis = {i: naxis - 1 - i for i in range(naxis)}  # numpy order reverses the WCS order
-    drop = tuple(np_axis[i] for i in range(naxis) if i not in (ax.spec, ax.lon, ax.lat))
+        raw = _compressed_array(opened, raw_shape)
     arr = raw.squeeze(axis=drop) if drop else raw
-    keep = sorted(np_axis[i] for i in (ax.spec, ax.lon, ax.lat))
-    pos = {a: k for k, a in enumerate(keep)}
-    order = (pos[np_axis[ax.spec]], pos[np_axis[ax.lat]], pos[np_axis[ax.lon]])
-    return _Data(arr=arr.transpose(order), raw_shape=raw_shape,
-                 raw_dtype=_BITPIX.get(int(header.get("BITPIX", 0))), drop=drop, order=order,
-                 bscale=bscale, bzero=bzero, blank=header.get("BLANK"), compressed=compressed,
-                 memmapped=bool(memmapped), keep_open=keep_open)
+    view.arr = arr.transpose(order)
+    return view
 
 
-def _lazy_section(opened: Opened, raw_shape, compressed):
-    """Scaled integers and compressed images cannot be memory-mapped (astropy would scale
-    the whole array into memory on access): read them lazily through the HDU's section.
-    Returns the dask array and the file it keeps open (closed with the cube)."""
-    _warn_not_memmapped(opened.path, "compressed" if compressed else
-                        "scaled integers (BSCALE/BZERO)")
+def _in_memory(opened: Opened, raw_shape):
+    """Data already in memory (astropy has applied any scaling), or an archive file that
+    astropy decompresses whole: its cost in memory is said once."""
+    if opened.archive:
+        nbytes = int(np.prod(raw_shape)) * abs(int(opened.hdu.header.get("BITPIX", 32))) // 8
+        _warn_once(opened.path, f"{opened.name} is {opened.archive}-compressed: astropy "
+                   f"decompresses the whole cube into memory ({nbytes / 2**20:.3g} MB as "
+                   "stored, more once scaled to floats) before kinemap reads it; decompress "
+                   "the file first to read it block by block within --max-memory")
+    try:
+        raw = opened.hdu.data
+    except (EOFError, OSError, ValueError, TypeError) as exc:
+        if not opened.archive:
+            raise
+        from kinemap.io._header import _archive_damage
+
+        reason = _archive_damage(opened.path) or " ".join(str(exc).split())[:200]
+        raise KinemapError(f"{opened.name}: the cube's data cannot be read ({reason})") from None
+    if raw is None:
+        raise KinemapError(f"{opened.name}: the cube HDU holds no data")
+    raw = np.asarray(raw)
+    blank = opened.hdu.header.get("BLANK")
+    if raw.dtype.kind in "iu" and blank is not None:  # astropy keeps BLANK in unscaled ints
+        raw = np.where(raw == blank, np.nan, raw.astype(np.float64))
+    return raw
+
+
+def _source_array(opened: Opened, view: _Data):
+    """Integer or scaled data on disk as a lazy (spectral, y, x) dask array whose every
+    chunk is an independent read of the file (thread-safe; BLANK becomes NaN)."""
     import dask.array as da
 
-    # astropy refuses sections of scaled data from a memory-mapped file: reopen without
+    kept = [n for i, n in enumerate(view.raw_shape) if i not in view.drop]
+    nchan, ny, nx = (kept[k] for k in view.order)
+    full = _file_source(opened, view, slice(0, nchan), slice(0, ny), slice(0, nx))
+    _warn_once(opened.path, f"{opened.name} holds scaled or integer data (BITPIX "
+               f"{opened.hdu.header.get('BITPIX')}, BSCALE {view.bscale:g}, BZERO "
+               f"{view.bzero:g}), which cannot be memory-mapped; values are decoded to "
+               "float64 as blocks are read")
+    return da.from_array(SourceArray(full), chunks=(-1, 8, -1), asarray=True)
+
+
+class _CompressedSection:
+    """A tile-compressed HDU read through astropy's ``section`` (only the tiles a read
+    touches are decompressed); every read opens its own handle, so threads share none."""
+
+    def __init__(self, path, hdu_index, shape, dtype):
+        self.path, self.hdu_index = path, hdu_index
+        self.shape, self.ndim, self.dtype = tuple(shape), len(shape), np.dtype(dtype)
+
+    def __getitem__(self, item):
+        with fits.open(self.path, memmap=False, mode="readonly") as hdul:
+            return np.asarray(hdul[self.hdu_index].section[item], dtype=self.dtype)
+
+
+def _compressed_array(opened: Opened, raw_shape):
+    import dask.array as da
+
     hdu_index = next(i for i, h in enumerate(opened.hdul) if h is opened.hdu)
-    plain = fits.open(opened.path, memmap=False, mode="readonly")
-    raw = da.from_array(_SectionArray(plain[hdu_index].section, raw_shape),
-                        chunks=(-1,) * (len(raw_shape) - 2) + (8, -1), asarray=True)
-    return raw, plain
+    probe = np.asarray(opened.hdu.section[(slice(0, 1),) * len(raw_shape)])
+    dtype = probe.dtype if probe.dtype.kind == "f" else np.float64
+    _warn_once(opened.path, f"{opened.name} holds a tile-compressed image, which cannot be "
+               "memory-mapped; tiles are decompressed as blocks are read (slower than a plain "
+               "float cube)")
+    section = _CompressedSection(opened.path, hdu_index, raw_shape, dtype)
+    return da.from_array(section, chunks=(-1,) * (len(raw_shape) - 2) + (8, -1), asarray=True)
 
 
 def _line_rest_value(name: str, ax: _Axes) -> u.Quantity:
@@ -284,7 +335,7 @@ def _rest_value(rest_value, ax: _Axes, line=None):
 
 
 def _velocity_axis(ax: _Axes, header, nchan, shape_yx, *, rest_value, convention, frame,
-                   line=None):
+                   line=None, name=""):
     """(spectral coordinates, velocities km/s, rest value, convention, frame)."""
     kind = ax.kind
     spec_wcs = ax.wcs.sub([ax.spec + 1])
@@ -298,7 +349,9 @@ def _velocity_axis(ax: _Axes, header, nchan, shape_yx, *, rest_value, convention
     if not (frame and target != specsys):
         velocity = to_velocity(spectral, convention=conv, rest_value=rest,
                                native_convention=kind.convention)
+        _check_axis(velocity, spectral, ax, rest, name)
         return spectral, velocity, rest, conv, target
+    check_time_keywords(header, name)
     if kind.medium == "air":
         raise KinemapError("frame changes of air-wavelength (AWAV) cubes are not supported; "
                            "convert the axis to vacuum wavelength first or drop --frame")
@@ -314,7 +367,14 @@ def _velocity_axis(ax: _Axes, header, nchan, shape_yx, *, rest_value, convention
     physical = change_frame(physical, header=header, target=SkyCoord(centre),
                             from_frame=specsys, to_frame=target)
     ax.repairs.append(f"kinemap converted the spectral frame from {specsys} to {target}")
-    return spectral, to_velocity(physical, convention=conv, rest_value=rest), rest, conv, target
+    velocity = to_velocity(physical, convention=conv, rest_value=rest)
+    _check_axis(velocity, spectral, ax, rest, name)
+    return spectral, velocity, rest, conv, target
+
+
+def _check_axis(velocity, spectral, ax: _Axes, rest, name):
+    check_velocity_axis(velocity, spectral, name=name, ctype=ax.ctype_original, rest=rest,
+                        physical=ax.kind.physical)
 
 
 def _celestial(ax: _Axes):
@@ -330,6 +390,7 @@ def _beam(opened: Opened, ax: _Axes, data: _Data, *, beams, beam):
                                      radio_like=ax.kind.physical != "wavelength" and beam is None)
     arr = data.arr
     if beam_list is not None:
+        check_beam_table(beam_list, arr.shape[0], opened.name)
         if policy == "refuse":
             raise KinemapError(
                 f"{opened.name} has a different beam per channel; rerun with --beams common to "
@@ -341,6 +402,10 @@ def _beam(opened: Opened, ax: _Axes, data: _Data, *, beams, beam):
         if file_beam is not None:
             ax.repairs.append(f"the beam given ({given}) replaces the header's ({file_beam})")
         file_beam = given
+    cel = _celestial(ax)
+    pixel = float(np.sqrt(abs(np.linalg.det(cel.pixel_scale_matrix))))
+    check_beam(file_beam, name=opened.name, pixel_deg=pixel, shape_yx=arr.shape[1:],
+               source="--beam" if beam is not None else "BMAJ/BMIN")
     return arr, file_beam, beam_list is not None
 
 
@@ -373,7 +438,7 @@ def _subset(ax: _Axes, velocity, shape_yx, *, vrange, box, region):
 
 def _file_source(opened: Opened, data: _Data, cs, ys, xs):
     """How to read bands of rows straight from the file (None for in-memory data)."""
-    if opened.path is None or data.compressed or data.raw_dtype is None:
+    if opened.path is None or opened.archive or data.compressed or data.raw_dtype is None:
         return None
     hdu_index = next(i for i, h in enumerate(opened.hdul) if h is opened.hdu)
     blank = data.blank
@@ -394,7 +459,7 @@ def _read(opened: Opened, *, rest_value, convention, frame, vrange, box, region,
     nchan, ny, nx = data.arr.shape
     spectral, velocity, rest, conv, target = _velocity_axis(
         ax, header, nchan, (ny, nx), rest_value=rest_value, convention=convention, frame=frame,
-        line=line)
+        line=line, name=opened.name)
     arr, beam_value, per_channel = _beam(opened, ax, data, beams=beams, beam=beam)
     bunit_value, bunit_missing = parse_bunit(header, bunit)
     cs, ys, xs, footprint, subset = _subset(ax, velocity, (ny, nx), vrange=vrange, box=box,
@@ -414,8 +479,7 @@ def _read(opened: Opened, *, rest_value, convention, frame, vrange, box, region,
         wcs3d=ax.wcs.sub([ax.lon + 1, ax.lat + 1, ax.spec + 1]).slice((cs, ys, xs)))
     cube = Cube(data=arr[cs, ys, xs], velocity=velocity[cs], spectral=spectral[cs], meta=meta,
                 footprint=footprint, source=source)
-    if data.keep_open is not None:  # a lazily decoded file stays open while the cube lives
-        weakref.finalize(cube, data.keep_open.close)
+    warn_repairs(ax.wcslib_repairs, opened.name)
     return cube
 
 

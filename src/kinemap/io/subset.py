@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import os
+import warnings
 
 import numpy as np
 
@@ -56,11 +57,19 @@ def region_footprint(path, wcs, shape_yx) -> np.ndarray:
 
     if not os.path.exists(path):
         raise KinemapError(f"region file not found: {path}")
+    if not os.path.isfile(path):
+        raise KinemapError(f"region file {path} is not a regular file (a folder or a pipe?); "
+                           "give a DS9 or CRTF region file")
     fmt = "crtf" if open(path, errors="replace").read(200).lstrip().startswith("#CRTF") else "ds9"
-    try:
-        regs = regions.Regions.read(path, format=fmt)
-    except Exception as exc:  # regions raises many types for bad files
-        raise KinemapError(f"could not read region file {path} as {fmt.upper()}: {exc}") from None
+    # regions' notes on a file it then refuses would precede the one error line
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            regs = regions.Regions.read(path, format=fmt)
+        except Exception as exc:  # regions raises many types for bad files
+            reason = " ".join(str(exc).split())[:200]
+            raise KinemapError(f"could not read region file {path} as {fmt.upper()}: "
+                               f"{reason}") from None
     if len(regs) == 0:
         raise KinemapError(f"region file {path} holds no regions")
     include = [r for r in regs if r.meta.get("include", True) not in (False, 0)]
