@@ -5,6 +5,7 @@ This is the only place (with :mod:`.outdir`) that writes files.  It takes a list
 """
 from __future__ import annotations
 
+import re
 import time
 import warnings
 from pathlib import Path
@@ -76,38 +77,104 @@ def write_products(folder, meta, products, *, options: dict, timings: dict,
     """
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
-    if plots:  # matplotlib costs a third of a second to import: only when plotting
-        from kinemap.plotting.maps import plot_map, save
     t0 = time.perf_counter()
-    written = {}
-    figure_list = {}
-    for p in products:
-        if p.is_table:
-            name = f"{p.key}.ecsv"
-            p.data.meta["description"] = p.description
-            p.data.write(folder / name, format="ascii.ecsv", overwrite=True)
-        else:
-            arr = np.asarray(p.data)
-            name = f"{p.key}.fits"
-            header = product_header(p.meta or meta, unit=p.unit, description=p.description, key=p.key,
-                                    options=options, ndim=arr.ndim, extra=p.extra_header,
-                                    wcs=p.wcs)
-            write_fits(folder / name, arr, header)
-            if plots and p.plot and arr.ndim == 2:
-                with warnings.catch_warnings():
-                    warnings.simplefilter("ignore")
-                    fig = plot_map(arr, meta, title=p.description, unit=p.unit, kind=p.kind,
-                                   center=center)
-                    save(fig, folder / f"{p.key}.png")
-                figure_list[p.key] = {"path": f"{p.key}.png", "description": p.description}
-        written[p.key] = {"path": name, "unit": p.unit, "description": p.description}
-    for key, (fig, description) in (figures or {}).items():
-        if plots:
-            save(fig, folder / f"{key}.png")
-            figure_list[key] = {"path": f"{key}.png", "description": description}
+    written, figure_list = {}, {}
+    with _PngWriter(plots) as png:
+        for p in products:
+            written[p.key] = _write_product(folder, meta, p, options, center, png, figure_list)
+        for key, (fig, description) in (figures or {}).items():
+            if png.enabled:
+                png.submit(_figure_png, fig, folder / f"{key}.png")
+                figure_list[key] = {"path": f"{key}.png", "description": description}
     timings = dict(timings)
     timings["export"] = time.perf_counter() - t0
     doc = build_manifest(meta, written, timings=timings, options=options, figures=figure_list,
                          summary=summary, execution=execution)
     write_json(folder / "manifest.json", doc)
     return doc
+
+
+def _write_product(folder, meta, p, options, center, png, figure_list) -> dict:
+    """Write one product's file (and queue its map PNG); its manifest entry."""
+    if p.is_table:
+        name = f"{p.key}.ecsv"
+        p.data.meta["description"] = p.description
+        p.data.write(folder / name, format="ascii.ecsv", overwrite=True)
+    else:
+        arr = np.asarray(p.data)
+        name = f"{p.key}.fits"
+        header = product_header(p.meta or meta, unit=p.unit, description=p.description, key=p.key,
+                                options=options, ndim=arr.ndim, extra=p.extra_header,
+                                wcs=p.wcs)
+        write_fits(folder / name, arr, header)
+        if png.enabled and p.plot and arr.ndim == 2:
+            png.submit(_map_png, arr, meta, p, center, folder / f"{p.key}.png")
+            figure_list[p.key] = {"path": f"{p.key}.png", "description": p.description}
+    return {"path": name, "unit": p.unit, "description": p.description}
+
+
+def _map_png(arr, meta, product, center, path):
+    from kinemap.plotting.maps import plot_map, save
+
+    fig = plot_map(arr, meta, title=product.description, unit=product.unit, kind=product.kind,
+                   center=center)
+    save(fig, path)
+
+
+def _figure_png(fig, path):
+    from kinemap.plotting.maps import save
+
+    save(fig, path)
+
+
+class _PngWriter:
+    """Draws and saves PNGs on worker threads while the caller goes on writing FITS files.
+
+    Each job draws its own matplotlib Figure with the object API on an Agg canvas (no
+    pyplot state), which matplotlib supports on any thread (fonts are cached per thread);
+    the PNGs are byte for byte those drawn one after the other.  FITS writes and PNG
+    compression release the GIL, so the threads overlap them with drawing.  Leaving the
+    block waits for every PNG and raises the first error.
+
+    Warnings: the PNG code's were always silenced; the warnings filter is global, not
+    per thread, so all warnings of the block are recorded and, at its end, those not
+    raised by plotting code are issued again (the FITS writes' warnings still show).
+    """
+
+    WORKERS = 2
+    _PLOTTING = re.compile(r"[/\\](matplotlib|pyparsing|PIL|wcsaxes|plotting)[/\\]")
+
+    def __init__(self, enabled: bool):
+        self.enabled = bool(enabled)
+        self._pool, self._jobs, self._warnings, self._caught = None, [], None, []
+
+    def __enter__(self):
+        if self.enabled:
+            from concurrent.futures import ThreadPoolExecutor
+
+            self._warnings = warnings.catch_warnings(record=True)
+            self._caught = self._warnings.__enter__()
+            warnings.simplefilter("always")
+            self._pool = ThreadPoolExecutor(self.WORKERS, thread_name_prefix="kinemap-png")
+        return self
+
+    def submit(self, fn, *args):
+        self._jobs.append(self._pool.submit(fn, *args))
+
+    def __exit__(self, *exc):
+        if self._pool is None:
+            return False
+        try:
+            for job in self._jobs:
+                if exc[0] is None:
+                    job.result()
+                else:
+                    job.cancel()
+        finally:
+            self._pool.shutdown(wait=True)
+            self._warnings.__exit__(None, None, None)
+        for w in self._caught:
+            if not self._PLOTTING.search(w.filename or ""):
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno,
+                                       source=w.source)
+        return False

@@ -16,6 +16,7 @@ from matplotlib.colors import BoundaryNorm, ListedColormap
 from matplotlib.figure import Figure
 from matplotlib.patches import Ellipse
 
+from kinemap.plotting._frame import reuse_frame
 from kinemap.status import Status
 
 __all__ = ["plot_map", "CMAPS"]
@@ -91,8 +92,10 @@ def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float
     lat.set_axislabel(_axis_label(meta.wcs, 1))
     wrapped = textwrap.fill(title, 60)
     ax.set_title(wrapped, fontsize=10 if len(title) > 60 else None)
-    _layout(fig, cb, (tuple(figsize), kind == "status", wrapped.count("\n"), bool(label),
-                      tuple(meta.wcs.wcs.ctype), np.shape(data), _wcs_key(meta.wcs)))
+    key = (tuple(figsize), kind == "status", wrapped.count("\n"), bool(label),
+           tuple(meta.wcs.wcs.ctype), np.shape(data), _wcs_key(meta.wcs))
+    _layout(fig, cb, key)
+    reuse_frame(ax, key)
     return fig
 
 
