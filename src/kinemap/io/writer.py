@@ -128,20 +128,22 @@ def _figure_png(fig, path):
 
 
 class _PngWriter:
-    """Draws and saves PNGs on worker threads while the caller goes on writing FITS files.
+    """Draws and saves PNGs on a worker thread while the caller goes on writing FITS files.
 
     Each job draws its own matplotlib Figure with the object API on an Agg canvas (no
     pyplot state), which matplotlib supports on any thread (fonts are cached per thread);
     the PNGs are byte for byte those drawn one after the other.  FITS writes and PNG
-    compression release the GIL, so the threads overlap them with drawing.  Leaving the
-    block waits for every PNG and raises the first error.
+    compression release the GIL, so the thread overlaps them with drawing.  One thread
+    only: two drawing at once failed now and then in mathtext (the tick labels' degree
+    signs), whose parser keeps global state.  Leaving the block waits for every PNG and
+    raises the first error.
 
     Warnings: the PNG code's were always silenced; the warnings filter is global, not
     per thread, so all warnings of the block are recorded and, at its end, those not
     raised by plotting code are issued again (the FITS writes' warnings still show).
     """
 
-    WORKERS = 2
+    WORKERS = 1
     _PLOTTING = re.compile(r"[/\\](matplotlib|pyparsing|PIL|wcsaxes|plotting)[/\\]")
 
     def __init__(self, enabled: bool):

@@ -104,6 +104,7 @@ def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float
 # which cost as much as drawing the PNG itself; maps of one cube share those labels, so
 # the first figure of a kind measures and the others reuse its margins.
 _TEMPLATES: dict = {}
+_RIGHT_STEP = 0.1  # inches
 
 
 def _wcs_key(wcs):
@@ -132,6 +133,10 @@ def _layout(fig, cb, key):
     pars, right_px = template
     fig.subplots_adjust(**pars)
     shift = (cb.ax.get_tightbbox(renderer).x1 - right_px) / (fig.get_figwidth() * fig.dpi)
+    # in whole steps of _RIGHT_STEP inches, rounded towards more room: maps whose colour
+    # bar labels differ a little share the axes box, and so the frame picture (_frame.py)
+    step = _RIGHT_STEP / fig.get_figwidth()
+    shift = np.ceil(shift / step - 1e-6) * step
     if abs(shift) > 1e-4:
         fig.subplots_adjust(right=pars["right"] - shift)
 
