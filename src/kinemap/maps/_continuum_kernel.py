@@ -3,13 +3,13 @@
 The numpy version formed the normal equations of every spectrum of a block with
 three-operand ``einsum`` and solved them with ``np.linalg.solve`` and ``inv`` on the
 stack, and kept iterating the clipping of the whole block until its last spectrum
-settled; most of a moments run went there.  Here each spectrum is copied once to
-contiguous float64, then fitted and clipped on its own until its channels stop changing
-(at most ``iterations`` times, the same sequence of fits as before, as a spectrum's
-clipping never depends on its neighbours), with a Cholesky solve of the small normal
-matrix (degree <= 5, x scaled to [-1, 1], so it is well conditioned).  Accumulation is
-float64, as before; results agree with the numpy version to float rounding
-(``tests/maps/test_continuum_kernel.py``).
+settled; most of a moments run went there.  Here each row of spectra is copied once to
+contiguous float64 (reading along x), then each spectrum is fitted and clipped on its
+own until its channels stop changing (at most ``iterations`` times: the same sequence of
+fits as before, as a spectrum's clipping never depends on its neighbours), with a
+Cholesky solve of the small normal matrix (degree <= 5, x scaled to [-1, 1], so it is
+well conditioned).  Accumulation is float64, as before; results agree with a numpy
+least-squares loop to float rounding (``tests/maps/test_continuum_kernel.py``).
 """
 from __future__ import annotations
 
@@ -132,7 +132,11 @@ def continuum_kernel(block, free, a, ref, clip, iterations, min_n, subtract,
     nchan, rows, nx = block.shape
     ncoef = a.shape[1]
     for r in numba.prange(rows):
-        x = np.empty(nchan)
+        # the row's spectra as contiguous float64 rows, read along x (unit stride)
+        spectra = np.empty((nx, nchan))
+        for c in range(nchan):
+            for i in range(nx):
+                spectra[i, c] = block[c, r, i]
         base = np.empty(nchan, np.bool_)
         w = np.empty(nchan, np.bool_)
         m = np.empty((ncoef, ncoef))
@@ -140,10 +144,9 @@ def continuum_kernel(block, free, a, ref, clip, iterations, min_n, subtract,
         coef = np.empty(ncoef)
         inv = np.empty((ncoef, ncoef))
         for i in range(nx):
+            x = spectra[i]
             for c in range(nchan):
-                v = np.float64(block[c, r, i])
-                x[c] = v
-                base[c] = free[c] and np.isfinite(v)
+                base[c] = free[c] and np.isfinite(x[c])
             s, n = _fit_clipped(x, base, a, clip, iterations, min_n, w, m, rhs, coef, inv)
             s2 = s * s
             lev = 0.0
