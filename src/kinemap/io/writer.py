@@ -6,6 +6,7 @@ This is the only place (with :mod:`.outdir`) that writes files.  It takes a list
 from __future__ import annotations
 
 import re
+import threading
 import time
 import warnings
 from pathlib import Path
@@ -16,7 +17,7 @@ from kinemap.io.fitsmaps import product_header, write_fits
 from kinemap.io.manifest import build_manifest, write_json
 from kinemap.io.outdir import StagedOutput
 
-__all__ = ["write_products", "write_results"]
+__all__ = ["write_products", "write_results", "warm_up_plots"]
 
 
 def write_results(results, folder, *, overwrite: bool = False, plots: bool = True,
@@ -113,6 +114,34 @@ def _write_product(folder, meta, p, options, center, png, figure_list) -> dict:
     return {"path": name, "unit": p.unit, "description": p.description}
 
 
+_WARM_UP = None  # the thread started by warm_up_plots, joined before the first PNG
+
+
+def warm_up_plots():
+    """Import the plotting stack and build matplotlib's mathtext parser on a background
+    thread, so that cost (about a second) overlaps the computing stages, whose compiled
+    kernels and reads release the GIL.  Call at the start of a run that will draw PNGs;
+    the writer waits for it before its first PNG (mathtext's parser is not thread-safe)."""
+    global _WARM_UP
+    if _WARM_UP is None:
+        _WARM_UP = threading.Thread(target=_warm, name="kinemap-plot-warm-up", daemon=True)
+        _WARM_UP.start()
+
+
+def _warm():
+    try:
+        from importlib import import_module
+
+        for name in ("astropy.visualization.wcsaxes", "kinemap.plotting.maps"):
+            import_module(name)
+        from matplotlib.font_manager import FontProperties
+        from matplotlib.mathtext import MathTextParser
+
+        MathTextParser("agg").parse(r"$10^\circ15^\prime$", dpi=120, prop=FontProperties())
+    except Exception:  # noqa: BLE001 - only a head start: the PNG jobs import for real
+        pass
+
+
 def _map_png(arr, meta, product, center, path):
     from kinemap.plotting.maps import plot_map, save
 
@@ -153,6 +182,9 @@ class _PngWriter:
     def __enter__(self):
         if self.enabled:
             from concurrent.futures import ThreadPoolExecutor
+
+            if _WARM_UP is not None:
+                _WARM_UP.join()
 
             self._warnings = warnings.catch_warnings(record=True)
             self._caught = self._warnings.__enter__()

@@ -17,7 +17,7 @@ from kinemap.io.maps import read_map
 from kinemap.io.outdir import check_output_dir
 from kinemap.io.reader import read_cube
 from kinemap.io.subset import select_channels
-from kinemap.io.writer import write_results
+from kinemap.io.writer import warm_up_plots, write_results
 from kinemap.maps.continuum import line_window_range, subtract_continuum
 from kinemap.maps.masks import make_mask
 from kinemap.maps.moments import compute_moments, noise_and_moments
@@ -279,6 +279,8 @@ def run_config(cfg: dict, *, stage_dir=None) -> RunState:
     out = cfg["output"]
     if stage_dir is None:
         check_output_dir(out["dir"], overwrite=out["overwrite"])
+    if out["plots"]:
+        warm_up_plots()  # imports matplotlib beside the computing stages
     with open_client(scheduler=cfg["run"]["scheduler"], workers=cfg["run"]["workers"]) as client:
         state = _run_stages(cfg, client)
     state.manifest = write_results(
