@@ -56,3 +56,15 @@ def test_frame_picture_holds_the_ticks_and_labels(tmp_path, monkeypatch):
     rows, cols = np.flatnonzero(ink.any(axis=1)), np.flatnonzero(ink.any(axis=0))
     assert np.ptp(rows) > 200 and np.ptp(cols) > 200
     assert ink.mean() < 0.5  # a frame, not a filled picture
+
+
+def test_a_style_change_draws_a_new_frame(tmp_path, monkeypatch):
+    import matplotlib
+
+    meta = _meta(tmp_path)
+    monkeypatch.setattr(_frame, "_PICTURES", {})
+    _png(np.zeros((48, 40)), meta, reuse=True)
+    with matplotlib.rc_context({"xtick.labelsize": 14}):
+        _png(np.zeros((48, 40)), meta, reuse=True)
+    sizes = sorted(rgba.shape for _, _, rgba in _frame._PICTURES.values())
+    assert len(sizes) == 2 and sizes[0] != sizes[1]  # larger labels, a larger picture

@@ -10,13 +10,15 @@ pastes that picture where the frame would be drawn: in the frame's place in the 
 
 Only the frame is reused; the image, colour bar, title and patches are drawn for each map.
 The caller names what the frame depends on besides the axes box (``key``); the axes box
-in pixels and the dpi are added here, as the colour bar's width moves the box.
+in pixels, the dpi and matplotlib's font, axes and tick settings are added here (the
+colour bar's width moves the box).
 """
 from __future__ import annotations
 
 import threading
 from functools import partial
 
+import matplotlib
 import numpy as np
 from matplotlib.backends.backend_agg import RendererAgg
 
@@ -40,10 +42,20 @@ def reuse_frame(ax, key) -> None:
     artist.draw = partial(_draw_picture, ax, key)
 
 
+_STYLE_KEYS = tuple(k for k in matplotlib.rcParams if k.startswith(
+    ("font.", "text.", "mathtext.", "axes.", "xtick.", "ytick.", "grid.")))
+
+
+def _style():
+    """The matplotlib settings the frame's look depends on (a user may change them
+    between two writes in one session)."""
+    params = dict.__getitem__  # the stored values, without rcParams' per-key checks
+    return hash(tuple(repr(params(matplotlib.rcParams, k)) for k in _STYLE_KEYS))
+
+
 def _full_key(ax, key, renderer):
     box = ax.get_position(original=False)  # after the aspect was applied by Axes.draw
-    fig_w, fig_h = renderer.width, renderer.height
-    return (key, fig_w, fig_h, float(renderer.dpi),
+    return (key, renderer.width, renderer.height, float(renderer.dpi), _style(),
             tuple(round(v, 6) for v in (box.x0, box.y0, box.width, box.height)))
 
 
