@@ -7,7 +7,8 @@ STAMP := $(VENV)/.installed
 .PHONY: setup demo test bench clean
 
 # setup compiles the numba fitting kernels once (about 40 s, a message says so) into
-# __pycache__ beside the sources; it is skipped when they are cached already.
+# ~/.cache/kinemap/<version>/numba (kinemap/_kernel_cache.py; NUMBA_CACHE_DIR overrides);
+# it is quick when they are cached already, also after a re-install of the same version.
 
 setup: $(STAMP)
 

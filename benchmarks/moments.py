@@ -39,7 +39,7 @@ cube.linewidth_sigma().write(out + "/m2.fits", overwrite=True)
 
 
 def load() -> str:
-    return f"load {os.getloadavg()[0]:.2f}"
+    return "load " + " ".join(f"{x:.2f}" for x in os.getloadavg())
 
 
 def timed(cmd):
@@ -55,7 +55,7 @@ def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--size", type=int, default=512)
     ap.add_argument("--nchan", type=int, default=256)
-    ap.add_argument("--repeat", type=int, default=2)
+    ap.add_argument("--repeat", type=int, default=3)
     args = ap.parse_args()
     bindir = os.path.dirname(sys.executable)
     with tempfile.TemporaryDirectory() as tmp:

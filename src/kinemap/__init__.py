@@ -21,12 +21,17 @@ east of north to the receding side, ...) are in README.md.  Errors a user can ca
 :class:`KinemapError`; warnings derive from :class:`KinemapWarning`.
 
 The functions are imported on first use, so ``import kinemap`` stays cheap for the
-command line.
+command line.  Importing kinemap sets ``NUMBA_CACHE_DIR`` (unless set) to a per-user,
+per-version folder for the compiled kernels (:mod:`kinemap._kernel_cache`).
 """
 from importlib import import_module
 
+from kinemap._kernel_cache import use_user_cache
 from kinemap._version import __version__
 from kinemap.errors import KinemapError, KinemapWarning
+
+# compiled kernels are cached per user and version, so a re-install does not recompile
+use_user_cache(__version__)
 
 # public name -> module that defines it (imported on first access, PEP 562)
 _API = {

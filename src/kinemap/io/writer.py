@@ -5,6 +5,8 @@ This is the only place (with :mod:`.outdir`) that writes files.  It takes a list
 """
 from __future__ import annotations
 
+import re
+import threading
 import time
 import warnings
 from pathlib import Path
@@ -16,7 +18,7 @@ from kinemap.io.fitsmaps import product_header, write_fits
 from kinemap.io.manifest import build_manifest, write_json
 from kinemap.io.outdir import StagedOutput, writing_into
 
-__all__ = ["write_products", "write_results", "empty_products"]
+__all__ = ["write_products", "write_results", "empty_products", "warm_up_plots"]
 
 
 def _has_finite(p) -> bool | None:
@@ -130,37 +132,17 @@ def write_products(folder, meta, products, *, options: dict, timings: dict,
     """
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
-    if plots:  # matplotlib costs a third of a second to import: only when plotting
-        from kinemap.plotting.maps import plot_map, save, save_pages
     t0 = time.perf_counter()
-    written = {}
-    figure_list = {}
-    for p in products:
-        if p.is_table:
-            name = f"{p.key}.ecsv"
-            p.data.meta["description"] = p.description
-            p.data.write(folder / name, format="ascii.ecsv", overwrite=True)
-        else:
-            arr = np.asarray(p.data)
-            name = f"{p.key}.fits"
-            header = product_header(p.meta or meta, unit=p.unit, description=p.description, key=p.key,
-                                    options=options, ndim=arr.ndim, extra=p.extra_header,
-                                    wcs=p.wcs)
-            write_fits(folder / name, arr, header)
-            if plots and p.plot and arr.ndim == 2:
-                with warnings.catch_warnings():
-                    warnings.simplefilter("ignore")
-                    fig = plot_map(arr, meta, title=p.description, unit=p.unit, kind=p.kind,
-                                   center=center)
-                    save(fig, folder / f"{p.key}.png")
-                figure_list[p.key] = {"path": f"{p.key}.png", "description": p.description}
-        written[p.key] = {"path": name, "unit": p.unit, "description": p.description}
-    for key, (fig, description) in (figures or {}).items():
-        if plots:
-            # a list of figures is a document of pages: one multi-page PDF
-            name = f"{key}.pdf" if isinstance(fig, (list, tuple)) else f"{key}.png"
-            (save_pages if isinstance(fig, (list, tuple)) else save)(fig, folder / name)
-            figure_list[key] = {"path": name, "description": description}
+    written, figure_list = {}, {}
+    with _PngWriter(plots) as png:
+        for p in products:
+            written[p.key] = _write_product(folder, meta, p, options, center, png, figure_list)
+        for key, (fig, description) in (figures or {}).items():
+            if png.enabled:
+                # a list of figures is a document of pages: one multi-page PDF
+                name = f"{key}.pdf" if isinstance(fig, (list, tuple)) else f"{key}.png"
+                png.submit(_figure_png, fig, folder / name)
+                figure_list[key] = {"path": name, "description": description}
     timings = dict(timings)
     timings["export"] = time.perf_counter() - t0
     doc = build_manifest(meta, written, timings=timings, options=options, figures=figure_list,
@@ -171,3 +153,122 @@ def write_products(folder, meta, products, *, options: dict, timings: dict,
         doc["empty_products"] = empty
     write_json(folder / "manifest.json", doc)
     return doc
+
+
+def _write_product(folder, meta, p, options, center, png, figure_list) -> dict:
+    """Write one product's file (and queue its map PNG); its manifest entry."""
+    if p.is_table:
+        name = f"{p.key}.ecsv"
+        p.data.meta["description"] = p.description
+        p.data.write(folder / name, format="ascii.ecsv", overwrite=True)
+    else:
+        arr = np.asarray(p.data)
+        name = f"{p.key}.fits"
+        header = product_header(p.meta or meta, unit=p.unit, description=p.description, key=p.key,
+                                options=options, ndim=arr.ndim, extra=p.extra_header,
+                                wcs=p.wcs)
+        write_fits(folder / name, arr, header)
+        if png.enabled and p.plot and arr.ndim == 2:
+            png.submit(_map_png, arr, meta, p, center, folder / f"{p.key}.png")
+            figure_list[p.key] = {"path": f"{p.key}.png", "description": p.description}
+    return {"path": name, "unit": p.unit, "description": p.description}
+
+
+_WARM_UP = None  # the thread started by warm_up_plots, joined before the first PNG
+
+
+def warm_up_plots():
+    """Import the plotting stack and build matplotlib's mathtext parser on a background
+    thread, so that cost (about a second) overlaps the computing stages, whose compiled
+    kernels and reads release the GIL.  Call at the start of a run that will draw PNGs;
+    the writer waits for it before its first PNG (mathtext's parser is not thread-safe)."""
+    global _WARM_UP
+    if _WARM_UP is None:
+        _WARM_UP = threading.Thread(target=_warm, name="kinemap-plot-warm-up", daemon=True)
+        _WARM_UP.start()
+
+
+def _warm():
+    try:
+        from importlib import import_module
+
+        for name in ("astropy.visualization.wcsaxes", "kinemap.plotting.maps"):
+            import_module(name)
+        from matplotlib.font_manager import FontProperties
+        from matplotlib.mathtext import MathTextParser
+
+        MathTextParser("agg").parse(r"$10^\circ15^\prime$", dpi=120, prop=FontProperties())
+    except Exception:  # noqa: BLE001 - only a head start: the PNG jobs import for real
+        pass
+
+
+def _map_png(arr, meta, product, center, path):
+    from kinemap.plotting.maps import plot_map, save
+
+    fig = plot_map(arr, meta, title=product.description, unit=product.unit, kind=product.kind,
+                   center=center)
+    save(fig, path)
+
+
+def _figure_png(fig, path):
+    from kinemap.plotting.maps import save, save_pages
+
+    (save_pages if isinstance(fig, (list, tuple)) else save)(fig, path)
+
+
+class _PngWriter:
+    """Draws and saves PNGs on a worker thread while the caller goes on writing FITS files.
+
+    Each job draws its own matplotlib Figure with the object API on an Agg canvas (no
+    pyplot state), which matplotlib supports on any thread (fonts are cached per thread);
+    the PNGs are byte for byte those drawn one after the other.  FITS writes and PNG
+    compression release the GIL, so the thread overlaps them with drawing.  One thread
+    only: two drawing at once failed now and then in mathtext (the tick labels' degree
+    signs), whose parser keeps global state.  Leaving the block waits for every PNG and
+    raises the first error.
+
+    Warnings: the PNG code's were always silenced; the warnings filter is global, not
+    per thread, so all warnings of the block are recorded and, at its end, those not
+    raised by plotting code are issued again (the FITS writes' warnings still show).
+    """
+
+    WORKERS = 1
+    _PLOTTING = re.compile(r"[/\\](matplotlib|pyparsing|PIL|wcsaxes|plotting)[/\\]")
+
+    def __init__(self, enabled: bool):
+        self.enabled = bool(enabled)
+        self._pool, self._jobs, self._warnings, self._caught = None, [], None, []
+
+    def __enter__(self):
+        if self.enabled:
+            from concurrent.futures import ThreadPoolExecutor
+
+            if _WARM_UP is not None:
+                _WARM_UP.join()
+
+            self._warnings = warnings.catch_warnings(record=True)
+            self._caught = self._warnings.__enter__()
+            warnings.simplefilter("always")
+            self._pool = ThreadPoolExecutor(self.WORKERS, thread_name_prefix="kinemap-png")
+        return self
+
+    def submit(self, fn, *args):
+        self._jobs.append(self._pool.submit(fn, *args))
+
+    def __exit__(self, *exc):
+        if self._pool is None:
+            return False
+        try:
+            for job in self._jobs:
+                if exc[0] is None:
+                    job.result()
+                else:
+                    job.cancel()
+        finally:
+            self._pool.shutdown(wait=True)
+            self._warnings.__exit__(None, None, None)
+        for w in self._caught:
+            if not self._PLOTTING.search(w.filename or ""):
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno,
+                                       source=w.source)
+        return False

@@ -1,8 +1,8 @@
 """Say so before the fitting kernels compile, instead of sitting silent for ~40 s.
 
-The kernels are compiled by numba on their first call and cached (``cache=True``) in
-``__pycache__`` beside their sources, so only the first fit after an install (or after the
-sources change) pays.  :func:`announce_compile` runs before the first kernel call of a
+The kernels are compiled by numba on their first call and cached (``cache=True``) in the
+per-user, per-version folder :mod:`kinemap._kernel_cache` sets, so only the first fit of a
+version (or after the sources change) pays; re-installing the same version does not.  :func:`announce_compile` runs before the first kernel call of a
 process: when a kernel has neither been compiled in this process nor has a usable cache
 entry, it prints one line to stderr and, on a terminal, the seconds elapsed while numba
 works.  :func:`warm` compiles them on purpose (``make setup`` calls it).
@@ -28,8 +28,8 @@ def _entry_kernels():
 def _cached(dispatcher) -> bool:
     """True when ``dispatcher`` is compiled here or its on-disk cache index has entries.
 
-    numba keeps an index per function whose stamp is the source file's time and size; a
-    stale stamp reads as empty.  This peeks at numba's private cache objects: if they
+    numba keeps an index per function stamped with a hash of the source file's contents;
+    a stale stamp reads as empty.  This peeks at numba's private cache objects: if they
     change shape, assume cached (stay quiet) rather than announce a compile every run.
     """
     if dispatcher.signatures:

@@ -178,56 +178,27 @@ def _design(nchan: int, degree: int) -> np.ndarray:
 
 
 def _continuum_block(block, *, free, degree, clip, iterations, ref, subtract):
-    """Fit (and subtract) the continuum of one block (nchan, rows, nx)."""
+    """Fit (and subtract) the continuum of one block (nchan, rows, nx): the compiled
+    per-spectrum kernel (:mod:`kinemap.maps._continuum_kernel`)."""
+    from kinemap.maps._continuum_kernel import continuum_kernel
+
     nchan, rows, nx = block.shape
-    y = block.reshape(nchan, -1).astype(np.float64)
-    a = _design(nchan, degree)
     ncoef = degree + 1
-    finite = np.isfinite(y)
-    y0 = np.where(finite, y, 0.0)
-    base = free[:, None] & finite
-    w = base
-    for _ in range(iterations):
-        coef, s, n, cov = _weighted_fit(a, w, y0, ncoef)
-        res = y0 - a @ np.nan_to_num(coef)
-        new = base & (np.abs(res) <= clip * np.where(np.isfinite(s), s, np.inf))
-        if np.array_equal(new, w):
-            break
-        w = new
-    coef, s, n, cov = _weighted_fit(a, w, y0, ncoef)
-    aref = a[ref]
-    level = aref @ coef
-    level_err = np.sqrt(np.einsum("k,pkl,l->p", aref, cov, aref))
-    out = {"coef": coef.reshape(ncoef, rows, nx), "level": level.reshape(rows, nx),
-           "level_err": level_err.reshape(rows, nx), "nfree": n.reshape(rows, nx)}
+    out = {"coef": np.empty((ncoef, rows, nx)), "level": np.empty((rows, nx)),
+           "level_err": np.empty((rows, nx)), "nfree": np.empty((rows, nx), np.int32)}
+    slope = np.empty((rows, nx)) if degree >= 1 else np.empty((1, 1))
+    data = (np.empty(block.shape, np.float32) if subtract
+            else np.empty((1, 1, 1), np.float32))
+    if not block.dtype.isnative:
+        block = block.astype(block.dtype.newbyteorder("="))
+    continuum_kernel(block, np.ascontiguousarray(free, dtype=np.bool_), _design(nchan, degree),
+                     int(ref), float(clip), int(iterations), ncoef + MIN_EXTRA, bool(subtract),
+                     out["coef"], out["level"], out["level_err"], out["nfree"], slope, data)
     if degree >= 1:
-        slope_err = np.sqrt(cov[:, 1, 1])
-        out["slope_snr"] = (np.abs(coef[1]) / slope_err).reshape(rows, nx)
+        out["slope_snr"] = slope
     if subtract:
-        model = a @ np.nan_to_num(coef)
-        out["data"] = np.where(finite, y - model, np.nan).astype(np.float32).reshape(block.shape)
+        out["data"] = data
     return out
-
-
-def _weighted_fit(a, w, y0, ncoef):
-    """Least-squares polynomial per spectrum on the channels ``w``: coefficients
-    (ncoef, npix), residual sigma, channels used, and the coefficients' covariance
-    (npix, ncoef, ncoef); NaN where fewer than ncoef + MIN_EXTRA channels remain."""
-    wf = w.astype(np.float64)
-    n = w.sum(axis=0)
-    m = np.einsum("ck,cp,cl->pkl", a, wf, a)
-    rhs = np.einsum("ck,cp->pk", a, wf * y0)
-    ok = n >= ncoef + MIN_EXTRA
-    m[~ok] = np.eye(ncoef)
-    coef = np.linalg.solve(m, rhs[..., None])[..., 0].T
-    res = (y0 - a @ coef) * wf
-    dof = np.maximum(n - ncoef, 1)
-    s = np.sqrt((res ** 2).sum(axis=0) / dof)
-    cov = np.linalg.inv(m) * (s ** 2)[:, None, None]
-    coef[:, ~ok] = np.nan
-    s[~ok] = np.nan
-    cov[~ok] = np.nan
-    return coef, s, n, cov
 
 
 @dataclass(frozen=True)

@@ -19,7 +19,7 @@ from kinemap.io.maps import read_map
 from kinemap.io.outdir import StagedOutput, writing_into
 from kinemap.io.reader import read_cube
 from kinemap.io.subset import select_channels
-from kinemap.io.writer import write_results
+from kinemap.io.writer import warm_up_plots, write_results
 from kinemap.maps.continuum import line_window_range, subtract_continuum
 from kinemap.maps.masks import make_mask
 from kinemap.maps.moments import compute_moments, noise_and_moments
@@ -395,6 +395,8 @@ def run_config(cfg: dict, *, stage_dir=None) -> RunState:
     staged = contextlib.nullcontext(None)
     if stage_dir is None:
         staged = StagedOutput(out["dir"], overwrite=out["overwrite"], inputs=input_paths(cfg))
+    if out["plots"]:
+        warm_up_plots()  # imports matplotlib beside the computing stages
     with staged as stage:
         with open_client(scheduler=cfg["run"]["scheduler"],
                          workers=cfg["run"]["workers"]) as client:

@@ -17,6 +17,7 @@ from matplotlib.colors import BoundaryNorm, ListedColormap
 from matplotlib.figure import Figure
 from matplotlib.patches import Ellipse
 
+from kinemap.plotting._frame import reuse_frame
 from kinemap.status import Status
 
 __all__ = ["plot_map", "CMAPS", "robust_limits", "world_axes", "save", "save_pages"]
@@ -180,8 +181,11 @@ def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float
     # narrower than the image, so a long title never reaches over the colour bar
     wrapped = textwrap.fill(title, 48)
     ax.set_title(wrapped, fontsize=10 if len(title) > 48 else None)
-    _layout(fig, cb, (tuple(figsize), kind if kind in _DISCRETE else "", wrapped.count("\n"), bool(label),
-                      tuple(meta.wcs.wcs.ctype), np.shape(data), _wcs_key(meta.wcs)))
+    # everything the frame (ticks, labels) depends on: maps with one key share one drawing
+    key = (tuple(figsize), kind if kind in _DISCRETE else "", wrapped.count("\n"), bool(label),
+           tuple(meta.wcs.wcs.ctype), np.shape(data), _wcs_key(meta.wcs))
+    _layout(fig, cb, key)
+    reuse_frame(ax, key)
     return fig
 
 
@@ -201,6 +205,7 @@ def world_axes(ax, wcs, *, ticks: int = 4, ylabel: bool = True):
 # which cost as much as drawing the PNG itself; maps of one cube share those labels, so
 # the first figure of a kind measures and the others reuse its margins.
 _TEMPLATES: dict = {}
+_RIGHT_STEP = 0.1  # inches
 
 
 def _wcs_key(wcs):
@@ -229,6 +234,10 @@ def _layout(fig, cb, key):
     pars, right_px = template
     fig.subplots_adjust(**pars)
     shift = (cb.ax.get_tightbbox(renderer).x1 - right_px) / (fig.get_figwidth() * fig.dpi)
+    # in whole steps of _RIGHT_STEP inches, rounded towards more room: maps whose colour
+    # bar labels differ a little share the axes box, and so the frame picture (_frame.py)
+    step = _RIGHT_STEP / fig.get_figwidth()
+    shift = np.ceil(shift / step - 1e-6) * step
     if abs(shift) > 1e-4:
         fig.subplots_adjust(right=pars["right"] - shift)
 
