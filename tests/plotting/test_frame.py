@@ -19,6 +19,10 @@ def _meta(tmp_path):
     return kinemap.read_cube(path).meta
 
 
+# not constant: a constant map is drawn as a note, with no frame
+_RAMP = np.arange(48 * 40.0).reshape(48, 40)
+
+
 def _png(data, meta, *, reuse):
     with pytest.MonkeyPatch.context() as mp:
         if not reuse:
@@ -49,7 +53,7 @@ def test_reused_frame_matches_a_full_drawing(tmp_path, monkeypatch):
 def test_frame_picture_holds_the_ticks_and_labels(tmp_path, monkeypatch):
     meta = _meta(tmp_path)
     monkeypatch.setattr(_frame, "_PICTURES", {})
-    _png(np.zeros((48, 40)), meta, reuse=True)
+    _png(_RAMP, meta, reuse=True)
     (x0, y0, rgba), = _frame._PICTURES.values()
     ink = rgba[..., 3] > 0
     # labels and ticks on the left and at the bottom: ink far apart in both directions
@@ -63,8 +67,8 @@ def test_a_style_change_draws_a_new_frame(tmp_path, monkeypatch):
 
     meta = _meta(tmp_path)
     monkeypatch.setattr(_frame, "_PICTURES", {})
-    _png(np.zeros((48, 40)), meta, reuse=True)
+    _png(_RAMP, meta, reuse=True)
     with matplotlib.rc_context({"xtick.labelsize": 14}):
-        _png(np.zeros((48, 40)), meta, reuse=True)
+        _png(_RAMP, meta, reuse=True)
     sizes = sorted(rgba.shape for _, _, rgba in _frame._PICTURES.values())
     assert len(sizes) == 2 and sizes[0] != sizes[1]  # larger labels, a larger picture

@@ -69,9 +69,23 @@ def _alive(pid: int) -> bool:
     return True
 
 
+def _errno_of(exc: BaseException) -> int | None:
+    """The errno of ``exc`` or of the error it wraps: libraries re-raise an OSError as a
+    new one holding only the old one's text ("[Errno 27] File too large")."""
+    seen = 0
+    while exc is not None and seen < 5:
+        if getattr(exc, "errno", None):
+            return exc.errno
+        m = re.match(r"\[Errno (\d+)\]", str(exc))
+        if m:
+            return int(m.group(1))
+        exc, seen = exc.__cause__ or exc.__context__, seen + 1
+    return None
+
+
 def os_error_message(exc: OSError, where) -> str:
     """One line for an OSError met while writing into ``where``, with the fix."""
-    code = getattr(exc, "errno", None)
+    code = _errno_of(exc)
     name = f"{Path(exc.filename).name} into {where}" if exc.filename else where
     if code in (errno.ENOSPC, errno.EDQUOT):
         return (f"no space left on the device while writing {name}; free some space or choose "
