@@ -35,6 +35,7 @@ __all__ = ["Problem", "fit_params", "covariance", "STEPS"]
 # finite-difference steps (small against any fitted change, large against round-off)
 STEPS = {"x_center": 0.02, "y_center": 0.02, "position_angle": 0.05, "inclination": 0.05,
          "v_sys": 0.1, "v_rot": 0.1, "v_exp": 0.1, "dispersion": 0.05}
+_EXACT = ("v_rot", "dispersion", "v_exp")  # columns from the derivative kernel
 _BOUNDS = {"inclination": (3.0, 88.0), "dispersion": (0.3, 300.0), "v_rot": (-2000.0, 2000.0),
            "v_exp": (-2000.0, 2000.0)}
 
@@ -64,13 +65,16 @@ class Problem:
     def resid(self, cube):
         return self.d - cube[self.idx] * self.w
 
-    def box_column(self, sub, box):
-        """Weighted values of a box cube ``sub`` at the masked voxels (0 outside the box)."""
+    def box_column(self, sub, box, chan0=0):
+        """Weighted values of a box cube ``sub`` (channels from ``chan0``) at the masked
+        voxels (0 outside the box)."""
         ys, xs = box
         c, y, x = self.idx
-        inside = (y >= ys.start) & (y < ys.stop) & (x >= xs.start) & (x < xs.stop)
+        inside = ((y >= ys.start) & (y < ys.stop) & (x >= xs.start) & (x < xs.stop)
+                  & (c >= chan0) & (c < chan0 + sub.shape[0]))
         col = np.zeros(c.size)
-        col[inside] = sub[c[inside], y[inside] - ys.start, x[inside] - xs.start] * self.w[inside]
+        col[inside] = (sub[c[inside] - chan0, y[inside] - ys.start, x[inside] - xs.start]
+                       * self.w[inside])
         return col
 
     def surface_brightness(self, p):
@@ -115,6 +119,43 @@ def _apply(p, free, x, solve_sb, prob):
     return q
 
 
+def _step(x, j, name, hi):
+    h = STEPS.get(name, 1e-3)
+    return h if x[j] + h <= hi[j] else -h
+
+
+def _stepped(x, j, name, hi):
+    xp = x.copy()
+    xp[j] += _step(x, j, name, hi)
+    return xp
+
+
+def _ring_columns(prob, p, free, x, q, k, cols, hi, out):
+    """Jacobian columns of ring k's parameters, on the pixel box and channels ring k can
+    reach: exact derivatives for its kinematics (:meth:`DiskModel.ring_gradients`), finite
+    differences of the ring's own contribution for its geometry.  The surface brightness
+    is held (it is re-solved between steps, not inside the Jacobian)."""
+    model = prob.model
+    box = model.ring_box(q, k)
+    ann = model.annuli(q)
+    window = model.ring_window(ann, k)
+    chan0 = model.window_channels(window)[0]
+    kin = [j for j in cols if free[j][0] in _EXACT]
+    if kin:
+        grads = model.ring_gradients(q, k, box, window,
+                                     expansion=any(free[j][0] == "v_exp" for j in kin))
+        for j in kin:
+            out[:, j] = -prob.box_column(grads[free[j][0]], box, chan0)
+    other = [j for j in cols if free[j][0] not in _EXACT]
+    if other:
+        base, _ = model.render_rings(q, k, box, window, ann)
+        for j in other:
+            qp = _apply(p, free, _stepped(x, j, free[j][0], hi), False, prob)
+            qp["surface_brightness"] = q["surface_brightness"]
+            sub, _ = model.render_rings(qp, k, box, window)
+            out[:, j] = -prob.box_column(sub - base, box, chan0) / _step(x, j, free[j][0], hi)
+
+
 def fit_params(prob: Problem, p: dict, free, *, solve_sb=False, max_nfev=40, base=None):
     """Least-squares fit of the parameters ``free`` (list of (name, ring or None)).
 
@@ -139,19 +180,15 @@ def fit_params(prob: Problem, p: dict, free, *, solve_sb=False, max_nfev=40, bas
             fun(x)
         q, r0 = cache["q"], cache["r"]
         out = np.empty((r0.size, len(free)))
+        by_ring = {}
         for j, (name, k) in enumerate(free):
-            h = STEPS.get(name, 1e-3) * (1 if x[j] + STEPS.get(name, 1e-3) <= hi[j] else -1)
-            xp = x.copy()
-            xp[j] += h
             if k is None:
-                qp = _apply(p, free, xp, solve_sb, prob)
-                out[:, j] = (prob.resid(model.render(qp)) - r0) / h
+                qp = _apply(p, free, _stepped(x, j, name, hi), solve_sb, prob)
+                out[:, j] = (prob.resid(model.render(qp)) - r0) / _step(x, j, name, hi)
             else:
-                qp = _apply(p, free, xp, False, prob)
-                qp["surface_brightness"] = q["surface_brightness"]
-                box = model.ring_box(q, k)
-                diff = model.render_rings(qp, k, box) - model.render_rings(q, k, box)
-                out[:, j] = -prob.box_column(diff, box) / h
+                by_ring.setdefault(k, []).append(j)
+        for k, cols in by_ring.items():
+            _ring_columns(prob, p, free, x, q, k, cols, hi, out)
         cache["J"] = out
         return out
 
