@@ -218,21 +218,21 @@ def _final(prob, p, expansion, max_nfev=30):
     return q, res, J, free
 
 
-def _halves(prob, p, expansion):
+def _halves(prob, p, free, x, J):
+    """v_rot of the approaching and the receding half: each half refitted from the joint
+    solution with the joint Jacobian's rows of that half (:func:`fit3d.chord_fit`)."""
     m = prob.model
-    ny, nx = m.shape[1:]
-    y, x = np.mgrid[0:ny, 0:nx]
+    c, y, xpix = prob.idx
     gx, gy = np.median(p["x_center"]), np.median(p["y_center"])
     pa = np.deg2rad(np.median(p["position_angle"]))
-    east = m.jac[0, 0] * (x - gx) + m.jac[0, 1] * (y - gy)
-    north = m.jac[1, 0] * (x - gx) + m.jac[1, 1] * (y - gy)
+    east = m.jac[0, 0] * (xpix - gx) + m.jac[0, 1] * (y - gy)
+    north = m.jac[1, 0] * (xpix - gx) + m.jac[1, 1] * (y - gy)
     along = east * np.sin(pa) + north * np.cos(pa)  # > 0 on the receding half
     out = []
-    for side in (along < 0, along > 0):
-        sub = prob.restricted(side)
+    for rows in (along < 0, along > 0):
         try:
-            q, *_ = _final(sub, p, expansion, max_nfev=10)  # starts at the joint solution
-            out.append(np.asarray(q["v_rot"]))
+            q = fit3d.chord_fit(prob, p, free, x, J, rows)
+            out.append(np.asarray(q["v_rot"], float))
         except (ValueError, np.linalg.LinAlgError):
             out.append(np.full(m.radii.size, np.nan))
     return out
@@ -343,7 +343,7 @@ def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, di
     f_vexp = err3[2 * n:3 * n] if free_exp else np.full(n, np.nan)
     best = model.render(p)
     timings["stage3"], clock = time.perf_counter() - clock, time.perf_counter()
-    v_app, v_rec = _halves(prob, p, free_exp)
+    v_app, v_rec = _halves(prob, p, free3, res3.x, J3)
     timings["halves"], clock = time.perf_counter() - clock, time.perf_counter()
     if bootstrap:
         f_vrot, f_disp, bs_vexp = _bootstrap(prob, p, best, int(bootstrap), seed, free_exp,

@@ -30,7 +30,7 @@ from scipy.optimize import least_squares, nnls
 from kinemap.rings.disk3d import DiskModel, beam_kernel
 from kinemap.spectral.response import noise_correlation
 
-__all__ = ["Problem", "fit_params", "covariance", "STEPS"]
+__all__ = ["Problem", "fit_params", "chord_fit", "covariance", "STEPS"]
 
 # finite-difference steps (small against any fitted change, large against round-off)
 STEPS = {"x_center": 0.02, "y_center": 0.02, "position_angle": 0.05, "inclination": 0.05,
@@ -156,6 +156,27 @@ def _ring_columns(prob, p, free, x, q, k, cols, hi, out):
             out[:, j] = -prob.box_column(sub - base, box, chan0) / _step(x, j, free[j][0], hi)
 
 
+def _one_ring_resid(prob, p, free):
+    """When every free parameter belongs to one ring k, the residual of a trial is the
+    starting model's plus the change of ring k's own contribution on its pixel box (all
+    channels: the trial may move the emission): a fraction of a whole model.  None
+    otherwise."""
+    rings = {k for _, k in free}
+    if len(rings) != 1 or None in rings:
+        return None
+    (k,) = rings
+    model = prob.model
+    box = model.ring_box(p, k)
+    window = (0, model._nchan_render())
+    r_base = prob.resid(model.render(p))
+    base, chan0 = model.render_rings(p, k, box, window)
+
+    def resid(q):
+        sub, _ = model.render_rings(q, k, box, window)
+        return r_base - prob.box_column(sub - base, box, chan0)
+    return resid
+
+
 def fit_params(prob: Problem, p: dict, free, *, solve_sb=False, max_nfev=40, base=None):
     """Least-squares fit of the parameters ``free`` (list of (name, ring or None)).
 
@@ -168,10 +189,14 @@ def fit_params(prob: Problem, p: dict, free, *, solve_sb=False, max_nfev=40, bas
     hi = np.array([_BOUNDS.get(name, (-np.inf, np.inf))[1] for name, _ in free])
     x0 = np.clip(x0, lo + 1e-6, hi - 1e-6)
     cache = {}
+    resid = _one_ring_resid(prob, p, free) if not solve_sb else None
+    if resid is None:
+        def resid(q):
+            return prob.resid(model.render(q))
 
     def fun(x):
         q = _apply(p, free, x, solve_sb, prob)
-        r = prob.resid(model.render(q))
+        r = resid(q)
         cache.update(x=x.copy(), q=q, r=r)
         return r
 
@@ -189,16 +214,40 @@ def fit_params(prob: Problem, p: dict, free, *, solve_sb=False, max_nfev=40, bas
                 by_ring.setdefault(k, []).append(j)
         for k, cols in by_ring.items():
             _ring_columns(prob, p, free, x, q, k, cols, hi, out)
-        cache["J"] = out
+        cache.update(J=out, Jx=x.copy())
         return out
 
     loss = "linear" if prob.loss == "chi2" else "soft_l1"
     scale = np.array([max(STEPS.get(name, 1e-3) * 20, 1e-3) for name, _ in free])
+    # stop when a step lowers chi^2 by less than 0.1 (the parameters then move by well
+    # under their 1-sigma errors; scipy's ftol is relative to the cost, chi^2 / 2)
+    cost0 = 0.5 * float(np.sum(fun(x0) ** 2))
+    ftol = float(np.clip(0.05 / max(cost0, 1e-30), 1e-10, 1e-4))
     res = least_squares(fun, x0, jac=jac, bounds=(lo, hi), x_scale=scale, loss=loss,
-                        max_nfev=max_nfev, xtol=1e-6, ftol=1e-7, method="trf")
+                        max_nfev=max_nfev, xtol=1e-6, ftol=ftol, method="trf")
     q = _apply(p, free, res.x, solve_sb, prob)
-    J = jac(res.x)
+    # the solver's last Jacobian is at its solution unless it stopped inside a step
+    J = cache["J"] if np.array_equal(cache.get("Jx"), res.x) else jac(res.x)
     return q, res, J
+
+
+def chord_fit(prob: Problem, p: dict, free, x0, J, rows, *, steps=3):
+    """Refit ``free`` on a subset of the voxels (``rows`` of ``prob``'s residual, e.g. one
+    half of the disk) starting from ``x0``, the solution on all voxels: Gauss-Newton steps
+    with the Jacobian ``J`` of the full solution kept fixed (the chord method; it needs
+    one model per step and no new Jacobian, and converges where the subset's solution is
+    near the full one, as the two halves of a disk are).  Returns the parameters."""
+    lo = np.array([_BOUNDS.get(name, (-np.inf, np.inf))[0] for name, _ in free])
+    hi = np.array([_BOUNDS.get(name, (-np.inf, np.inf))[1] for name, _ in free])
+    jr = J[rows]
+    a = jr.T @ jr
+    a += 1e-6 * np.diag(np.diag(a)) + 1e-12 * np.eye(a.shape[0])
+    x = np.asarray(x0, float).copy()
+    for _ in range(steps):
+        q = _apply(p, free, x, False, prob)
+        r = prob.resid(prob.model.render(q))[rows]
+        x = np.clip(x - np.linalg.solve(a, jr.T @ r), lo, hi)
+    return _apply(p, free, x, False, prob)
 
 
 def covariance(prob: Problem, J, resid, *, n_free):
