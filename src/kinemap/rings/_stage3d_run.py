@@ -26,7 +26,7 @@ _UNITS = {"x_center": u.pix, "y_center": u.pix, "position_angle": u.deg, "inclin
 _FIX_NAMES = ("center", "x_center", "y_center", "position_angle", "inclination", "v_sys", "v_exp")
 
 
-def _check(cube, fix, stages, final_geometry, loss, bootstrap):
+def _check(cube, fix, stages, final_geometry, loss, bootstrap, smoothing):
     if not hasattr(cube, "velocity") or np.ndim(getattr(cube, "data", None)) != 3:
         raise KinemapError("the 3D ring fit needs a cube (kinemap.read_cube); for a velocity "
                            "map use fit_rings or --model 2d")
@@ -43,6 +43,10 @@ def _check(cube, fix, stages, final_geometry, loss, bootstrap):
                            f"got {final_geometry!r}")
     if loss not in ("chi2", "absolute"):
         raise KinemapError(f"'loss' must be 'chi2' or 'absolute', got {loss!r}")
+    if smoothing != "auto" and not (isinstance(smoothing, (int, float))
+                                    and np.isfinite(smoothing) and smoothing >= 0):
+        raise KinemapError(f"'smoothing' must be 'auto' or a number >= 0 (0: none), "
+                           f"got {smoothing!r}")
     if int(bootstrap) != bootstrap or bootstrap < 0 or bootstrap == 1:
         raise KinemapError(f"'bootstrap' must be 0 or a whole number >= 2, got {bootstrap!r}")
 
@@ -168,6 +172,17 @@ def _start(r2d, m2, radii, foot, resp_sigma, given_geom):
                 **{k: np.full(radii.size, v) for k, v in geom.items()})
 
 
+def _smooth_weight(smoothing, width, beam):
+    """Weight of the smoothness penalty (:func:`fit3d.smoothness_rows`).  'auto': the
+    square of the beam's correlation between points one ring width apart,
+    rho = exp(-4 ln 2 (width / FWHM)^2) (a Gaussian beam; common practice): 0.25 for
+    rings half a beam wide, where neighbours trade v_rot; 0.004 at one beam, negligible."""
+    if smoothing != "auto":
+        return float(smoothing)
+    rho = np.exp(-4 * np.log(2) * (width / beam) ** 2)
+    return float(rho**2)
+
+
 def _ring_free(n, expansion):
     free = [("v_rot", k) for k in range(n)] + [("dispersion", k) for k in range(n)]
     if expansion:
@@ -210,15 +225,15 @@ def _smooth(mode, radii, geom, errs, glob):
     return out
 
 
-def _final(prob, p, expansion, max_nfev=30):
+def _final(prob, p, expansion, smooth, max_nfev=30):
     """Joint v_rot, dispersion (and v_exp) of every ring with the geometry held."""
     n = prob.model.radii.size
     free = _ring_free(n, expansion)
-    q, res, J = fit3d.fit_params(prob, p, free, max_nfev=max_nfev)
+    q, res, J = fit3d.fit_params(prob, p, free, max_nfev=max_nfev, smooth=smooth)
     return q, res, J, free
 
 
-def _halves(prob, p, free, x, J):
+def _halves(prob, p, free, x, J, penalty):
     """v_rot of the approaching and the receding half: each half refitted from the joint
     solution with the joint Jacobian's rows of that half (:func:`fit3d.chord_fit`)."""
     m = prob.model
@@ -231,14 +246,14 @@ def _halves(prob, p, free, x, J):
     out = []
     for rows in (along < 0, along > 0):
         try:
-            q = fit3d.chord_fit(prob, p, free, x, J, rows)
+            q = fit3d.chord_fit(prob, p, free, x, J, rows, penalty=penalty)
             out.append(np.asarray(q["v_rot"], float))
         except (ValueError, np.linalg.LinAlgError):
             out.append(np.full(m.radii.size, np.nan))
     return out
 
 
-def _bootstrap(prob, p, best, nboot, seed, expansion, noise_sigma, bar):
+def _bootstrap(prob, p, best, nboot, seed, expansion, smooth, noise_sigma, bar):
     rng = np.random.default_rng(seed)
     n = prob.model.radii.size
     samples = []
@@ -246,7 +261,7 @@ def _bootstrap(prob, p, best, nboot, seed, expansion, noise_sigma, bar):
         fake = best + fit3d.correlated_noise(rng, prob.model, np.nan_to_num(noise_sigma))
         sub = fit3d.Problem(prob.model, fake, prob.mask, prob.weight,
                             fake.sum(axis=0) * abs(prob.model.dv), prob.footprint, prob.loss)
-        q, *_ = _final(sub, p, expansion)
+        q, *_ = _final(sub, p, expansion, smooth)
         samples.append(np.r_[q["v_rot"], q["dispersion"], q["v_exp"]])
     arr = np.array(samples)
     std = np.std(arr, axis=0, ddof=1)
@@ -275,12 +290,12 @@ def _fixed(fix):
 
 def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, distance,
             ring_width, radii, fix, stages, final_geometry, bootstrap, seed, expansion,
-            scale_height, loss, channel_response, oversample, progress):
+            scale_height, loss, channel_response, oversample, smoothing, progress):
     """The whole 3D fit (see :func:`kinemap.rings.stage3d.fit_rings_3d`)."""
     from kinemap.rings.stage3d import RingFit3D
 
     fix, stages = tuple(fix or ()), tuple(stages or (1, 2, 3))
-    _check(cube, fix, stages, final_geometry, loss, bootstrap)
+    _check(cube, fix, stages, final_geometry, loss, bootstrap, smoothing)
     resp = check_response(channel_response)
     fixed = _fixed(fix)
     timings, clock = {}, time.perf_counter()
@@ -316,8 +331,10 @@ def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, di
     # stage 1: global geometry with every ring's kinematics
     gfree = [(k, None) for k in GEOM_PARAMS if k not in fixed]
     free1 = gfree + _ring_free(rad.size, expansion and "v_exp" not in fixed)
-    p, res1, J1 = fit3d.fit_params(prob, p, free1, solve_sb=bool(gfree), max_nfev=40)
-    cov1, _ = fit3d.covariance(prob, J1, res1.fun, n_free=len(free1))
+    smooth = _smooth_weight(smoothing, width, np.sqrt(beam[0] * beam[1]))
+    p, res1, J1 = fit3d.fit_params(prob, p, free1, solve_sb=bool(gfree), max_nfev=40,
+                                   smooth=smooth)
+    cov1, _ = fit3d.covariance(prob, J1, res1.fun, n_free=len(free1), penalty=res1.penalty)
     glob = {k: float(np.median(p[k])) for k in GEOM_PARAMS}
     glob_err = {k: np.nan for k in GEOM_PARAMS}
     for j, (name, _) in enumerate(gfree):
@@ -335,19 +352,19 @@ def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, di
 
     # final pass: the errors
     free_exp = expansion and "v_exp" not in fixed
-    p, res3, J3, free3 = _final(prob, p, free_exp)
-    cov3, chi2 = fit3d.covariance(prob, J3, res3.fun, n_free=len(free3))
+    p, res3, J3, free3 = _final(prob, p, free_exp, smooth)
+    cov3, chi2 = fit3d.covariance(prob, J3, res3.fun, n_free=len(free3), penalty=res3.penalty)
     err3 = np.sqrt(np.diag(cov3))
     n = rad.size
     f_vrot, f_disp = err3[:n], err3[n:2 * n]
     f_vexp = err3[2 * n:3 * n] if free_exp else np.full(n, np.nan)
     best = model.render(p)
     timings["stage3"], clock = time.perf_counter() - clock, time.perf_counter()
-    v_app, v_rec = _halves(prob, p, free3, res3.x, J3)
+    v_app, v_rec = _halves(prob, p, free3, res3.x, J3, res3.penalty)
     timings["halves"], clock = time.perf_counter() - clock, time.perf_counter()
     if bootstrap:
         f_vrot, f_disp, bs_vexp = _bootstrap(prob, p, best, int(bootstrap), seed, free_exp,
-                                             noise.sigma, bar)
+                                             smooth, noise.sigma, bar)
         if free_exp:
             f_vexp = bs_vexp
     timings["bootstrap"], clock = time.perf_counter() - clock, time.perf_counter()
@@ -358,6 +375,7 @@ def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, di
                                   bootstrap=int(bootstrap), expansion=bool(expansion),
                                   scale_height_arcsec=h, loss=loss, channel_response=resp,
                                   oversample=int(oversample), ring_width_arcsec=width,
+                                  smoothing=float(smooth),
                                   surface_brightness_normalisation="ring by ring (moment 0, NNLS)")
     timings["model"] = time.perf_counter() - clock
     nfail = int(np.sum(np.asarray(table["status"]) != Status.OK))

@@ -36,6 +36,7 @@ __all__ = ["Problem", "fit_params", "chord_fit", "covariance", "STEPS"]
 STEPS = {"x_center": 0.02, "y_center": 0.02, "position_angle": 0.05, "inclination": 0.05,
          "v_sys": 0.1, "v_rot": 0.1, "v_exp": 0.1, "dispersion": 0.05}
 _EXACT = ("v_rot", "dispersion", "v_exp")  # columns from the derivative kernel
+_SMOOTHED = ("v_rot", "dispersion")  # second differences penalised with 'smooth' 
 _BOUNDS = {"inclination": (3.0, 88.0), "dispersion": (0.3, 300.0), "v_rot": (-2000.0, 2000.0),
            "v_exp": (-2000.0, 2000.0)}
 
@@ -177,11 +178,38 @@ def _one_ring_resid(prob, p, free):
     return resid
 
 
-def fit_params(prob: Problem, p: dict, free, *, solve_sb=False, max_nfev=40, base=None):
+def smoothness_rows(free, J, weight):
+    """Rows P of the smoothness penalty |P x|^2 on the second differences of v_rot and of
+    the dispersion over consecutive free rings (Tikhonov regularisation; common
+    practice).  A second difference is measured in units of the quantity's typical
+    per-ring error from the data alone, 1 / sqrt(median_k (J^T J)_kk), so ``weight`` is
+    the chi^2 a second difference of one such error costs.  Empty when ``weight`` is 0."""
+    rows = []
+    for name in _SMOOTHED:
+        cols = sorted((k, j) for j, (nm, k) in enumerate(free) if nm == name and k is not None)
+        ks = [k for k, _ in cols]
+        if weight <= 0 or len(cols) < 3 or ks != list(range(ks[0], ks[0] + len(ks))):
+            continue
+        js = [j for _, j in cols]
+        info = np.sum(J[:, js] ** 2, axis=0)
+        if not np.any(info > 0):
+            continue
+        scale = np.sqrt(weight * np.median(info[info > 0]))
+        for i in range(len(js) - 2):
+            row = np.zeros(len(free))
+            row[[js[i], js[i + 1], js[i + 2]]] = np.array([1.0, -2.0, 1.0]) * scale
+            rows.append(row)
+    return np.array(rows).reshape(-1, len(free))
+
+
+def fit_params(prob: Problem, p: dict, free, *, solve_sb=False, max_nfev=40, smooth=0.0):
     """Least-squares fit of the parameters ``free`` (list of (name, ring or None)).
 
     Returns (parameters, least_squares result, weighted Jacobian at the solution).
-    ``solve_sb`` re-solves the surface brightness for every trial geometry.
+    ``solve_sb`` re-solves the surface brightness for every trial geometry.  ``smooth``
+    adds the penalty of :func:`smoothness_rows` (scaled by the Jacobian at the start and
+    then held, so the objective is a fixed function); its rows are ``result.penalty``
+    and ``result.fun`` holds the data's residuals only.
     """
     model = prob.model
     x0 = np.array([_get(p, name, k) for name, k in free])
@@ -201,6 +229,8 @@ def fit_params(prob: Problem, p: dict, free, *, solve_sb=False, max_nfev=40, bas
         return r
 
     def jac(x):
+        if np.array_equal(cache.get("Jx"), x):
+            return cache["J"]
         if "x" not in cache or not np.array_equal(cache["x"], x):
             fun(x)
         q, r0 = cache["q"], cache["r"]
@@ -223,38 +253,50 @@ def fit_params(prob: Problem, p: dict, free, *, solve_sb=False, max_nfev=40, bas
     # under their 1-sigma errors; scipy's ftol is relative to the cost, chi^2 / 2)
     cost0 = 0.5 * float(np.sum(fun(x0) ** 2))
     ftol = float(np.clip(0.05 / max(cost0, 1e-30), 1e-10, 1e-4))
-    res = least_squares(fun, x0, jac=jac, bounds=(lo, hi), x_scale=scale, loss=loss,
-                        max_nfev=max_nfev, xtol=1e-6, ftol=ftol, method="trf")
+    pen = smoothness_rows(free, jac(x0), smooth) if smooth > 0 else np.zeros((0, len(free)))
+    ndata = cache["r"].size
+    res = least_squares(lambda x: np.concatenate([fun(x), pen @ x]), x0,
+                        jac=lambda x: np.vstack([jac(x), pen]), bounds=(lo, hi), x_scale=scale,
+                        loss=loss, max_nfev=max_nfev, xtol=1e-6, ftol=ftol, method="trf")
     q = _apply(p, free, res.x, solve_sb, prob)
     # the solver's last Jacobian is at its solution unless it stopped inside a step
-    J = cache["J"] if np.array_equal(cache.get("Jx"), res.x) else jac(res.x)
+    J = jac(res.x)
+    res.fun = res.fun[:ndata]
+    res.penalty = pen
     return q, res, J
 
 
-def chord_fit(prob: Problem, p: dict, free, x0, J, rows, *, steps=3):
+def chord_fit(prob: Problem, p: dict, free, x0, J, rows, *, steps=3, penalty=None):
     """Refit ``free`` on a subset of the voxels (``rows`` of ``prob``'s residual, e.g. one
     half of the disk) starting from ``x0``, the solution on all voxels: Gauss-Newton steps
     with the Jacobian ``J`` of the full solution kept fixed (the chord method; it needs
     one model per step and no new Jacobian, and converges where the subset's solution is
-    near the full one, as the two halves of a disk are).  Returns the parameters."""
+    near the full one, as the two halves of a disk are).  ``penalty``: the full fit's
+    smoothness rows, kept.  Returns the parameters."""
     lo = np.array([_BOUNDS.get(name, (-np.inf, np.inf))[0] for name, _ in free])
     hi = np.array([_BOUNDS.get(name, (-np.inf, np.inf))[1] for name, _ in free])
     jr = J[rows]
-    a = jr.T @ jr
+    pen = np.zeros((0, len(free))) if penalty is None else penalty
+    a = jr.T @ jr + pen.T @ pen
     a += 1e-6 * np.diag(np.diag(a)) + 1e-12 * np.eye(a.shape[0])
     x = np.asarray(x0, float).copy()
     for _ in range(steps):
         q = _apply(p, free, x, False, prob)
         r = prob.resid(prob.model.render(q))[rows]
-        x = np.clip(x - np.linalg.solve(a, jr.T @ r), lo, hi)
+        x = np.clip(x - np.linalg.solve(a, jr.T @ r + pen.T @ (pen @ x)), lo, hi)
     return _apply(p, free, x, False, prob)
 
 
-def covariance(prob: Problem, J, resid, *, n_free):
+def covariance(prob: Problem, J, resid, *, n_free, penalty=None):
     """Sandwich covariance of the parameters from the weighted Jacobian ``J`` (see the
-    module docstring); returns (cov, reduced chi^2)."""
+    module docstring); returns (cov, reduced chi^2).  With the smoothness ``penalty``
+    rows P the estimator solves (J^T J + P^T P) dx = J^T r, so A = J^T J + P^T P while
+    B (the noise) is unchanged: the penalty narrows the errors as it narrows the scatter
+    of the fitted values (it adds no noise), and its bias is not in them."""
     model = prob.model
     a = J.T @ J
+    if penalty is not None and penalty.size:
+        a = a + penalty.T @ penalty
     a_inv = np.linalg.pinv(a)
     b = J.T @ _correlate(prob, J, model)
     cov = a_inv @ b @ a_inv

@@ -99,7 +99,7 @@ def fit_rings_3d(cube, *, noise=None, mask=None, center=None, position_angle=Non
                  fix=(), stages=(1, 2, 3), final_geometry: str = "median",
                  bootstrap: int = 0, seed: int | None = 0, expansion: bool = False,
                  scale_height=0.0, loss: str = "chi2", channel_response: str = "tophat",
-                 oversample: int = 4, progress: bool = False) -> RingFit3D:
+                 oversample: int = 4, smoothing="auto", progress: bool = False) -> RingFit3D:
     """Fit a 3D tilted-ring disk model to a cube (rotation curves free of beam smearing).
 
     Parameters
@@ -137,6 +137,14 @@ def fit_rings_3d(cube, *, noise=None, mask=None, center=None, position_angle=Non
         Minimise chi^2, or a soft absolute residual (scipy's 'soft_l1', |r| for residuals
         beyond the noise), which resists outliers.
     channel_response : {'tophat', 'hanning', 'none'}
+    oversample : int
+        Disk-plane samples per pixel step of the model.
+    smoothing : 'auto' or float >= 0
+        Weight of a penalty on the second differences of v_rot and of the dispersion
+        between rings: the chi^2 that a second difference of one typical per-ring error
+        costs.  'auto' (default) sets it from how much the beam mixes neighbouring
+        rings, exp(-8 ln 2 (ring_width / beam FWHM)^2): 0.25 for rings half a beam
+        wide, 0.004 for one beam (negligible).  0 turns it off.
 
     Returns
     -------
@@ -149,7 +157,9 @@ def fit_rings_3d(cube, *, noise=None, mask=None, center=None, position_angle=Non
     the data's (summed over all channels).  v_rot_err = sqrt(formal^2 + ((v_rot_receding
     - v_rot_approaching) / 2)^2) as in 2D; the formal error (``v_rot_err_formal``) is the
     sandwich covariance for beam-correlated noise (see :mod:`kinemap.rings.fit3d`) or the
-    bootstrap scatter.  ``dispersion_err`` is built the same way.
+    bootstrap scatter.  ``dispersion_err`` is built the same way.  The smoothness
+    penalty is in the covariance (it narrows the scatter of the fitted values and their
+    errors alike); the bias it gives a curve that bends sharply between rings is not.
     """
     from kinemap.rings._stage3d_run import run_fit
 
@@ -159,4 +169,4 @@ def fit_rings_3d(cube, *, noise=None, mask=None, center=None, position_angle=Non
                    final_geometry=final_geometry, bootstrap=bootstrap, seed=seed,
                    expansion=expansion, scale_height=scale_height, loss=loss,
                    channel_response=channel_response, oversample=oversample,
-                   progress=progress)
+                   smoothing=smoothing, progress=progress)
