@@ -263,21 +263,37 @@ class DiskModel:
         hi = min(int(np.ceil(ends.max())) + 2, n_r)
         return lo, max(hi, lo)
 
-    def _box_cubes(self, box, window, count):
+    def _pads(self, box):
+        """Padding (y, x) of a box's FFT grid before its start: a box from
+        :meth:`ring_box` already holds the beam's reach around the ring's emission,
+        except where the cube's edge cut it; only there the grid is padded by the
+        margin (emission just outside the cube still reaches it through the beam)."""
+        _, ny, nx = self.shape
         m = self.margin
         ys, xs = box
-        shape = (sfft.next_fast_len(ys.stop - ys.start + 2 * m),
-                 sfft.next_fast_len(xs.stop - xs.start + 2 * m))
+        return ((m if ys.start == 0 else 0, m if ys.stop == ny else 0),
+                (m if xs.start == 0 else 0, m if xs.stop == nx else 0))
+
+    def _box_cubes(self, box, window, count):
+        (py0, py1), (px0, px1) = self._pads(box)
+        ys, xs = box
+        shape = (sfft.next_fast_len(ys.stop - ys.start + py0 + py1),
+                 sfft.next_fast_len(xs.stop - xs.start + px0 + px1))
         return [np.zeros((window[1] - window[0], *shape)) for _ in range(count)]
+
+    def _box_offsets(self, box):
+        """Pixel offsets (x, y) of the cube's grid on a box's FFT grid."""
+        (py0, _), (px0, _) = self._pads(box)
+        return float(px0 - box[1].start), float(py0 - box[0].start)
 
     def _cut(self, cube, box, single=False):
         """Observed box cube, cropped to the box; channels stay those of the window less
         the two Hanning edges (see :meth:`window_channels`)."""
-        m = self.margin
+        (py0, _), (px0, _) = self._pads(box)
         ny, nx = box[0].stop - box[0].start, box[1].stop - box[1].start
         if cube.shape[0] < (3 if self.response == "hanning" else 1):
             return np.zeros((0, ny, nx))
-        return self._observe(cube, single)[:, m:m + ny, m:m + nx]
+        return self._observe(cube, single)[:, py0:py0 + ny, px0:px0 + nx]
 
     def window_channels(self, window):
         """Output channels (start, stop) of a render window after :meth:`_observe`."""
@@ -297,7 +313,7 @@ class DiskModel:
         window = self.ring_window(ann, k) if window is None else window
         (out,) = self._box_cubes((ys, xs), window, 1)
         if a_hi > a_lo and out.shape[0]:
-            self._deposit(ann, a_lo, a_hi, out, self.margin - xs.start, self.margin - ys.start,
+            self._deposit(ann, a_lo, a_hi, out, *self._box_offsets((ys, xs)),
                           ann["sb"] * self.unit_weight, window[0])
         return self._cut(out, (ys, xs)), self.window_channels(window)[0]
 
@@ -344,7 +360,7 @@ class DiskModel:
                           cu_cos, cu_sin, c_s, ann["disp"], ann["vrot"], ann["vexp"], ann["x0"],
                           ann["y0"], ann["sin_pa"], ann["cos_pa"], ann["sin_i"], ann["cos_i"],
                           ann["vsys"], self.z_nodes, self.z_weights, self.jinv,
-                          float(self.margin - xs.start), float(self.margin - ys.start),
+                          *self._box_offsets((ys, xs)),
                           float(u0), 1.0 / self.dv, self.response != "none",
                           min(out_u.shape[0], 8))
 
