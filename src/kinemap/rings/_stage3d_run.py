@@ -334,7 +334,8 @@ def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, di
     smooth = _smooth_weight(smoothing, width, np.sqrt(beam[0] * beam[1]))
     p, res1, J1 = fit3d.fit_params(prob, p, free1, solve_sb=bool(gfree), max_nfev=40,
                                    smooth=smooth)
-    cov1, _ = fit3d.covariance(prob, J1, res1.fun, n_free=len(free1), penalty=res1.penalty)
+    cov1, _ = fit3d.covariance(prob, J1, res1.fun, n_free=len(free1), penalty=res1.penalty,
+                               p=p)
     glob = {k: float(np.median(p[k])) for k in GEOM_PARAMS}
     glob_err = {k: np.nan for k in GEOM_PARAMS}
     for j, (name, _) in enumerate(gfree):
@@ -353,7 +354,8 @@ def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, di
     # final pass: the errors
     free_exp = expansion and "v_exp" not in fixed
     p, res3, J3, free3 = _final(prob, p, free_exp, smooth)
-    cov3, chi2 = fit3d.covariance(prob, J3, res3.fun, n_free=len(free3), penalty=res3.penalty)
+    cov3, chi2 = fit3d.covariance(prob, J3, res3.fun, n_free=len(free3), penalty=res3.penalty,
+                                  p=p)
     err3 = np.sqrt(np.diag(cov3))
     n = rad.size
     f_vrot, f_disp = err3[:n], err3[n:2 * n]

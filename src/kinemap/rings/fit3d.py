@@ -85,6 +85,11 @@ class Problem:
         Rings half a beam wide make this a deconvolution, so a weak penalty on the second
         difference of Sigma between rings (Tikhonov regularisation; common practice) keeps
         neighbouring rings from trading flux in an alternating pattern."""
+        a, b = self._surface_system(p)
+        sol, _ = nnls(a, b, maxiter=50 * a.shape[1])
+        return sol
+
+    def _surface_system(self, p):
         basis = self.model.surface_basis(p)
         fp = self.footprint
         w = self.weight[fp]
@@ -96,8 +101,35 @@ class Problem:
             lam = 1e-3 * np.trace(a.T @ a) / n
             a = np.vstack([a, np.sqrt(lam) * d2])
             b = np.concatenate([b, np.zeros(n - 2)])
-        sol, _ = nnls(a, b, maxiter=50 * n)
-        return sol
+        return a, b
+
+    def surface_gain(self, p, sb):
+        """G = d Sigma / d b: how the solved Sigma follow the noise-weighted moment 0 ``b``
+        of the footprint's pixels (the regularised least squares of the rings not held at
+        0 by the non-negativity; those stay 0)."""
+        a, _ = self._surface_system(p)
+        n_fp = int(self.footprint.sum())
+        gain = np.zeros((a.shape[1], n_fp))
+        free = np.asarray(sb) > 0
+        if free.any():
+            af = a[:, free]
+            gain[free] = np.linalg.pinv(af.T @ af) @ af[:n_fp].T
+        return gain
+
+    def surface_columns(self, p):
+        """K: the weighted model at the masked voxels per unit Sigma of each ring (the
+        model is linear in Sigma; ring k's hat function on the annuli it touches)."""
+        model = self.model
+        n = model.radii.size
+        out = np.zeros((self.d.size, n))
+        for k in range(n):
+            e = np.zeros(n)
+            e[k] = 1.0
+            q = dict(p, surface_brightness=e)
+            box = model.ring_box(q, k)
+            sub, chan0 = model.render_rings(q, k, box)
+            out[:, k] = self.box_column(sub, box, chan0)
+        return out
 
 
 def _get(p, name, k):
@@ -287,40 +319,59 @@ def chord_fit(prob: Problem, p: dict, free, x0, J, rows, *, steps=3, penalty=Non
     return _apply(p, free, x, False, prob)
 
 
-def covariance(prob: Problem, J, resid, *, n_free, penalty=None):
+def covariance(prob: Problem, J, resid, *, n_free, penalty=None, p=None):
     """Sandwich covariance of the parameters from the weighted Jacobian ``J`` (see the
     module docstring); returns (cov, reduced chi^2).  With the smoothness ``penalty``
     rows P the estimator solves (J^T J + P^T P) dx = J^T r, so A = J^T J + P^T P while
     B (the noise) is unchanged: the penalty narrows the errors as it narrows the scatter
-    of the fitted values (it adds no noise), and its bias is not in them."""
+    of the fitted values (it adds no noise), and its bias is not in them.
+
+    Given the parameters ``p`` (with the Sigma solved from the data's moment 0 and then
+    held), the noise that moment 0 passed to Sigma is propagated too: the fit's gradient
+    J^T r moves with the noise e as J^T (e_mask - K G s(e)), s the noise summed over all
+    channels at the footprint's pixels (x |dv|), G = d Sigma / d b
+    (:meth:`Problem.surface_gain`), K the model per unit Sigma
+    (:meth:`Problem.surface_columns`); B is that vector's covariance under the noise
+    correlation.  At a peak signal-to-noise of 20 this was the main part of the inner
+    rings' missing error (tests/rings/test_rings3d_pulls.py)."""
     model = prob.model
     a = J.T @ J
     if penalty is not None and penalty.size:
         a = a + penalty.T @ penalty
     a_inv = np.linalg.pinv(a)
-    b = J.T @ _correlate(prob, J, model)
+    u = None
+    if p is not None:
+        sb = np.asarray(p["surface_brightness"], float)
+        u = (J.T @ prob.surface_columns(p)) @ prob.surface_gain(p, sb) * abs(model.dv)
+    b = _noise_products(prob, J, u, model)
     cov = a_inv @ b @ a_inv
     dof = max(resid.size - n_free, 1)
     chi2 = float(resid @ resid) / dof
     return cov * max(1.0, chi2), chi2
 
 
-def _correlate(prob, J, model):
-    """R J: each column as a masked cube correlated like the noise, read back at the mask."""
+def _noise_products(prob, J, u, model):
+    """B = V^T R V with V_j the cube of parameter j's noise weights: J_j at the masked
+    voxels, less u_j (the moment-0 path, per footprint pixel) in every channel; R the
+    noise correlation (the beam's shape across pixels, the response's along channels)."""
     rho = noise_correlation(model.response)
     nchan, ny, nx = model.shape
     tf = None
-    shape = None
+    shape = (ny, nx)
     if model.beam is not None:
         m = model.margin
         shape = (sfft.next_fast_len(ny + 2 * m), sfft.next_fast_len(nx + 2 * m))
         k = beam_kernel(shape, *model.beam, model.jac)
         tf = sfft.rfft2(k / k.max())  # correlation 1 at zero lag, the beam's shape
-    out = np.empty_like(J)
     c, y, x = prob.idx
-    for j in range(J.shape[1]):
-        cube = np.zeros((nchan, *(shape or (ny, nx))))
+    fy, fx = np.nonzero(prob.footprint)
+    n = J.shape[1]
+    b = np.empty((n, n))
+    for j in range(n):
+        cube = np.zeros((nchan, *shape))
         cube[c, y, x] = J[:, j]
+        if u is not None:
+            cube[:, fy, fx] -= u[j][None, :]
         if tf is not None:
             cube = sfft.irfft2(sfft.rfft2(cube, axes=(1, 2), workers=-1) * tf, s=shape,
                                axes=(1, 2), workers=-1)
@@ -330,8 +381,10 @@ def _correlate(prob, J, model):
                 acc[lag:] += rho[lag] * cube[:-lag]
                 acc[:-lag] += rho[lag] * cube[lag:]
             cube = acc
-        out[:, j] = cube[c, y, x]
-    return out
+        b[:, j] = J.T @ cube[c, y, x]
+        if u is not None:
+            b[:, j] -= u @ cube[:, fy, fx].sum(axis=0)
+    return 0.5 * (b + b.T)
 
 
 def correlated_noise(rng, model: DiskModel, sigma2d):
