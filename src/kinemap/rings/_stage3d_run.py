@@ -23,10 +23,14 @@ from kinemap.units import KMS, to_value
 
 _UNITS = {"x_center": u.pix, "y_center": u.pix, "position_angle": u.deg, "inclination": u.deg,
           "v_sys": KMS}
+_NORMALISATION = {
+    "rings": "ring by ring: Sigma per ring, NNLS against the data's moment 0",
+    "pixels": "pixel by pixel: the model's moment 0 scaled to the data's in every pixel "
+              "(Sigma per ring from the NNLS, for the table)"}
 _FIX_NAMES = ("center", "x_center", "y_center", "position_angle", "inclination", "v_sys", "v_exp")
 
 
-def _check(cube, fix, stages, final_geometry, loss, bootstrap, smoothing):
+def _check(cube, fix, stages, final_geometry, loss, bootstrap, smoothing, normalisation):
     if not hasattr(cube, "velocity") or np.ndim(getattr(cube, "data", None)) != 3:
         raise KinemapError("the 3D ring fit needs a cube (kinemap.read_cube); for a velocity "
                            "map use fit_rings or --model 2d")
@@ -47,6 +51,9 @@ def _check(cube, fix, stages, final_geometry, loss, bootstrap, smoothing):
                                     and np.isfinite(smoothing) and smoothing >= 0):
         raise KinemapError(f"'smoothing' must be 'auto' or a number >= 0 (0: none), "
                            f"got {smoothing!r}")
+    if normalisation not in _NORMALISATION:
+        raise KinemapError(f"'surface_normalisation' must be 'rings' or 'pixels', got "
+                           f"{normalisation!r}")
     if int(bootstrap) != bootstrap or bootstrap < 0 or bootstrap == 1:
         raise KinemapError(f"'bootstrap' must be 0 or a whole number >= 2, got {bootstrap!r}")
 
@@ -260,7 +267,8 @@ def _bootstrap(prob, p, best, nboot, seed, expansion, smooth, noise_sigma, bar):
     for _ in bar(range(nboot), "rings 3d: bootstrap"):
         fake = best + fit3d.correlated_noise(rng, prob.model, np.nan_to_num(noise_sigma))
         sub = fit3d.Problem(prob.model, fake, prob.mask, prob.weight,
-                            fake.sum(axis=0) * abs(prob.model.dv), prob.footprint, prob.loss)
+                            fake.sum(axis=0) * abs(prob.model.dv), prob.footprint, prob.loss,
+                            prob.normalisation)
         q, *_ = _final(sub, p, expansion, smooth)
         samples.append(np.r_[q["v_rot"], q["dispersion"], q["v_exp"]])
     arr = np.array(samples)
@@ -288,14 +296,23 @@ def _fixed(fix):
     return fixed
 
 
+def _sky(cube):
+    """Pixel Jacobian (arcsec), beam (major, minor FWHM arcsec, PA deg), pixel size."""
+    jac = np.asarray(SkyGrid.from_wcs(cube.meta.wcs, shape=cube.shape[1:]).jacobian)
+    b = cube.meta.beam
+    beam = (b.major.to_value(u.arcsec), b.minor.to_value(u.arcsec), b.pa.to_value(u.deg))
+    return jac, beam, float(np.sqrt(abs(np.linalg.det(jac))))
+
+
 def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, distance,
             ring_width, radii, fix, stages, final_geometry, bootstrap, seed, expansion,
-            scale_height, loss, channel_response, oversample, smoothing, progress):
+            scale_height, loss, channel_response, oversample, smoothing, surface_normalisation,
+            progress):
     """The whole 3D fit (see :func:`kinemap.rings.stage3d.fit_rings_3d`)."""
     from kinemap.rings.stage3d import RingFit3D
 
     fix, stages = tuple(fix or ()), tuple(stages or (1, 2, 3))
-    _check(cube, fix, stages, final_geometry, loss, bootstrap, smoothing)
+    _check(cube, fix, stages, final_geometry, loss, bootstrap, smoothing, surface_normalisation)
     resp = check_response(channel_response)
     fixed = _fixed(fix)
     timings, clock = {}, time.perf_counter()
@@ -306,11 +323,7 @@ def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, di
     data, m3, noise, mask = _data_and_mask(cube, noise, mask, resp)
     given, kw2d = _given(center, position_angle, inclination, v_sys, cube.meta)
     r2d, m2, m0, m1 = _first_guess(cube, noise, mask, kw2d, resp, progress)
-    grid = SkyGrid.from_wcs(cube.meta.wcs, shape=cube.shape[1:])
-    jac = np.asarray(grid.jacobian)
-    b = cube.meta.beam
-    beam = (b.major.to_value(u.arcsec), b.minor.to_value(u.arcsec), b.pa.to_value(u.deg))
-    pix = float(np.sqrt(abs(np.linalg.det(jac))))
+    jac, beam, pix = _sky(cube)
     foot = m3.any(axis=0)
     dv = float(np.mean(np.diff(cube.velocity)))
     g2 = r2d.result.global_geometry
@@ -324,7 +337,11 @@ def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, di
     model = DiskModel(cube.shape, jac, cube.velocity, rad, width, beam=beam, response=resp,
                       scale_height=h, oversample=int(oversample))
     weight = np.where(np.isfinite(noise.sigma) & (noise.sigma > 0), 1.0 / noise.sigma, 0.0)
-    prob = fit3d.Problem(model, data, m3, weight, data.sum(axis=0) * abs(dv), foot, loss)
+    prob = fit3d.Problem(model, data, m3, weight, data.sum(axis=0) * abs(dv), foot, loss,
+                         surface_normalisation)
+    # ring by ring, Sigma comes from moment 0 and its noise goes into the covariance; pixel
+    # by pixel, the data's moment 0 scales the model directly (that path is not counted)
+    sb_path = (lambda q: q if surface_normalisation == "rings" else None)
     p["surface_brightness"] = prob.surface_brightness(p)
     timings["first_guess"], clock = time.perf_counter() - clock, time.perf_counter()
 
@@ -335,7 +352,7 @@ def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, di
     p, res1, J1 = fit3d.fit_params(prob, p, free1, solve_sb=bool(gfree), max_nfev=40,
                                    smooth=smooth)
     cov1, _ = fit3d.covariance(prob, J1, res1.fun, n_free=len(free1), penalty=res1.penalty,
-                               p=p)
+                               p=sb_path(p))
     glob = {k: float(np.median(p[k])) for k in GEOM_PARAMS}
     glob_err = {k: np.nan for k in GEOM_PARAMS}
     for j, (name, _) in enumerate(gfree):
@@ -355,7 +372,7 @@ def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, di
     free_exp = expansion and "v_exp" not in fixed
     p, res3, J3, free3 = _final(prob, p, free_exp, smooth)
     cov3, chi2 = fit3d.covariance(prob, J3, res3.fun, n_free=len(free3), penalty=res3.penalty,
-                                  p=p)
+                                  p=sb_path(p))
     err3 = np.sqrt(np.diag(cov3))
     n = rad.size
     f_vrot, f_disp = err3[:n], err3[n:2 * n]
@@ -378,7 +395,8 @@ def run_fit(cube, *, noise, mask, center, position_angle, inclination, v_sys, di
                                   scale_height_arcsec=h, loss=loss, channel_response=resp,
                                   oversample=int(oversample), ring_width_arcsec=width,
                                   smoothing=float(smooth),
-                                  surface_brightness_normalisation="ring by ring (moment 0, NNLS)")
+                                  surface_normalisation=surface_normalisation,
+                                  surface_brightness_normalisation=_NORMALISATION[surface_normalisation])
     timings["model"] = time.perf_counter() - clock
     nfail = int(np.sum(np.asarray(table["status"]) != Status.OK))
     if nfail >= max(1, n // 4):

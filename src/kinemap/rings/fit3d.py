@@ -52,6 +52,7 @@ class Problem:
     moment0: np.ndarray       # (ny, nx): data summed over all channels x |dv|
     footprint: np.ndarray     # (ny, nx) bool: pixels with any masked voxel
     loss: str = "chi2"
+    normalisation: str = "rings"  # or "pixels": see pixel_scale
 
     def __post_init__(self):
         self.idx = np.nonzero(self.mask)
@@ -61,14 +62,31 @@ class Problem:
     def restricted(self, keep2d) -> "Problem":
         """The same problem with only the pixels where ``keep2d`` (a half of the disk)."""
         return Problem(self.model, self.data, self.mask & keep2d[None], self.weight,
-                       self.moment0, self.footprint & keep2d, self.loss)
+                       self.moment0, self.footprint & keep2d, self.loss, self.normalisation)
 
-    def resid(self, cube):
+    def pixel_scale(self, cube):
+        """Per-pixel factors that give the model cube the data's moment 0 (pixel-by-pixel
+        normalisation: the model sets the line shapes, the data the intensity; common
+        practice beside ring-by-ring).  None for ring-by-ring normalisation.  Pixels
+        where the model has under 1e-3 of its peak moment 0 keep factor 1; a negative
+        data moment 0 (noise) counts as 0."""
+        if self.normalisation != "pixels":
+            return None
+        m0 = cube.sum(axis=0) * abs(self.model.dv)
+        ok = self.footprint & (m0 > 1e-3 * max(float(m0.max()), 1e-300))
+        scale = np.ones_like(m0)
+        scale[ok] = np.maximum(self.moment0[ok], 0.0) / m0[ok]
+        return scale
+
+    def resid(self, cube, scale=None):
+        scale = self.pixel_scale(cube) if scale is None else scale
+        if scale is not None:
+            return self.d - cube[self.idx] * (self.w * scale[self.idx[1], self.idx[2]])
         return self.d - cube[self.idx] * self.w
 
-    def box_column(self, sub, box, chan0=0):
+    def box_column(self, sub, box, chan0=0, scale=None):
         """Weighted values of a box cube ``sub`` (channels from ``chan0``) at the masked
-        voxels (0 outside the box)."""
+        voxels (0 outside the box), times the pixel ``scale`` when given."""
         ys, xs = box
         c, y, x = self.idx
         inside = ((y >= ys.start) & (y < ys.stop) & (x >= xs.start) & (x < xs.stop)
@@ -76,6 +94,8 @@ class Problem:
         col = np.zeros(c.size)
         col[inside] = (sub[c[inside] - chan0, y[inside] - ys.start, x[inside] - xs.start]
                        * self.w[inside])
+        if scale is not None:
+            col *= scale[y, x]
         return col
 
     def surface_brightness(self, p):
@@ -163,11 +183,14 @@ def _stepped(x, j, name, hi):
     return xp
 
 
-def _ring_columns(prob, p, free, x, q, k, cols, hi, out):
+def _ring_columns(prob, p, free, x, q, k, cols, hi, out, scale):
     """Jacobian columns of ring k's parameters, on the pixel box and channels ring k can
     reach: exact derivatives for its kinematics (:meth:`DiskModel.ring_gradients`), finite
     differences of the ring's own contribution for its geometry.  The surface brightness
-    is held (it is re-solved between steps, not inside the Jacobian)."""
+    is held (it is re-solved between steps, not inside the Jacobian).  With pixel
+    normalisation the columns take the trial's pixel ``scale`` (exact for the kinematics,
+    which leave the model's moment 0 unchanged; the change of the scale with a ring's
+    geometry is left out of its column)."""
     model = prob.model
     box = model.ring_box(q, k)
     ann = model.annuli(q)
@@ -178,7 +201,7 @@ def _ring_columns(prob, p, free, x, q, k, cols, hi, out):
         grads = model.ring_gradients(q, k, box, window,
                                      expansion=any(free[j][0] == "v_exp" for j in kin))
         for j in kin:
-            out[:, j] = -prob.box_column(grads[free[j][0]], box, chan0)
+            out[:, j] = -prob.box_column(grads[free[j][0]], box, chan0, scale)
     other = [j for j in cols if free[j][0] not in _EXACT]
     if other:
         base, _ = model.render_rings(q, k, box, window, ann)
@@ -186,7 +209,8 @@ def _ring_columns(prob, p, free, x, q, k, cols, hi, out):
             qp = _apply(p, free, _stepped(x, j, free[j][0], hi), False, prob)
             qp["surface_brightness"] = q["surface_brightness"]
             sub, _ = model.render_rings(qp, k, box, window)
-            out[:, j] = -prob.box_column(sub - base, box, chan0) / _step(x, j, free[j][0], hi)
+            out[:, j] = (-prob.box_column(sub - base, box, chan0, scale)
+                         / _step(x, j, free[j][0], hi))
 
 
 def _one_ring_resid(prob, p, free):
@@ -249,10 +273,13 @@ def fit_params(prob: Problem, p: dict, free, *, solve_sb=False, max_nfev=40, smo
     hi = np.array([_BOUNDS.get(name, (-np.inf, np.inf))[1] for name, _ in free])
     x0 = np.clip(x0, lo + 1e-6, hi - 1e-6)
     cache = {}
-    resid = _one_ring_resid(prob, p, free) if not solve_sb else None
+    one_ring = not solve_sb and prob.normalisation == "rings"
+    resid = _one_ring_resid(prob, p, free) if one_ring else None
     if resid is None:
         def resid(q):
-            return prob.resid(model.render(q))
+            cube = model.render(q)
+            cache["scale"] = prob.pixel_scale(cube)
+            return prob.resid(cube, cache["scale"])
 
     def fun(x):
         q = _apply(p, free, x, solve_sb, prob)
@@ -275,7 +302,7 @@ def fit_params(prob: Problem, p: dict, free, *, solve_sb=False, max_nfev=40, smo
             else:
                 by_ring.setdefault(k, []).append(j)
         for k, cols in by_ring.items():
-            _ring_columns(prob, p, free, x, q, k, cols, hi, out)
+            _ring_columns(prob, p, free, x, q, k, cols, hi, out, cache.get("scale"))
         cache.update(J=out, Jx=x.copy())
         return out
 
