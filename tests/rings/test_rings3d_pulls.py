@@ -40,7 +40,7 @@ KW = dict(n=16, pix=8.0, nchan=20, dv=8.0, beam=24.0, r_max=50, pa=40.0, inc=60.
 # 1/20 of the cube's peak (0.0170): moderate S/N, where the errors used to be too small
 # (inner ring's v_rot pull 1.7) until the covariance took in the noise the surface
 # brightness brings from moment 0 and the rings, half a beam wide, were kept from trading
-# v_rot by the smoothness penalty (at 'auto', 0.25 here)
+# v_rot by the smoothness penalty (at 'auto', 0.0625 here)
 NOISE = 0.0170 / 20
 RADII = np.array([12.0, 24.0, 36.0])
 WIDTH, BEAM = 12.0, 24.0

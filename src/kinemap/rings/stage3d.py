@@ -144,8 +144,8 @@ def fit_rings_3d(cube, *, noise=None, mask=None, center=None, position_angle=Non
         Weight of a penalty on the second differences of v_rot and of the dispersion
         between rings: the chi^2 that a second difference of one typical per-ring error
         costs.  'auto' (default) sets it from how much the beam mixes neighbouring
-        rings, exp(-8 ln 2 (ring_width / beam FWHM)^2): 0.25 for rings half a beam
-        wide, 0.004 for one beam (negligible).  0 turns it off.
+        rings, exp(-16 ln 2 (ring_width / beam FWHM)^2): 0.0625 for rings half a beam
+        wide, 1.5e-5 for one beam (nothing).  0 turns it off.
     surface_normalisation : {'rings', 'pixels'}
         How the model's intensity is tied to the data (both common practice): 'rings'
         (default) gives each ring a face-on Sigma, solved against the data's moment 0;
