@@ -3,21 +3,27 @@
 The cube is compared with :class:`kinemap.rings.disk3d.DiskModel` inside the signal mask,
 each voxel weighted by 1 / (noise of its pixel).  Free parameters are either shared by
 all rings (``(name, None)``: the global geometry) or belong to one ring (``(name, k)``).
-The Jacobian is built by finite differences, and the column of a ring parameter only
-re-renders the annuli that parameter touches, on the pixel box they can reach after the
-beam (:meth:`DiskModel.render_rings`): an outer ring costs a small part of a full model,
-an inner one almost nothing.
+The Jacobian columns of a ring's kinematics (v_rot, dispersion, v_exp) are exact
+(:meth:`DiskModel.ring_gradients`); those of geometry are finite differences, a ring's
+re-rendering only the annuli it touches (:meth:`DiskModel.render_rings`).  Either is
+computed on the pixel box and channels the ring can reach after the beam: an outer ring
+costs a part of a full model, an inner one almost nothing.  An optional smoothness
+penalty on v_rot and dispersion between rings (:func:`smoothness_rows`) adds rows to
+the residual.
 
 The surface brightness is not a free parameter: for a given geometry the model's moment
 0 is linear in the rings' Sigma_k, which are solved by non-negative least squares against
-the data's moment 0 (ring-by-ring normalisation; see :meth:`Problem.surface_brightness`).
+the data's moment 0 (ring-by-ring normalisation; see :meth:`Problem.surface_brightness`);
+with pixel-by-pixel normalisation the model is also rescaled to the data's moment 0 in
+every pixel (:meth:`Problem.pixel_scale`).
 
 Errors: the covariance is the sandwich A^-1 B A^-1 with A = J^T J and B = J^T R J, R the
 correlation of the noise between voxels: the beam's shape across pixels (an
 interferometer image's noise is correlated like its beam; the same assumption as the
 "independent pixels per beam" scaling of the 2D fit, which this makes exact for any
-Jacobian) and the channel response's correlation along the spectrum.  It is multiplied
-by the reduced chi^2 when that exceeds 1 (common practice).
+Jacobian) and the channel response's correlation along the spectrum; A holds the
+penalty, B the noise that moment 0 passes to Sigma (:func:`covariance`).  It is
+multiplied by the reduced chi^2 when that exceeds 1 (common practice).
 """
 from __future__ import annotations
 
