@@ -117,3 +117,57 @@ def test_model_cube_equals_a_brute_force_sum(response):
     bmat = np.exp(-0.5 * ((along / s1) ** 2 + (across / s2) ** 2)) * 4.0 / (2 * np.pi * s1 * s2)
     ref = (bmat @ (w[:, None] * f)).T.reshape(v.size, 32, 32)
     assert np.abs(cube - ref).max() < 1e-3 * ref.max()
+
+
+@pytest.mark.parametrize("response", ["tophat", "hanning", "none"])
+def test_exact_ring_derivatives_match_central_differences(response):
+    # the Jacobian's kinematic columns come from the derivative kernel on a pixel box and a
+    # window of channels; central differences of whole model cubes (common practice) are
+    # the check, on an axis wide enough that the window leaves channels out
+    n = 5
+    radii = (np.arange(n) + 0.5) * 6.0
+    # 48 pixels: the inner rings' boxes lie inside the cube, the outer ones reach its edge
+    model = DiskModel((70, 48, 48), JAC, np.arange(70) * 5.0 - 175.0, radii, 6.0,
+                      beam=(10.0, 8.0, 20.0), response=response)
+    p = _params(n, v_rot=np.linspace(50, 90, n), v_exp=np.full(n, 5.0),
+                dispersion=np.linspace(10, 7, n), surface_brightness=np.exp(-radii / 15),
+                x_center=23.6, y_center=24.2)
+    p = {k: np.broadcast_to(np.asarray(v, float), (n,)).copy() for k, v in p.items()}
+    ann = model.annuli(p)
+    assert model.ring_box(p, 0)[0].start > 0 and model.ring_box(p, 4)[0].start == 0
+    for k in (0, 2, 4):
+        box = model.ring_box(p, k)
+        window = model.ring_window(ann, k)
+        assert window[1] - window[0] < 62  # line-free channels are left out
+        chan0 = model.window_channels(window)[0]
+        grads = model.ring_gradients(p, k, box, window, expansion=True)
+        for name in ("v_rot", "dispersion", "v_exp"):
+            h = 1e-3
+            up = {key: v.copy() for key, v in p.items()}
+            down = {key: v.copy() for key, v in p.items()}
+            up[name][k] += h
+            down[name][k] -= h
+            fd = (model.render(up) - model.render(down)) / (2 * h)
+            g = np.zeros_like(fd)
+            g[chan0:chan0 + grads[name].shape[0], box[0], box[1]] = grads[name]
+            np.testing.assert_allclose(g, fd, atol=1e-5 * np.abs(fd).max(), rtol=0)
+
+
+def test_a_rings_contribution_keeps_its_flux_inside_its_box_and_window():
+    # render_rings(k) is the emission of the annuli ring k touches, cut to the pixel box
+    # and channels it can reach: cutting must lose none of its flux (the deposit and the
+    # normalised beam conserve flux, as test_beam_convolution_conserves_the_total_flux checks)
+    n = 5
+    radii = (np.arange(n) + 0.5) * 6.0
+    model = DiskModel((70, 64, 64), JAC, np.arange(70) * 5.0 - 175.0, radii, 6.0,
+                      beam=(10.0, 8.0, 20.0))
+    p = _params(n, x_center=31.6, y_center=32.2, surface_brightness=np.exp(-radii / 15))
+    full = model.render(p)
+    one, chan0 = model.render_rings(p, 2)
+    box = model.ring_box(p, 2)
+    assert np.abs(one).max() > 0.1 * np.abs(full).max()
+    a_lo, a_hi = model.ring_annuli[2]
+    total = (model.unit_weight[a_lo:a_hi] * model.annuli(p)["sb"][a_lo:a_hi]
+             * model.n_az[a_lo:a_hi]).sum()
+    np.testing.assert_allclose(one.sum(), total, rtol=2e-3)
+    assert box[0].start > 0 and box[0].stop < 64 and chan0 > 0

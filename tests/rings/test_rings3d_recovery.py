@@ -33,8 +33,9 @@ def test_poorly_resolved_disk_3d_recovers_what_2d_misses():
     t = res.table
     r = t["radius"].value
     dv = np.abs(t["v_rot"].value - truth["vrot"](r))
-    # issue 10 asks 8 km/s; this seeded case reaches 8.9 km/s in one ring (see the note)
-    assert np.nanmedian(dv) < 8.0 and np.nanmax(dv) < 10.0
+    # issue 10: within 8 km/s (measured 6.9 km/s in the innermost ring, where the curve
+    # rises most steeply and the smoothness penalty pulls; 8.9 before the penalty)
+    assert np.nanmax(dv) < 8.0
     assert np.all(np.isfinite(t["v_rot_err"])) and np.all(t["v_rot_err"].value > 0)
     # products: model and residual cubes on the cube's grid
     assert res.model_cube.shape == cube.shape and res.residual_cube.shape == cube.shape

@@ -127,7 +127,9 @@ def rings3d_kwargs(cfg: dict) -> dict:
                 distance=r["distance"], stages=r["stages"], final_geometry=r["final_geometry"],
                 fix=r["fix"], bootstrap=r["bootstrap"], seed=r["seed"],
                 expansion=r["expansion_in_geometry"], scale_height=r["scale_height"],
-                loss=r["loss"], channel_response=cfg["maps"]["channel_response"])
+                loss=r["loss"], smoothing=r["smoothing"],
+                surface_normalisation=r["surface_normalisation"],
+                channel_response=cfg["maps"]["channel_response"])
 
 
 def turbulence_kwargs(cfg: dict) -> dict:

@@ -43,7 +43,8 @@ Sections and keys (defaults in brackets)::
               expansion_in_geometry [false], pv_diagram [true], velocity_field ["gauss"] |
               "moments" (for a cube input: Gaussian fits or moment 1), model ["2d"] | "3d"
               (3d fits a disk model to the cube), scale_height [0] (arcsec, 3d),
-              loss ["chi2"] | "absolute" (3d)
+              loss ["chi2"] | "absolute" (3d), smoothing ["auto"] | weight (3d),
+              surface_normalisation ["rings"] | "pixels" (3d)
     [widths]  lines (required; names from the catalogue, brightest first), temperature
               ("1e4 K") or temperature_map (FITS, K), temperature_err, mu [2.33],
               free_velocity [false], ratios [{"NII_6583/NII_6548" = 3.0}], catalogue (extra
@@ -340,6 +341,13 @@ SCHEMA: dict[str, dict[str, Option]] = {
                                help="3d: sech^2 scale height of the disk, held fixed"),
         "loss": Option((str,), "chi2", choices=("chi2", "absolute"), cli=False,
                        help="3d: minimise chi^2 or a soft absolute residual"),
+        "smoothing": Option((int, float, str), "auto", cli=False,
+                            help="3d: weight of the penalty on second differences of v_rot "
+                                 "and dispersion between rings ('auto': from the beam's "
+                                 "overlap of neighbouring rings; 0: none)"),
+        "surface_normalisation": Option((str,), "rings", choices=("rings", "pixels"), cli=False,
+                                        help="3d: tie the model's intensity to moment 0 ring "
+                                             "by ring or pixel by pixel"),
         "velocity_field": Option((str,), "gauss", choices=("gauss", "moments"),
                                  aliases=("--method",),
                                  help="for a cube input: velocity field from Gaussian fits "

@@ -183,17 +183,21 @@ class DiskModel:
     def _nchan_render(self):
         return self.shape[0] + (2 if self.response == "hanning" else 0)
 
-    def _deposit(self, ann, a_lo, a_hi, out, off_x, off_y, weight):
+    def _deposit(self, ann, a_lo, a_hi, out, off_x, off_y, weight, chan0=0):
         first = 1 if self.response == "hanning" else 0
-        u0 = self.velocity[0] - first * self.dv
+        u0 = self.velocity[0] + (chan0 - first) * self.dv
         kern.deposit(out, a_lo, a_hi, self.r_mid, self.n_az, self.az0, weight, ann["vrot"],
                      ann["vexp"], ann["disp"], ann["x0"], ann["y0"], ann["sin_pa"], ann["cos_pa"],
                      ann["sin_i"], ann["cos_i"], ann["vsys"], self.z_nodes, self.z_weights,
                      self.jinv, float(off_x), float(off_y), float(u0), 1.0 / self.dv,
                      self.response != "none", min(out.shape[0], 8))
 
-    def _transfer(self, shape):
-        key = ("tf", shape)
+    def _transfer(self, shape, single=False):
+        key = ("tf", shape, single)
+        if single:
+            if key not in self._cache:
+                self._cache[key] = self._transfer(shape).astype(np.complex64)
+            return self._cache[key]
         if key not in self._cache:
             b = self.beam
             k = beam_kernel(shape, b[0], b[1], b[2], self.jac)
@@ -205,10 +209,14 @@ class DiskModel:
             self._cache[key] = sfft.rfft2(k) / (wy[:, None] * wx[None, :])
         return self._cache[key]
 
-    def _observe(self, padded):
-        """Beam convolution (FFT) and Hanning smoothing of a deposited cube."""
+    def _observe(self, padded, single=False):
+        """Beam convolution (FFT) and Hanning smoothing of a deposited cube; ``single``:
+        the FFTs in single precision (half the time; enough for Jacobian columns, whose
+        relative precision of 1e-6 is far below any finite-difference error)."""
+        if single:
+            padded = padded.astype(np.float32)
         if self.beam is not None:
-            tf = self._transfer(padded.shape[1:])
+            tf = self._transfer(padded.shape[1:], single)
             padded = sfft.irfft2(sfft.rfft2(padded, axes=(1, 2), workers=-1) * tf,
                                  s=padded.shape[1:], axes=(1, 2), workers=-1)
         if self.response == "hanning":
@@ -237,21 +245,124 @@ class DiskModel:
         xs = slice(max(0, int(np.floor(x0 - reach))), min(nx, int(np.ceil(x0 + reach)) + 1))
         return ys, xs
 
-    def render_rings(self, p: dict, k: int, box=None) -> np.ndarray:
+    def ring_window(self, ann, k: int):
+        """Render channels (start, stop) that the emission of ring k's annuli can reach:
+        the line of sight spans v_sys +- sin(i) |v| plus six dispersions and a channel."""
+        a_lo, a_hi = self.ring_annuli[k]
+        n_r = self._nchan_render()
+        if a_hi <= a_lo:
+            return 0, 0
+        sl = slice(a_lo, a_hi)
+        speed = (np.minimum(np.abs(ann["sin_i"][sl]) + 0.05, 1.0)
+                 * np.hypot(ann["vrot"][sl], ann["vexp"][sl]))
+        reach = speed + kern._NSIG * ann["disp"][sl] + 2 * abs(self.dv)
+        first = 1 if self.response == "hanning" else 0
+        u0 = self.velocity[0] - first * self.dv
+        ends = (np.r_[ann["vsys"][sl] - reach, ann["vsys"][sl] + reach] - u0) / self.dv
+        lo = max(int(np.floor(ends.min())) - 1, 0)
+        hi = min(int(np.ceil(ends.max())) + 2, n_r)
+        return lo, max(hi, lo)
+
+    def _pads(self, box):
+        """Padding (y, x) of a box's FFT grid before its start: a box from
+        :meth:`ring_box` already holds the beam's reach around the ring's emission,
+        except where the cube's edge cut it; only there the grid is padded by the
+        margin (emission just outside the cube still reaches it through the beam)."""
+        _, ny, nx = self.shape
+        m = self.margin
+        ys, xs = box
+        return ((m if ys.start == 0 else 0, m if ys.stop == ny else 0),
+                (m if xs.start == 0 else 0, m if xs.stop == nx else 0))
+
+    def _box_cubes(self, box, window, count):
+        (py0, py1), (px0, px1) = self._pads(box)
+        ys, xs = box
+        shape = (sfft.next_fast_len(ys.stop - ys.start + py0 + py1),
+                 sfft.next_fast_len(xs.stop - xs.start + px0 + px1))
+        return [np.zeros((window[1] - window[0], *shape)) for _ in range(count)]
+
+    def _box_offsets(self, box):
+        """Pixel offsets (x, y) of the cube's grid on a box's FFT grid."""
+        (py0, _), (px0, _) = self._pads(box)
+        return float(px0 - box[1].start), float(py0 - box[0].start)
+
+    def _cut(self, cube, box, single=False):
+        """Observed box cube, cropped to the box; channels stay those of the window less
+        the two Hanning edges (see :meth:`window_channels`)."""
+        (py0, _), (px0, _) = self._pads(box)
+        ny, nx = box[0].stop - box[0].start, box[1].stop - box[1].start
+        if cube.shape[0] < (3 if self.response == "hanning" else 1):
+            return np.zeros((0, ny, nx))
+        return self._observe(cube, single)[:, py0:py0 + ny, px0:px0 + nx]
+
+    def window_channels(self, window):
+        """Output channels (start, stop) of a render window after :meth:`_observe`."""
+        lo, hi = window
+        if self.response == "hanning":
+            return lo, max(hi - 2, lo)
+        return lo, hi
+
+    def render_rings(self, p: dict, k: int, box=None, window=None, ann=None):
         """Contribution of the annuli ring k's parameters touch, on the box of
-        :meth:`ring_box` (or ``box``): what changes when ring k's parameters change."""
+        :meth:`ring_box` (or ``box``) and the render channels ``window`` (default
+        :meth:`ring_window`): what changes when ring k's parameters change.  Returns the
+        cube and its first output channel."""
         a_lo, a_hi = self.ring_annuli[k]
         ys, xs = box if box is not None else self.ring_box(p, k)
+        ann = self.annuli(p) if ann is None else ann
+        window = self.ring_window(ann, k) if window is None else window
+        (out,) = self._box_cubes((ys, xs), window, 1)
+        if a_hi > a_lo and out.shape[0]:
+            self._deposit(ann, a_lo, a_hi, out, *self._box_offsets((ys, xs)),
+                          ann["sb"] * self.unit_weight, window[0])
+        return self._cut(out, (ys, xs)), self.window_channels(window)[0]
+
+    def ring_weights(self, k: int):
+        """Interpolation weight of ring k's parameters at every annulus: (velocities,
+        which fall to 0 at the centre; the other parameters)."""
+        e = np.zeros(self.radii.size)
+        e[k] = 1.0
+        h_vel = np.interp(self.r_mid, np.r_[0.0, self.radii], np.r_[0.0, e])
+        return h_vel, np.interp(self.r_mid, self.radii, e)
+
+    def ring_gradients(self, p: dict, k: int, box, window, *, expansion=False):
+        """Exact derivatives of the model on ``box`` / ``window`` with respect to ring
+        k's v_rot, dispersion (and v_exp with ``expansion``): a dict of name -> cube,
+        from :func:`kinemap.rings._disk3d_kernel.deposit_grad` observed like a model."""
+        a_lo, a_hi = self.ring_annuli[k]
+        ys, xs = box
         ann = self.annuli(p)
-        m = self.margin
-        shape = (sfft.next_fast_len(ys.stop - ys.start + 2 * m),
-                 sfft.next_fast_len(xs.stop - xs.start + 2 * m))
-        out = np.zeros((self._nchan_render(), *shape))
-        if a_hi > a_lo:
-            self._deposit(ann, a_lo, a_hi, out, m - xs.start, m - ys.start,
-                          ann["sb"] * self.unit_weight)
-        ny, nx = ys.stop - ys.start, xs.stop - xs.start
-        return self._observe(out)[:, m:m + ny, m:m + nx]
+        h_vel, h_lin = self.ring_weights(k)
+        out_u, out_s = self._box_cubes(box, window, 2)
+        w = ann["sb"] * self.unit_weight
+        zero = np.zeros_like(h_vel)
+        clamp = ann["disp"] * abs(1.0 / self.dv) > 1e-6
+        c_s = np.where(clamp, h_lin, 0.0) / abs(self.dv)
+        grads = {}
+        if a_hi > a_lo and out_u.shape[0]:
+            self._deposit_grad(ann, a_lo, a_hi, out_u, out_s, w, h_vel * ann["sin_i"] / self.dv,
+                               zero, c_s, xs, ys, window[0])
+        grads["v_rot"] = self._cut(out_u, box, single=True)
+        grads["dispersion"] = self._cut(out_s, box, single=True)
+        if expansion:
+            out_e, scratch = self._box_cubes(box, window, 2)
+            if a_hi > a_lo and out_e.shape[0]:
+                self._deposit_grad(ann, a_lo, a_hi, out_e, scratch, w, zero,
+                                   h_vel * ann["sin_i"] / self.dv, zero, xs, ys, window[0])
+            grads["v_exp"] = self._cut(out_e, box, single=True)
+        return grads
+
+    def _deposit_grad(self, ann, a_lo, a_hi, out_u, out_s, weight, cu_cos, cu_sin, c_s, xs,
+                      ys, chan0):
+        first = 1 if self.response == "hanning" else 0
+        u0 = self.velocity[0] + (chan0 - first) * self.dv
+        kern.deposit_grad(out_u, out_s, a_lo, a_hi, self.r_mid, self.n_az, self.az0, weight,
+                          cu_cos, cu_sin, c_s, ann["disp"], ann["vrot"], ann["vexp"], ann["x0"],
+                          ann["y0"], ann["sin_pa"], ann["cos_pa"], ann["sin_i"], ann["cos_i"],
+                          ann["vsys"], self.z_nodes, self.z_weights, self.jinv,
+                          *self._box_offsets((ys, xs)),
+                          float(u0), 1.0 / self.dv, self.response != "none",
+                          min(out_u.shape[0], 8))
 
     def surface_basis(self, p: dict) -> np.ndarray:
         """Observed moment-0 maps (n_rings, ny, nx) of each ring's hat function of unit

@@ -99,7 +99,8 @@ def fit_rings_3d(cube, *, noise=None, mask=None, center=None, position_angle=Non
                  fix=(), stages=(1, 2, 3), final_geometry: str = "median",
                  bootstrap: int = 0, seed: int | None = 0, expansion: bool = False,
                  scale_height=0.0, loss: str = "chi2", channel_response: str = "tophat",
-                 oversample: int = 4, progress: bool = False) -> RingFit3D:
+                 oversample: int = 4, smoothing="auto", surface_normalisation: str = "rings",
+                 progress: bool = False) -> RingFit3D:
     """Fit a 3D tilted-ring disk model to a cube (rotation curves free of beam smearing).
 
     Parameters
@@ -137,6 +138,20 @@ def fit_rings_3d(cube, *, noise=None, mask=None, center=None, position_angle=Non
         Minimise chi^2, or a soft absolute residual (scipy's 'soft_l1', |r| for residuals
         beyond the noise), which resists outliers.
     channel_response : {'tophat', 'hanning', 'none'}
+    oversample : int
+        Disk-plane samples per pixel step of the model.
+    smoothing : 'auto' or float >= 0
+        Weight of a penalty on the second differences of v_rot and of the dispersion
+        between rings: the chi^2 that a second difference of one typical per-ring error
+        costs.  'auto' (default) sets it from how much the beam mixes neighbouring
+        rings, exp(-16 ln 2 (ring_width / beam FWHM)^2): 0.0625 for rings half a beam
+        wide, 1.5e-5 for one beam (nothing).  0 turns it off.
+    surface_normalisation : {'rings', 'pixels'}
+        How the model's intensity is tied to the data (both common practice): 'rings'
+        (default) gives each ring a face-on Sigma, solved against the data's moment 0;
+        'pixels' scales the model in every pixel so that its moment 0 is the data's (the
+        model then only shapes the lines; clumpy or lopsided disks fit better, and the
+        moment-0 noise that enters the model is not in the errors).
 
     Returns
     -------
@@ -144,12 +159,15 @@ def fit_rings_3d(cube, *, noise=None, mask=None, center=None, position_angle=Non
 
     Notes
     -----
-    Surface brightness is normalised ring by ring: for every trial geometry the rings'
-    face-on Sigma are the non-negative least-squares match of the model's moment 0 to
-    the data's (summed over all channels).  v_rot_err = sqrt(formal^2 + ((v_rot_receding
+    Surface brightness: for every trial geometry the rings' face-on Sigma are the
+    non-negative least-squares match of the model's moment 0 to the data's (summed over
+    all channels); with ``surface_normalisation='pixels'`` the model is then rescaled
+    pixel by pixel to the data's moment 0.  v_rot_err = sqrt(formal^2 + ((v_rot_receding
     - v_rot_approaching) / 2)^2) as in 2D; the formal error (``v_rot_err_formal``) is the
     sandwich covariance for beam-correlated noise (see :mod:`kinemap.rings.fit3d`) or the
-    bootstrap scatter.  ``dispersion_err`` is built the same way.
+    bootstrap scatter.  ``dispersion_err`` is built the same way.  The smoothness
+    penalty is in the covariance (it narrows the scatter of the fitted values and their
+    errors alike); the bias it gives a curve that bends sharply between rings is not.
     """
     from kinemap.rings._stage3d_run import run_fit
 
@@ -159,4 +177,5 @@ def fit_rings_3d(cube, *, noise=None, mask=None, center=None, position_angle=Non
                    final_geometry=final_geometry, bootstrap=bootstrap, seed=seed,
                    expansion=expansion, scale_height=scale_height, loss=loss,
                    channel_response=channel_response, oversample=oversample,
+                   smoothing=smoothing, surface_normalisation=surface_normalisation,
                    progress=progress)
