@@ -28,6 +28,7 @@ from kinemap.spectral.response import noise_correlation, variance_of_sum
 __all__ = ["SignalMask", "make_mask", "as_mask", "MASK_METHODS"]
 
 MASK_METHODS = ("smooth", "threshold", "none")
+_MAX_KERNEL_MAPS = 10  # the widest smoothing kernel, in map widths
 
 
 @dataclass(frozen=True)
@@ -167,10 +168,20 @@ def make_mask(cube, *, noise=None, method: str = "smooth", threshold: float | No
         fwhm_pix = smooth_beams * beam_fwhm_pix
     else:
         beam_fwhm_pix, fwhm_pix = 0.0, smooth_pixels
+    ny, nx = cube.shape[1:]
+    if not fwhm_pix <= _MAX_KERNEL_MAPS * max(ny, nx):
+        # a kernel many maps wide blurs nothing into signal and can cost any amount of memory
+        raise KinemapError(
+            f"the smooth mask's kernel would be {fwhm_pix:.3g} pixels wide, more than "
+            f"{_MAX_KERNEL_MAPS} times the {nx} x {ny} pixel map: the beam (BMAJ/BMIN, in "
+            "degrees) looks wrong; give the beam with --beam, or use --mask threshold")
     if min_pixels is None:
         # one resolution element of the smoothed cube: noise islands are about this big,
         # so a real source must cover more.  1.1331 = pi / (4 ln 2), Gaussian area / FWHM^2.
-        min_pixels = int(max(1, round(1.1331 * (beam_fwhm_pix ** 2 + fwhm_pix ** 2))))
+        # The element is cut to the map: on a map one row (or a few pixels) wide no island
+        # can be wider than the map, and an uncut element would drop every island.
+        width = float(np.hypot(beam_fwhm_pix, fwhm_pix))
+        min_pixels = int(max(1, round(1.1331 * min(width, ny) * min(width, nx))))
     if noise is None:
         from kinemap.maps.noise import estimate_noise
 
