@@ -13,6 +13,7 @@ from kinemap.errors import KinemapError
 from kinemap.io._header import find_image_hdu_2d, open_fits, parse_bunit, sha256
 from kinemap.io.beams import read_beam
 from kinemap.io.cube import CubeMeta
+from kinemap.spectral.axes import SPECTRAL_CTYPES
 from kinemap.spectral.frames import normalise_frame
 
 __all__ = ["SkyMap", "read_map", "is_2d_image"]
@@ -28,13 +29,16 @@ class SkyMap:
 
 
 def is_2d_image(path) -> bool:
-    """True when the first image HDU of ``path`` has exactly two axes longer than one."""
+    """True when the first image HDU of ``path`` has exactly two axes longer than one and
+    neither is spectral (a cube of one row or one column is still a cube)."""
     hdul = open_fits(path)
     try:
         for hdu in hdul:
             if getattr(hdu, "is_image", False) and hdu.header.get("NAXIS", 0) >= 2:
                 n = [hdu.header.get(f"NAXIS{i + 1}", 1) for i in range(hdu.header["NAXIS"])]
-                return sum(k > 1 for k in n) == 2
+                ctypes = [str(hdu.header.get(f"CTYPE{i + 1}", "")).split("-")[0].strip().upper()
+                          for i, k in enumerate(n) if k > 1]
+                return len(ctypes) == 2 and not any(c in SPECTRAL_CTYPES for c in ctypes)
         return False
     finally:
         hdul.close()
