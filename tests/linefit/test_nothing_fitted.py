@@ -6,11 +6,12 @@ import numpy as np
 import pytest
 from conftest import gaussian_cube, make_header, run_cli, write_cube
 
-from kinemap import KinemapError, fit_cube, read_cube
+from kinemap import KinemapError, fit_cube, make_mask, read_cube
 
 
 def _cube(tmp_path, amp):
-    h = make_header("VRAD", nchan=40, ny=6, nx=5, crval=-20.0, cdelt=1.0, cunit="km/s")
+    h = make_header("VRAD", nchan=40, ny=6, nx=5, crval=-20.0, cdelt=1.0, cunit="km/s",
+                    extra={"BMAJ": 5e-3, "BMIN": 5e-3, "BPA": 0.0})
     data = gaussian_cube(40, 6, 5, centre_chan=20.0, sigma_chan=3.0, amp=amp, noise=0.1, seed=3)
     return write_cube(tmp_path / "c.fits", data, h)
 
@@ -19,7 +20,7 @@ def test_all_too_faint_is_refused(tmp_path):
     cube = read_cube(_cube(tmp_path, amp=0.0))
     with pytest.raises(KinemapError, match=r"no spectrum could be fitted \(30 of 30 pixels: "
                        r"peak S/N below threshold 50.*lower --snr-threshold"):
-        fit_cube(cube, snr_threshold=50.0)
+        fit_cube(cube, snr_threshold=50.0, mask=make_mask(cube, method="none"))
 
 
 def test_a_fitted_cube_still_fits(tmp_path):
