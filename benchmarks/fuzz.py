@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import importlib
 import io
 import json
 import os
@@ -217,6 +218,16 @@ def run_all(variants, commands, *, jobs, timeout, spawn, root):
                     for a in COMMANDS[command] + ([] if command == "info" else COMMON)]
             todo.append((name, command, folder, argv))
     results, running = [], []
+    try:
+        _drive(todo, running, results, jobs=jobs, timeout=timeout, spawn=spawn)
+    except KeyboardInterrupt:
+        print("interrupted: the counts below are of the runs that finished", flush=True)
+        for r in running:
+            r.kill()
+    return results
+
+
+def _drive(todo, running, results, *, jobs, timeout, spawn):
     total, done = len(todo), 0
     while todo or running:
         while todo and len(running) < jobs:
@@ -239,7 +250,6 @@ def run_all(variants, commands, *, jobs, timeout, spawn, root):
             done += 1
             if kind not in ("ok", "clean refusal"):
                 print(f"[{done}/{total}] {kind}: {r.variant} / {r.command}: {msg}", flush=True)
-    return results
 
 
 CLASSES = ["ok", "clean refusal", "unclean refusal", "internal error", "hang", "silent nonsense"]
@@ -283,10 +293,9 @@ def main(argv=None):
     if args.only:
         variants = [v for v in variants if re.search(args.only, v[0])]
     commands = args.commands.split(",")
-    if not args.spawn:
-        import kinemap.cli  # noqa: F401  (imported once, before the forks)
-        import kinemap.pipeline.info  # noqa: F401
-        import kinemap.pipeline.runner  # noqa: F401
+    if not args.spawn:  # imported once, before the forks
+        for module in ("kinemap.cli", "kinemap.pipeline.info", "kinemap.pipeline.runner"):
+            importlib.import_module(module)
     root = args.keep or tempfile.mkdtemp(prefix="kinemap-fuzz-")
     os.makedirs(root, exist_ok=True)
     t0 = time.monotonic()
