@@ -186,7 +186,8 @@ def classify(rc, stdout, stderr, command, out):
     if rc == 0:
         why = _nonsense(command, out, stdout)
         return ("silent nonsense", why) if why else ("ok", "")
-    last = lines[-1] if lines else "(nothing on stderr)"
+    said = [ln for ln in lines if "error" in ln.lower()]
+    last = (said or lines or ["(nothing on stderr)"])[-1]
     if rc != 2 or "Traceback" in stderr or "internal error" in stderr:
         return "internal error", last
     errors = [ln for ln in lines if ln.startswith("kinemap: error")]
@@ -252,6 +253,8 @@ def _drive(todo, running, results, *, jobs, timeout, spawn):
                 print(f"[{done}/{total}] {kind}: {r.variant} / {r.command}: {msg}", flush=True)
 
 
+_GROUPS = {"header": _fuzz_variants.header_variants, "units": _fuzz_variants.unit_variants,
+           "shapes": _fuzz_variants.shape_variants, "files": _fuzz_variants.file_variants}
 CLASSES = ["ok", "clean refusal", "unclean refusal", "internal error", "hang", "silent nonsense"]
 
 
@@ -282,6 +285,7 @@ def main(argv=None):
     ap.add_argument("--timeout", type=float, default=60.0, help="seconds before a run is a hang")
     ap.add_argument("--commands", default=",".join(COMMANDS), help="comma-separated subset")
     ap.add_argument("--only", help="a regular expression on variant names")
+    ap.add_argument("--group", choices=sorted(_GROUPS), help="one group of variants")
     ap.add_argument("--spawn", action="store_true", help="a fresh interpreter per run")
     ap.add_argument("--json", help="write every run's result to this file")
     ap.add_argument("--keep", help="keep the variants and outputs in this folder")
@@ -290,6 +294,9 @@ def main(argv=None):
     variants = _fuzz_variants.all_variants()
     if args.quick:
         variants = [v for v in variants if v[0] in QUICK]
+    if args.group:
+        names = {name for name, _ in _GROUPS[args.group]()}
+        variants = [v for v in variants if v[0] in names]
     if args.only:
         variants = [v for v in variants if re.search(args.only, v[0])]
     commands = args.commands.split(",")
