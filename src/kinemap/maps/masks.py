@@ -202,10 +202,16 @@ def make_mask(cube, *, noise=None, method: str = "smooth", threshold: float | No
         sm = ndimage.uniform_filter1d(sm, size=int(smooth_channels), axis=0, mode="constant")
     factor = _smoothing_noise_factor(filled, finite, sig, int(smooth_channels),
                                      noise_correlation(channel_response))
+    # Islands grow through blank spectra where the smoothed emission reaches them (the
+    # noise there is the median noise), so blanks scattered over a source do not break it
+    # into islands too small to keep; blank voxels are never signal in the end.
+    sigma = noise.sigma
+    if np.isfinite(sigma).any():
+        sigma = np.where(np.isfinite(sigma), sigma, np.nanmedian(sigma))
     with np.errstate(invalid="ignore", divide="ignore"):
-        snr = sm / (noise.sigma[None] * factor)
-    seeds = finite & (snr > t)
-    grown = ndimage.binary_propagation(seeds, mask=finite & (snr > grow_threshold))
+        snr = sm / (sigma[None] * factor)
+    seeds = snr > t
+    grown = ndimage.binary_propagation(seeds, mask=snr > grow_threshold)
     labels, nlab = ndimage.label(grown)
     if nlab:
         objs = ndimage.find_objects(labels)
@@ -216,6 +222,7 @@ def make_mask(cube, *, noise=None, method: str = "smooth", threshold: float | No
             nch = int(sub.any(axis=(1, 2)).sum())
             keep[k] = npix >= min_pixels and nch >= min_channels
         grown = keep[labels]
+    grown &= finite
     settings = {"threshold": t, "grow_threshold": grow_threshold, "smooth_fwhm_pixels": fwhm_pix,
                 "smooth_channels": int(smooth_channels), "min_pixels": int(min_pixels),
                 "min_channels": int(min_channels), "smoothed_noise_factor": factor}
