@@ -28,7 +28,7 @@ def _strip(tmp_path, ny, nx, *, seed=0, extra=None):
     return write_cube(tmp_path / "strip.fits", data, h), truth
 
 
-@pytest.mark.parametrize("ny, nx", [(1, 16), (16, 1), (2, 16), (1, 3)])
+@pytest.mark.parametrize("ny, nx", [(1, 16), (16, 1), (2, 16), (1, 3), (3, 3)])
 def test_smooth_mask_keeps_emission_of_a_thin_map(tmp_path, ny, nx):
     path, truth = _strip(tmp_path, ny, nx)
     cube = read_cube(path)

@@ -181,7 +181,8 @@ def make_mask(cube, *, noise=None, method: str = "smooth", threshold: float | No
         # The element is cut to the map: on a map one row (or a few pixels) wide no island
         # can be wider than the map, and an uncut element would drop every island.
         width = float(np.hypot(beam_fwhm_pix, fwhm_pix))
-        min_pixels = int(max(1, round(1.1331 * min(width, ny) * min(width, nx))))
+        area = 1.1331 * min(width, ny) * min(width, nx)
+        min_pixels = int(max(1, min(round(area), ny * nx)))
     if noise is None:
         from kinemap.maps.noise import estimate_noise
 
