@@ -12,6 +12,7 @@ import pytest
 from conftest import gaussian_cube, make_header, run_cli, write_cube
 
 from kinemap import KinemapError, compute_moments, estimate_noise, make_mask, read_cube
+from kinemap.maps.moments import noise_and_moments
 
 BEAM = {"BMAJ": 5e-3, "BMIN": 5e-3, "BPA": 0.0}  # 2.5 pixels of 2e-3 deg
 
@@ -106,3 +107,19 @@ def test_smooth_mask_through_scattered_blank_spectra(tmp_path):
     m1 = compute_moments(cube, mask=mask, noise=noise).arrays["moment1"]
     assert np.isfinite(m1[~blank]).all() and np.isnan(m1[blank]).all()
     np.testing.assert_allclose(m1[~blank], truth[~blank], atol=0.5)  # seeded synthetic truth
+
+
+@pytest.mark.parametrize("nchan", [1, 2, 4])
+def test_too_few_channels_named(tmp_path, nchan):
+    """A cube of fewer than five channels has fewer than three second differences per
+    spectrum, too few for a clipped RMS: the message names the channel count, not
+    line-free ranges (which cannot help)."""
+    h = make_header("VRAD", nchan=nchan, ny=6, nx=6, crval=-2.0, cdelt=1.0, cunit="km/s",
+                    extra=BEAM)
+    data = np.random.default_rng(9).normal(0, 0.1, (nchan, 6, 6)) + 1.0
+    cube = read_cube(write_cube(tmp_path / "few.fits", data, h))
+    s = "s" if nchan > 1 else ""
+    with pytest.raises(KinemapError, match=f"the cube has {nchan} channel{s}: too few"):
+        estimate_noise(cube)
+    with pytest.raises(KinemapError, match=f"the cube has {nchan} channel{s}: too few"):
+        noise_and_moments(cube)  # the fused pass the maps command runs says the same

@@ -299,7 +299,8 @@ def noise_and_moments(cube, *, mask=None, line_free="auto", channel_response: st
                      rho=np.ascontiguousarray(noise_correlation(response), np.float64))
     sigma, nused, finite = out.pop("sigma"), out.pop("nused"), out.pop("finite")
     try:
-        noise = noise_map(sigma, nused, finite, cube.meta.bunit, auto, stacklevel=3)
+        noise = noise_map(sigma, nused, finite, cube.meta.bunit, auto, stacklevel=3,
+                          nchan=nchan)
     except KinemapError as exc:
         if _strict:
             raise
