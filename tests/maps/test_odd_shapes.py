@@ -123,3 +123,15 @@ def test_too_few_channels_named(tmp_path, nchan):
         estimate_noise(cube)
     with pytest.raises(KinemapError, match=f"the cube has {nchan} channel{s}: too few"):
         noise_and_moments(cube)  # the fused pass the maps command runs says the same
+
+
+def test_empty_threshold_mask_suggests_no_mask(tmp_path):
+    h = make_header("VRAD", nchan=30, ny=8, nx=8, crval=-20.0, cdelt=1.0, cunit="km/s",
+                    extra=BEAM)
+    rng = np.random.default_rng(11)
+    cube = read_cube(write_cube(tmp_path / "n.fits", rng.normal(0, 0.1, (30, 8, 8)), h))
+    noise = estimate_noise(cube)
+    mask = make_mask(cube, noise=noise, method="threshold", threshold=50.0)
+    with pytest.raises(KinemapError, match=r"threshold signal mask found no emission \(no "
+                       r"voxel above S/N 50\).*or use --mask none$"):
+        compute_moments(cube, mask=mask, noise=noise)

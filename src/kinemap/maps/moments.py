@@ -200,9 +200,10 @@ def _why_empty(out, mask) -> str | None:
             return ("the cube has no finite value to make moment maps of (every spectrum is "
                     "blank or the mask given selects nothing)")
         what = {"smooth": "smooth-and-mask", "threshold": "threshold"}.get(mask.method, mask.method)
+        other = "--mask threshold or --mask none" if mask.method == "smooth" else "--mask none"
         return (f"the {what} signal mask found no emission (no voxel above S/N "
                 f"{mask.threshold:g}), so every moment map would be blank; lower --threshold, "
-                "or use --mask threshold or --mask none")
+                f"or use {other}")
     return ("the moment maps have no finite value although the mask selects voxels: the "
             "velocity axis or the channel widths are not finite; check CRVAL/CDELT/CRPIX of "
             "the spectral axis")
