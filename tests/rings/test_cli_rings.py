@@ -1,5 +1,6 @@
 """`kinemap rings` from a velocity map or a cube: products, tables, bad input."""
 import json
+import re
 
 import astropy.units as u
 import numpy as np
@@ -128,3 +129,27 @@ def test_rings_velocity_field_from_moments(tmp_path):
     manifest = json.loads((out / "manifest.json").read_text())
     assert "fit" not in manifest["timings"] and "fit_status" not in manifest["products"]
     assert "rings" in manifest["timings"]
+
+
+def _thin_cube(tmp_path, nchan, ny, nx):
+    from conftest import gaussian_cube, make_header, write_cube
+
+    h = make_header("VRAD", nchan=nchan, ny=ny, nx=nx, crval=-20.0, cdelt=1.0, cunit="km/s",
+                    extra={"BMAJ": 5e-3, "BMIN": 5e-3, "BPA": 0.0})
+    data = gaussian_cube(nchan, ny, nx, centre_chan=nchan / 2, sigma_chan=2.0, amp=3.0,
+                         noise=0.1, seed=2)
+    return write_cube(tmp_path / "thin.fits", data, h)
+
+
+@pytest.mark.parametrize("shape, match", [
+    # a one-row cube is a cube (its velocity field is too small for rings), not a 2D map
+    ((40, 1, 16), "usable .*pixels; a tilted-ring fit needs at least"),
+    # a one-channel cube is an image in K: not a velocity map
+    ((1, 16, 16), "is a 2D image in K, not a velocity map"),
+])
+def test_rings_on_thin_cubes_refused_in_one_line(tmp_path, shape, match):
+    """benchmarks/fuzz.py: both crashed with "'K' and 'km / s' are not convertible"."""
+    code, out, err = run_cli("rings", _thin_cube(tmp_path, *shape), "--out", str(tmp_path / "o"),
+                             "--no-plots", "--no-progress")
+    assert code == 2, err
+    assert len(err.strip().splitlines()) == 1 and re.search(match, err), err

@@ -231,6 +231,27 @@ def _noise_and_mask(cube, noise, mask, *, channel_response, max_memory, progress
     return noise, as_mask(mask, cube)
 
 
+_NOTHING_FITTED_FIX = {
+    Status.TOO_FAINT: "lower --snr-threshold, or check that the line lies in the band",
+    Status.MASKED: "use a wider mask (--mask threshold or --mask none) or a larger --region",
+    Status.NO_DATA: "check that the cube has data and more channels than the model has "
+                    "parameters",
+}
+
+
+def _refuse_if_nothing_fitted(velocity, status, snr_threshold):
+    """A fit in which no pixel has a finite velocity is refused with the commonest
+    reason, instead of maps that are NaN everywhere."""
+    if np.isfinite(velocity).any():
+        return
+    codes, counts = np.unique(status, return_counts=True)
+    common = Status(int(codes[np.argmax(counts)]))
+    reason = STATUS_DESCRIPTIONS[common].replace("threshold", f"threshold {snr_threshold:g}")
+    fix = _NOTHING_FITTED_FIX.get(common, "check the cube's spectral axis and the fit options")
+    raise KinemapError(f"no spectrum could be fitted ({int(counts.max())} of {status.size} "
+                       f"pixels: {reason}); {fix}")
+
+
 def _example_pixels(status, total) -> list[tuple[str, int, int]]:
     """(label, y, x) of the brightest, median and faintest accepted pixel."""
     vals = np.where(status == Status.OK, total, np.nan)
@@ -338,6 +359,7 @@ def fit_cube(cube, *, noise=None, mask=None, components=1, baseline: str = "none
     settings = {k: v for k, v in options.items() if k != "model"}
     settings.update({k: v for k, v in settings_extra.items() if v is not None})
     settings["descriptions"] = {int(k): v for k, v in STATUS_DESCRIPTIONS.items()}
+    _refuse_if_nothing_fitted(out["velocity"], out["status"], snr_threshold)
     comp = {}
     for q in COMPONENT_QUANTITIES:
         comp[q], comp[q + "_err"] = out[q], out[q + "_err"]

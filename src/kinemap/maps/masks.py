@@ -34,6 +34,7 @@ __all__ = ["SignalMask", "make_mask", "as_mask", "MASK_METHODS", "MASK_MODES"]
 
 MASK_METHODS = ("smooth", "threshold", "none")
 MASK_MODES = ("and", "replace")
+_MAX_KERNEL_MAPS = 10  # the widest smoothing kernel, in map widths
 
 
 @dataclass(frozen=True)
@@ -260,10 +261,21 @@ def _signal_mask(cube, noise, method, threshold, grow_threshold, smooth_beams, s
         fwhm_pix = smooth_beams * beam_fwhm_pix
     else:
         beam_fwhm_pix, fwhm_pix = 0.0, smooth_pixels
+    ny, nx = cube.shape[1:]
+    if not fwhm_pix <= _MAX_KERNEL_MAPS * max(ny, nx):
+        # a kernel many maps wide blurs nothing into signal and can cost any amount of memory
+        raise KinemapError(
+            f"the smooth mask's kernel would be {fwhm_pix:.3g} pixels wide, more than "
+            f"{_MAX_KERNEL_MAPS} times the {nx} x {ny} pixel map: the beam (BMAJ/BMIN, in "
+            "degrees) looks wrong; give the beam with --beam, or use --mask threshold")
     if min_pixels is None:
         # one resolution element of the smoothed cube: noise islands are about this big,
         # so a real source must cover more.  1.1331 = pi / (4 ln 2), Gaussian area / FWHM^2.
-        min_pixels = int(max(1, round(1.1331 * (beam_fwhm_pix ** 2 + fwhm_pix ** 2))))
+        # The element is cut to the map: on a map one row (or a few pixels) wide no island
+        # can be wider than the map, and an uncut element would drop every island.
+        width = float(np.hypot(beam_fwhm_pix, fwhm_pix))
+        area = 1.1331 * min(width, ny) * min(width, nx)
+        min_pixels = int(max(1, min(round(area), ny * nx)))
     if noise is None:
         from kinemap.maps.noise import estimate_noise
 
@@ -284,10 +296,16 @@ def _signal_mask(cube, noise, method, threshold, grow_threshold, smooth_beams, s
         sm = ndimage.uniform_filter1d(sm, size=int(smooth_channels), axis=0, mode="constant")
     factor = _smoothing_noise_factor(filled, finite, sig, int(smooth_channels),
                                      noise_correlation(channel_response))
+    # Islands grow through blank spectra where the smoothed emission reaches them (the
+    # noise there is the median noise), so blanks scattered over a source do not break it
+    # into islands too small to keep; blank voxels are never signal in the end.
+    sigma = noise.sigma
+    if np.isfinite(sigma).any():
+        sigma = np.where(np.isfinite(sigma), sigma, np.nanmedian(sigma))
     with np.errstate(invalid="ignore", divide="ignore"):
-        snr = sm / (noise.sigma[None] * factor)
-    seeds = finite & (snr > t)
-    grown = ndimage.binary_propagation(seeds, mask=finite & (snr > grow_threshold))
+        snr = sm / (sigma[None] * factor)
+    seeds = snr > t
+    grown = ndimage.binary_propagation(seeds, mask=snr > grow_threshold)
     labels, nlab = ndimage.label(grown)
     if nlab:
         objs = ndimage.find_objects(labels)
@@ -298,6 +316,7 @@ def _signal_mask(cube, noise, method, threshold, grow_threshold, smooth_beams, s
             nch = int(sub.any(axis=(1, 2)).sum())
             keep[k] = npix >= min_pixels and nch >= min_channels
         grown = keep[labels]
+    grown &= finite
     settings = {"threshold": t, "grow_threshold": grow_threshold, "smooth_fwhm_pixels": fwhm_pix,
                 "smooth_channels": int(smooth_channels), "min_pixels": int(min_pixels),
                 "min_channels": int(min_channels), "smoothed_noise_factor": factor}

@@ -196,7 +196,29 @@ def _mask_mode(mask):
     return USE_FINITE, 0.0
 
 
+def _why_empty(out, mask) -> str | None:
+    """Why no pixel has a finite moment 0 (one line naming the cause and the fix), or
+    None when some pixel has one: maps without a single value are refused, not written."""
+    if np.isfinite(out["moment0"]).any():
+        return None
+    if not (out["nchan"] > 0).any():
+        if mask is None or mask.method in ("none", "given"):
+            return ("the cube has no finite value to make moment maps of (every spectrum is "
+                    "blank or the mask given selects nothing)")
+        what = {"smooth": "smooth-and-mask", "threshold": "threshold"}.get(mask.method, mask.method)
+        other = "--mask threshold or --mask none" if mask.method == "smooth" else "--mask none"
+        return (f"the {what} signal mask found no emission (no voxel above S/N "
+                f"{mask.threshold:g}), so every moment map would be blank; lower --threshold, "
+                f"or use {other}")
+    return ("the moment maps have no finite value although the mask selects voxels: the "
+            "velocity axis or the channel widths are not finite; check CRVAL/CDELT/CRPIX of "
+            "the spectral axis")
+
+
 def _moment_maps(out, noise, mask, cube, response, t0) -> MomentMaps:
+    why = _why_empty(out, mask)
+    if why is not None:
+        raise KinemapError(why)
     out["noise"] = noise.sigma if noise is not None else None
     out["mask"] = out["nchan"] > 0
     return MomentMaps(arrays=out, meta=cube.meta, channel_response=response,
@@ -284,7 +306,8 @@ def noise_and_moments(cube, *, mask=None, line_free="auto", channel_response: st
                      rho=np.ascontiguousarray(noise_correlation(response), np.float64))
     sigma, nused, finite = out.pop("sigma"), out.pop("nused"), out.pop("finite")
     try:
-        noise = noise_map(sigma, nused, finite, cube.meta.bunit, auto, stacklevel=3)
+        noise = noise_map(sigma, nused, finite, cube.meta.bunit, auto, stacklevel=3,
+                          nchan=nchan)
     except KinemapError as exc:
         if _strict:
             raise

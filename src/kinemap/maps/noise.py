@@ -73,6 +73,8 @@ class NoiseMap:
 # channels, 1 sigma^2 after Hanning smoothing.  The MAD keeps the few large values at
 # sharp line edges from biasing the estimate.
 _SECOND_DIFF = np.array([1.0, -2.0, 1.0])
+# the clipped RMS needs three values (_noise_kernel), three second differences five channels
+_MIN_CHANNELS = 5
 
 
 def line_free_channels(velocity: np.ndarray, ranges) -> np.ndarray:
@@ -128,7 +130,8 @@ def estimate_noise(cube, *, line_free="auto", channel_response: str = "tophat",
                      max_memory=max_memory, factor=2.0, progress=progress and "noise",
                      client=client, fixed=fixed, factor_2nd=factor, clip=CLIP,
                      correction=clip_correction(CLIP))
-    return noise_map(out["sigma"], out["nused"], out["finite"], cube.meta.bunit, auto)
+    return noise_map(out["sigma"], out["nused"], out["finite"], cube.meta.bunit, auto,
+                     nchan=cube.shape[0])
 
 
 def noise_settings(cube, line_free, channel_response):
@@ -141,15 +144,22 @@ def noise_settings(cube, line_free, channel_response):
     return auto, fixed, factor
 
 
-def noise_map(sigma, nused, finite, unit, auto, *, stacklevel=3) -> NoiseMap:
+def noise_map(sigma, nused, finite, unit, auto, *, stacklevel=3, nchan=None) -> NoiseMap:
     """The :class:`NoiseMap` of the kernels' per-pixel outputs, refusing a cube with nothing
-    to measure (``KinemapError``) and warning when most pixels are undetermined."""
+    to measure (``KinemapError``, naming the likely cause; ``nchan`` is the cube's number
+    of channels) and warning when most pixels are undetermined."""
     if not bool(finite.any()):
         raise KinemapError("the cube holds no finite values (all NaN); check the input file")
     bad = ~np.isfinite(sigma)
+    if bad.all() and auto and nchan is not None and nchan < _MIN_CHANNELS:
+        raise KinemapError(
+            f"the cube has {nchan} channel{'s' if nchan != 1 else ''}: too few to measure the "
+            f"noise or a line (at least {_MIN_CHANNELS} are needed); give a cube with more "
+            "channels")
     if bad.all():
-        raise KinemapError("the noise could not be estimated for any pixel (constant or "
-                           "too few channels); give line-free ranges with --line-free")
+        raise KinemapError("the noise could not be estimated for any pixel: the spectra are "
+                           "constant, or NaN channels leave no three finite neighbours; give "
+                           "line-free ranges with --line-free")
     if bad.mean() > 0.5:
         warnings.warn(f"noise undetermined for {bad.mean():.0%} of pixels", NoiseWarning,
                       stacklevel=stacklevel)

@@ -23,7 +23,7 @@ from kinemap.linefit import LineModel
 from kinemap.linefit.stage import fit_cube, instrument_sigma_from
 from kinemap.io.products import Product
 from kinemap.io.results import StageResult
-from kinemap.status import Status
+from kinemap.status import STATUS_DESCRIPTIONS, Status
 from kinemap.widths.budget import width_budget
 from kinemap.spectral.catalogue import check_line_in_range, get_line, load_catalogue
 
@@ -263,6 +263,21 @@ def _line_names(lines) -> list[str]:
     return names
 
 
+def _refuse_if_no_budget(budget):
+    """A budget with no finite non-thermal width anywhere is refused with the commonest
+    reason, instead of products that are NaN everywhere."""
+    status = np.asarray(budget.width_status)
+    if np.isfinite(budget.nonthermal_dispersion).any() or status.size == 0:
+        return
+    codes, counts = np.unique(status, return_counts=True)
+    common = Status(int(codes[np.argmax(counts)]))
+    fix = ("check the temperature, the channel width (CDELT of the spectral axis) and "
+           "--instrument-sigma" if common == Status.UNPHYSICAL else
+           "check the temperature and that the lines lie in the band")
+    raise KinemapError(f"no pixel has a line-width budget ({int(counts.max())} of "
+                       f"{status.size} pixels: {STATUS_DESCRIPTIONS[common]}); {fix}")
+
+
 def line_widths(cube, *, lines, temperature=None, temperature_err=None, mu: float = 2.33,
                 noise=None, mask=None, instrument_sigma=None, resolving_power=None,
                 free_velocity: bool = False, ratios=None, catalogue=None,
@@ -333,6 +348,7 @@ def line_widths(cube, *, lines, temperature=None, temperature_err=None, mu: floa
                           temperature_err=_temperature(temperature_err, "temperature_err"),
                           mu=float(mu), input_status={n: fit.status for n in measured},
                           catalogue=cat)
+    _refuse_if_no_budget(budget)
     settings = dict(lines=names, temperature=None if temp is None or temp.ndim else str(temp),
                     mu=float(mu), free_velocity=bool(free_velocity), ratios=ratios,
                     baseline=baseline,
