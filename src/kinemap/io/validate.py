@@ -290,6 +290,11 @@ def _value_of(header, key):
             return _Text(image[10:].split("/", 1)[0].strip() or image[8:].strip())
 
 
+def _get(header, key, default=None):
+    """``header.get(key)`` that never raises: an unparsable card comes back as its text."""
+    return _value_of(header, key) if key in header else default
+
+
 def _has_cd(header, i, naxis) -> bool:
     return any(f"CD{i}_{j}" in header for j in range(1, naxis + 1))
 
@@ -298,7 +303,7 @@ def check_header(header, name) -> None:
     """Refuse a cube header whose axes, scaling or rest values cannot give right numbers."""
     naxis = int(header.get("NAXIS", 0))
     for i in range(1, naxis + 1):
-        n = header.get(f"NAXIS{i}")
+        n = _get(header, f"NAXIS{i}")
         if not _is_int(n) or n < 1:
             raise KinemapError(f"{name}: NAXIS{i} = {n!r}; every axis of a cube needs a "
                                "positive length")
@@ -321,7 +326,7 @@ def _check_scaling(header, name):
         raise KinemapError(f"{name}: BSCALE = 0 would make every value BZERO; fix BSCALE "
                            "(1 for unscaled data)")
     if "BLANK" in header:
-        blank = header["BLANK"]
+        blank = _get(header, "BLANK")
         if not _is_int(blank):
             raise KinemapError(f"{name}: BLANK = {blank!r} is not an integer; BLANK names the "
                                "stored integer that means 'no data': fix or remove it")
@@ -331,7 +336,7 @@ def _check_scaling(header, name):
 
 
 def _check_spectral(header, name, i, naxis):
-    ctype = header[f"CTYPE{i}"].strip()
+    ctype = _get(header, f"CTYPE{i}").strip()
     fix = f"fix CRVAL{i}/CDELT{i}/CRPIX{i} of the {ctype} axis"
     _number(header, f"CRVAL{i}", name, required=True, fix=f"give CRVAL{i} as the {ctype} "
             f"value at the reference channel CRPIX{i}, a number", what=f" (the {ctype} value "
@@ -356,7 +361,7 @@ _PHYSICAL_UNIT = {"frequency": u.Hz, "wavelength": u.m, "velocity": u.m / u.s}
 
 def _check_unit(header, name, i, ctype):
     kind = SPECTRAL_CTYPES[ctype.upper()[:4]]
-    text = header.get(f"CUNIT{i}")
+    text = _get(header, f"CUNIT{i}")
     if text is None or (isinstance(text, str) and not text.strip()):
         return  # wcslib takes SI units; the velocity check below judges the magnitudes
     try:
@@ -387,7 +392,7 @@ def _check_celestial(header, name, i, kind, naxis):
         if cdelt == 0:
             raise KinemapError(f"{name}: CDELT{i} = 0: pixels without size; fix CDELT{i} "
                                "(the pixel size in degrees)")
-    text = header.get(f"CUNIT{i}")
+    text = _get(header, f"CUNIT{i}")
     scale = 1.0
     if text is not None and str(text).strip():
         try:
@@ -410,7 +415,7 @@ def _check_celestial(header, name, i, kind, naxis):
 
 def _mixing_terms(header, a, b):
     for key in (f"PC{a}_{b}", f"CD{a}_{b}", f"PC{a:03d}{b:03d}"):
-        value = header.get(key)
+        value = _get(header, key)
         if value is not None:
             yield key, value
 
