@@ -362,7 +362,7 @@ def _cmd_spectrum(args) -> int:
            f"{s['fit_dispersion_kms']:.2f} km/s" if s["fit_status"] == "ok"
            else f"no Gaussian fit ({s['fit_status']})")
     unit = s["unit"] or "no unit (the cube has no BUNIT)"
-    print(f"kinemap: spectrum of {s['aperture']} ({s['n_pixels']} pixels, {unit}): integral "
+    print(f"kinemap: spectrum of {s['aperture']}: {s['n_pixels']} pixels, {unit}; integral "
           f"{s['integrated']:.4g} +- {s['integrated_err']:.2g} {s['unit']} km/s".replace("  ", " ")
           + f"; {fit}")
     return 0
@@ -434,7 +434,8 @@ def _report(state, out):
     n = len(state.manifest["products"])
     empty = len(state.manifest.get("empty_products", ()))
     total = sum(state.manifest["timings"].values())
-    print(f"kinemap: wrote {n} products" + (f" ({empty} of them all NaN)" if empty else "")
+    print(f"kinemap: wrote {n} product{'' if n == 1 else 's'}"
+          + (f" ({empty} of them all NaN)" if empty else "")
           + f" to {out} in {total:.1f} s (velocities: {state.meta.convention} convention, "
           f"frame {state.meta.frame or 'unknown'})")
 

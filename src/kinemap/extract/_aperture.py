@@ -50,7 +50,7 @@ def aperture(cube, *, at=None, radius=None, region=None) -> tuple[np.ndarray, st
             what = f"regions in {region}"
     else:
         pixels = np.ones((ny, nx), bool)
-        what = "every pixel (global profile)"
+        what = "the whole map (global profile)"
     if cube.footprint is not None:
         pixels = pixels & cube.footprint
         what += f", inside the regions of {cube.meta.subset.get('region', 'the reader')}"
