@@ -183,6 +183,8 @@ def test_bad_keywords_are_named(tmp_path, edits, match):
     ("CDELT1", "NaN", r"CDELT1 = NaN is not a number"),
     ("BSCALE", "'abc'", r"BSCALE = 'abc' .* is not a number"),
     ("BZERO", "'x'", r"BZERO = 'x' .* is not a number"),
+    ("CUNIT3", "NaN", r"CUNIT3 = NaN is not a unit"),
+    ("BPA", "NaN", r"beam position angle \(BPA\) is not finite"),
 ])
 def test_unparsable_cards_are_named(tmp_path, key, text, match):
     """Cards astropy will not write (or silently drops on reading) are patched in as bytes."""
@@ -260,6 +262,7 @@ def test_real_cube_passes(real_cube_path):
     (lambda p: _patched(p, "CDELT3", "NaN"), "CDELT3"),
     (lambda p: _cube(p, CTYPE1="RA---XYZ"), "CTYPE1"),
     (lambda p: _cube(p, RESTFREQ=REST * 1.001), "RESTFREQ"),
+    (lambda p: _patched(p, "BPA", "NaN"), "BPA"),
 ])
 def test_cli_one_line_exit_2(tmp_path, make, keyword):
     """Exit 2 with one line on stderr naming the keyword: no traceback, no wcslib location
@@ -314,3 +317,13 @@ def test_cli_rings_inputs(tmp_path):
     assert is_2d_image(str(img)) and is_2d_image(str(onechan))
     assert not is_2d_image(str(ext))
     assert read_cube(str(ext)).shape == (40, 12, 10)
+
+
+def test_cli_rings_unparsable_ctype(tmp_path):
+    """rings looks at CTYPEs to tell a velocity map from a cube: an unparsable CTYPE3
+    (NaN) is named by the validation layer, not an internal error (benchmarks/fuzz.py)."""
+    path = _patched(tmp_path, "CTYPE3", "NaN")
+    code, _, err = run_cli("rings", path, "--out", str(tmp_path / "o"), "--no-plots")
+    assert code == 2, err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "CTYPE3" in lines[0] and "internal error" not in lines[0], err

@@ -13,6 +13,7 @@ from kinemap.errors import KinemapError
 from kinemap.io._header import find_image_hdu_2d, open_fits, parse_bunit, sha256
 from kinemap.io.beams import read_beam
 from kinemap.io.cube import CubeMeta
+from kinemap.io.validate import card_value
 from kinemap.spectral.axes import SPECTRAL_CTYPES
 from kinemap.spectral.frames import normalise_frame
 
@@ -43,18 +44,24 @@ def is_2d_image(path) -> bool:
         hdul.close()
 
 
+def _ctype(header, i) -> str:
+    """CTYPEi as text ('' when absent); an unparsable card (CTYPE3 = NaN) reads as its text
+    for the validation layer to name."""
+    return str(card_value(header, f"CTYPE{i}") if f"CTYPE{i}" in header else "")
+
+
 def _holds_cube(header) -> bool:
     naxis = int(header.get("NAXIS", 0))
     lengths = [int(header.get(f"NAXIS{i}", 1)) for i in range(1, naxis + 1)]
     spectral = [n for i, n in enumerate(lengths, 1)
-                if str(header.get(f"CTYPE{i}", "")).strip().upper()[:4] in SPECTRAL_CTYPES]
+                if _ctype(header, i).strip().upper()[:4] in SPECTRAL_CTYPES]
     return any(n > 1 for n in spectral) or sum(n > 1 for n in lengths) >= 3
 
 
 def _one_channel_hint(header) -> str:
     naxis = int(header.get("NAXIS", 0))
     for i in range(1, naxis + 1):
-        if (str(header.get(f"CTYPE{i}", "")).strip().upper()[:4] in SPECTRAL_CTYPES
+        if (_ctype(header, i).strip().upper()[:4] in SPECTRAL_CTYPES
                 and header.get(f"NAXIS{i}") == 1):
             return (f" (it is a cube with one channel, NAXIS{i} = 1: a cube needs several "
                     "channels)")

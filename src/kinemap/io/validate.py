@@ -30,7 +30,7 @@ import numpy as np
 from kinemap.errors import HeaderWarning, KinemapError
 from kinemap.spectral.axes import SPECTRAL_CTYPES
 
-__all__ = ["check_file", "check_header", "check_velocity_axis", "check_beam",
+__all__ = ["card_value", "check_file", "check_header", "check_velocity_axis", "check_beam",
            "check_beam_table", "check_time_keywords", "wcs_error_reason", "compression"]
 
 BLOCK = 2880
@@ -239,7 +239,7 @@ def _axes_of(header, name):
     naxis = int(header.get("NAXIS", 0))
     spec = lon = lat = None
     for i in range(1, naxis + 1):
-        ctype = _value_of(header, f"CTYPE{i}") if f"CTYPE{i}" in header else None
+        ctype = card_value(header, f"CTYPE{i}") if f"CTYPE{i}" in header else None
         if ctype is None:
             continue
         if not isinstance(ctype, str) or isinstance(ctype, _Text):
@@ -262,7 +262,7 @@ def _number(header, key, name, *, required=False, what="", fix=""):
         if required:
             raise KinemapError(f"{name}: {key} is missing{what}; {fix}")
         return None
-    value = _value_of(header, key)
+    value = card_value(header, key)
     if isinstance(value, bool) or not isinstance(value, (int, float, np.number)):
         raise KinemapError(f"{name}: {key} = {value!r} is not a number; {fix or 'fix ' + key}")
     value = float(value)
@@ -278,7 +278,7 @@ class _Text(str):
         return str(self)
 
 
-def _value_of(header, key):
+def card_value(header, key):
     """The card's value, or its text as written when astropy cannot parse it (NaN, ...)."""
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # astropy's verification notes: our line says it
@@ -292,7 +292,7 @@ def _value_of(header, key):
 
 def _get(header, key, default=None):
     """``header.get(key)`` that never raises: an unparsable card comes back as its text."""
-    return _value_of(header, key) if key in header else default
+    return card_value(header, key) if key in header else default
 
 
 def _has_cd(header, i, naxis) -> bool:
@@ -502,6 +502,11 @@ def check_beam(beam, *, name, pixel_deg, shape_yx, source="BMAJ/BMIN") -> None:
            "fix BMAJ/BMIN (degrees) or give --beam")
     if not (math.isfinite(major) and math.isfinite(minor)):
         raise KinemapError(f"{name}: the beam ({source}) is not finite; {fix}")
+    if not math.isfinite(beam.pa.to_value(u.deg)):
+        pa_source = "--beam" if source == "--beam" else "BPA"
+        raise KinemapError(f"{name}: the beam position angle ({pa_source}) is not finite; "
+                           + ("give --beam with a finite position angle" if source == "--beam"
+                              else "fix BPA (degrees east of north) or give --beam"))
     if major > 180:
         raise KinemapError(f"{name}: the beam major axis ({source}) is {major:.6g} deg, larger "
                            f"than the sky; {fix}")
