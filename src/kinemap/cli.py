@@ -284,21 +284,24 @@ def _cmd_info(args) -> int:
     return 0
 
 
-def _cmd_maps(args) -> int:
+def _run(args):
+    """Run the command's stages, write the products and say what was written; the config
+    and the run's state (for the command's own summary line)."""
     from kinemap.pipeline.runner import run_config
 
     cfg = config_from_args(args)
     state = run_config(cfg)
     _report(state, cfg["output"]["dir"])
+    return cfg, state
+
+
+def _cmd_maps(args) -> int:
+    _run(args)
     return 0
 
 
 def _cmd_rings(args) -> int:
-    from kinemap.pipeline.runner import run_config
-
-    cfg = config_from_args(args)
-    state = run_config(cfg)
-    _report(state, cfg["output"]["dir"])
+    cfg, state = _run(args)
     s = state.results["rings"].summary()
     if state.cube is not None:
         print(f"kinemap: model {cfg['rings']['model']} "
@@ -311,11 +314,7 @@ def _cmd_rings(args) -> int:
 
 
 def _cmd_widths(args) -> int:
-    from kinemap.pipeline.runner import run_config
-
-    cfg = config_from_args(args)
-    state = run_config(cfg)
-    _report(state, cfg["output"]["dir"])
+    _, state = _run(args)
     s = state.results["widths"].summary()
     parts = [f"median non-thermal sigma {s['median_nonthermal_dispersion_kms']:.3g} km/s"
              if s.get("median_nonthermal_dispersion_kms") is not None else "no valid pixel",
@@ -326,11 +325,7 @@ def _cmd_widths(args) -> int:
 
 
 def _cmd_turbulence(args) -> int:
-    from kinemap.pipeline.runner import run_config
-
-    cfg = config_from_args(args)
-    state = run_config(cfg)
-    _report(state, cfg["output"]["dir"])
+    _, state = _run(args)
     s = state.results["turbulence"].summary()
 
     def show(key, fmt):
@@ -352,11 +347,7 @@ def _cmd_turbulence(args) -> int:
 
 
 def _cmd_spectrum(args) -> int:
-    from kinemap.pipeline.runner import run_config
-
-    cfg = config_from_args(args)
-    state = run_config(cfg)
-    _report(state, cfg["output"]["dir"])
+    _, state = _run(args)
     s = state.results["spectrum"].summary()
     fit = (f"Gaussian at {s['fit_centre_kms']:.2f} km/s, dispersion "
            f"{s['fit_dispersion_kms']:.2f} km/s" if s["fit_status"] == "ok"
@@ -369,11 +360,7 @@ def _cmd_spectrum(args) -> int:
 
 
 def _cmd_pv(args) -> int:
-    from kinemap.pipeline.runner import run_config
-
-    cfg = config_from_args(args)
-    state = run_config(cfg)
-    _report(state, cfg["output"]["dir"])
+    _, state = _run(args)
     s = state.results["pv"].summary()
     print(f"kinemap: {s['cut']}: {s['n_offset']} positions over {s['length_arcsec']:.1f} arcsec"
           + (f", averaged over {s['width_arcsec']:g} arcsec" if s["width_arcsec"] else "")
@@ -382,11 +369,7 @@ def _cmd_pv(args) -> int:
 
 
 def _cmd_channels(args) -> int:
-    from kinemap.pipeline.runner import run_config
-
-    cfg = config_from_args(args)
-    state = run_config(cfg)
-    _report(state, cfg["output"]["dir"])
+    _, state = _run(args)
     s = state.results["channels"].summary()
     print(f"kinemap: {s['panels']} channel maps ({s['channels_per_panel']} channel(s) each) on "
           f"{s['pages']} page(s): channel_maps_p1.png ... and channel_maps.pdf")
@@ -394,11 +377,7 @@ def _cmd_channels(args) -> int:
 
 
 def _cmd_stack(args) -> int:
-    from kinemap.pipeline.runner import run_config
-
-    cfg = config_from_args(args)
-    state = run_config(cfg)
-    _report(state, cfg["output"]["dir"])
+    _, state = _run(args)
     s = state.results["stack"].summary()
     print(f"kinemap: {s['spectra_stacked']} spectra stacked into {s['bins']} bins of "
           f"{s['binned_by']}; {s['bins_fitted']} fitted (see stack_fits.ecsv)")
