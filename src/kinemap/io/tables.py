@@ -7,9 +7,25 @@ import numpy as np
 
 from kinemap.errors import KinemapError
 
-__all__ = ["read_ring_geometry"]
+__all__ = ["read_ring_table", "read_ring_geometry"]
 
 _NEEDED = ("radius", "x_center", "y_center", "position_angle", "inclination")
+
+
+def read_ring_table(path):
+    """A ``rotation_curve.ecsv`` written by ``kinemap rings``, as an astropy Table; a
+    missing or unreadable file is one line naming it."""
+    from astropy.table import Table
+
+    path = os.fspath(path)
+    if not os.path.exists(path):
+        raise KinemapError(f"ring table not found: {path}; give the rotation_curve.ecsv "
+                           "written by 'kinemap rings'")
+    try:
+        return Table.read(path, format="ascii.ecsv")
+    except Exception as exc:  # noqa: BLE001 - astropy raises many kinds on a bad file
+        raise KinemapError(f"{path} is not an ECSV table ({type(exc).__name__}); give the "
+                           "rotation_curve.ecsv written by 'kinemap rings'") from None
 
 
 def read_ring_geometry(path) -> dict:
@@ -20,17 +36,7 @@ def read_ring_geometry(path) -> dict:
     or 2) and the rings' edges (radius -+ half the ring width), so the stacks are the
     rings.  The centre is in pixels of the cube the rings were fitted on.
     """
-    from astropy.table import Table
-
-    path = os.fspath(path)
-    if not os.path.exists(path):
-        raise KinemapError(f"rings table not found: {path}; give the rotation_curve.ecsv "
-                           "written by 'kinemap rings'")
-    try:
-        t = Table.read(path, format="ascii.ecsv")
-    except Exception as exc:  # noqa: BLE001 - astropy raises many kinds on a bad file
-        raise KinemapError(f"{path} is not an ECSV table ({type(exc).__name__}); give the "
-                           "rotation_curve.ecsv written by 'kinemap rings'") from None
+    t = read_ring_table(path)
     missing = [c for c in _NEEDED if c not in t.colnames]
     if missing:
         raise KinemapError(f"{path} has no column {', '.join(missing)}; give the "

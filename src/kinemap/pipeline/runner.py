@@ -295,26 +295,27 @@ def stage_pv(state: RunState):
 
 def _ring_model(path, cube):
     """A ring table written by ``kinemap rings`` (rotation_curve.ecsv) as a model to draw."""
-    import os
-
-    from astropy.table import Table
-
+    from kinemap.io.tables import read_ring_table
     from kinemap.rings.model import RingModel
 
-    if not os.path.exists(path):
-        raise KinemapError(f"ring table not found: {path}; give the rotation_curve.ecsv of "
-                           "'kinemap rings'")
-    try:
-        table = Table.read(path, format="ascii.ecsv")
-    except Exception as exc:  # astropy raises many types for a file that is not ECSV
-        raise KinemapError(f"could not read {path} as an ECSV ring table: {exc}") from None
-    return RingModel(table, cube.meta.wcs)
+    return RingModel(read_ring_table(path), cube.meta.wcs)
+
+
 # ---- channel maps and stacking -------------------------------------------------
 def stage_channels(state: RunState):
     from kinemap.maps.channels import channel_maps
 
     return _timed(state, "channels", channel_maps, state.cube, noise=state.noise,
                   **ad.channels_kwargs(state.config))
+
+
+def _map_on_grid(state: RunState, path, *, name, unit=None):
+    """A 2D FITS map that must lie on the cube's pixel grid (one line when it does not)."""
+    m = read_map(path, unit=unit, name=name)
+    if m.data.shape != state.cube.shape[1:]:
+        raise KinemapError(f"the {name} {path} has shape {m.data.shape}, the cube "
+                           f"{state.cube.shape[1:]}; give a map on the cube's pixel grid")
+    return m
 
 
 def _stack_bins(state: RunState, velocity):
@@ -324,10 +325,7 @@ def _stack_bins(state: RunState, velocity):
 
     s, meta = state.config["stack"], state.cube.meta
     if s["bins"].strip().lower() != "radius":
-        bmap = read_map(s["bins"], name="bin map")
-        if bmap.data.shape != state.cube.shape[1:]:
-            raise KinemapError(f"the bin map {s['bins']} has shape {bmap.data.shape}, the cube "
-                               f"{state.cube.shape[1:]}; give a map on the cube's pixel grid")
+        bmap = _map_on_grid(state, s["bins"], name="bin map")
         return map_bins(bmap.data, bmap.unit, s["edges"], name=f"map {s['bins']}")
     beam = meta.beam.major.to_value(u.arcsec) if meta.beam is not None else None
     reach = np.isfinite(velocity)
@@ -347,11 +345,7 @@ def stage_stack(state: RunState):
 
     s = state.config["stack"]
     if s["velocity_map"]:
-        vmap = read_map(s["velocity_map"], unit="km/s", name="velocity map")
-        if vmap.data.shape != state.cube.shape[1:]:
-            raise KinemapError(f"the velocity map {s['velocity_map']} has shape "
-                               f"{vmap.data.shape}, the cube {state.cube.shape[1:]}; give a "
-                               "map on the cube's pixel grid")
+        vmap = _map_on_grid(state, s["velocity_map"], unit="km/s", name="velocity map")
         velocity = vmap.data if vmap.unit == u.one else (vmap.data * vmap.unit).to_value(u.km / u.s)
     else:
         source = state.results.get("fit") if s["velocity_field"] == "gauss" else None
