@@ -210,11 +210,7 @@ def _velocity_input(state):
         if inp["intensity"]:
             inten = read_map(inp["intensity"], unit="", like=state.velocity_map,
                              name="intensity map").data
-        vmap = state.velocity_map
-        if vmap.unit != u.one and not vmap.unit.is_equivalent(u.km / u.s):
-            raise KinemapError(
-                f"{inp['velocity_map']} is a 2D image in {vmap.unit}, not a velocity map; give "
-                "a velocity map in km/s, or a cube with more than one channel")
+        vmap = state.velocity_map  # read_map(unit="km/s") refused any other unit
         v = vmap.data if vmap.unit == u.one else (vmap.data * vmap.unit).to_value(u.km / u.s)
         return v, err, inten, vmap.meta, None
     from kinemap.rings.stage import dispersion_map
