@@ -16,7 +16,7 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1]
 PACKAGE = ROOT / "src" / "kinemap"
 SUBPACKAGES = sorted(p.name for p in PACKAGE.iterdir() if (p / "__init__.py").exists())
-STAGES = ("maps", "linefit", "rings", "widths", "extract")
+STAGES = ("maps", "linefit", "rings", "widths", "turbulence", "extract", "stacking")
 WRITERS = ("kinemap.io.writer", "kinemap.io.outdir", "kinemap.io.html", "kinemap.plotting")
 
 
