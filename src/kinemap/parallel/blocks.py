@@ -14,18 +14,26 @@ import numpy as np
 from tqdm.auto import tqdm
 
 from kinemap.errors import KinemapError
+from kinemap.parallel.store import MAPS_SHARE, allocate, release
 
 __all__ = ["read_rows", "block_rows", "task_rows", "map_blocks", "DEFAULT_MAX_MEMORY"]
 
 DEFAULT_MAX_MEMORY = 1 << 30  # 1 GiB working set unless the caller says otherwise
+# a block's results: float64 values per spectrum, made once by the kernel and once more by
+# the reshapes and type changes of the block function
+RESULT_BYTES = 16
 TASKS_PER_WORKER = 4  # on a cluster, blocks are cut so each worker gets at least this many
 
 
-def block_rows(shape, *, max_memory: int = DEFAULT_MAX_MEMORY, factor: float = 6.0) -> int:
-    """Rows per block for a cube of ``shape`` = (nchan, ny, nx)."""
+def block_rows(shape, *, max_memory: int = DEFAULT_MAX_MEMORY, factor: float = 6.0,
+               per_pixel: float = 0.0) -> int:
+    """Rows per block for a cube of ``shape`` = (nchan, ny, nx): ``factor`` float64 copies
+    of the block's spectra plus ``per_pixel`` bytes of results per spectrum fit in
+    ``max_memory`` (cubes with few channels and wide planes make more results than data)."""
     nchan, ny, nx = shape
-    per_row = nchan * nx * 8 * factor
-    if nchan * 8 * factor > max_memory:
+    per_spectrum = nchan * 8 * factor + per_pixel
+    per_row = nx * per_spectrum
+    if per_spectrum > max_memory:
         raise KinemapError(
             f"'max_memory' of {max_memory} bytes cannot hold one spectrum of {nchan} channels "
             "with the stage's temporaries; raise it")
@@ -46,10 +54,16 @@ def read_rows(cube, ys: slice, *, dtype=None, swap: bool = True) -> np.ndarray:
     return np.ascontiguousarray(np.asarray(raw), dtype=dt)
 
 
-def task_rows(shape, *, max_memory: int, factor: float, client=None) -> int:
+def task_rows(shape, *, max_memory: int, factor: float, client=None, outputs=None) -> int:
     """Rows per block as :func:`map_blocks` cuts them (capped on a cluster so each worker
-    gets at least ``TASKS_PER_WORKER`` blocks; one big block would keep the others idle)."""
-    rows = block_rows(shape, max_memory=max_memory, factor=factor)
+    gets at least ``TASKS_PER_WORKER`` blocks; one big block would keep the others idle).
+
+    The blocks get the share of ``max_memory`` the full-size maps of ``outputs`` do not
+    take (:data:`kinemap.parallel.store.MAPS_SHARE`), and each spectrum's results count:
+    ``RESULT_BYTES`` per output value."""
+    per_pixel = RESULT_BYTES * sum(int(np.prod(lead)) for lead, _, _ in (outputs or {}).values())
+    rows = block_rows(shape, max_memory=int(max_memory * (1 - MAPS_SHARE)), factor=factor,
+                      per_pixel=per_pixel)
     if client is not None:
         nworkers = max(1, len(client.nthreads()))
         rows = max(1, min(rows, -(-shape[1] // (TASKS_PER_WORKER * nworkers))))
@@ -100,7 +114,8 @@ def map_blocks(cube, func, *, outputs: dict, max_memory: int = DEFAULT_MAX_MEMOR
         Module-level function (picklable) returning a dict of arrays whose last two axes
         are (rows, nx).
     outputs : dict name -> (leading shape tuple, dtype, fill value)
-        The full-size maps to assemble, shape ``leading + (ny, nx)``.
+        The full-size maps to assemble, shape ``leading + (ny, nx)``; kept on disk when
+        they would take more than a share of ``max_memory`` (:mod:`kinemap.parallel.store`).
     block_args : callable ys -> dict, optional
         Per-block arguments (slices of noise maps, masks), evaluated here.
     client : distributed.Client, optional
@@ -113,8 +128,10 @@ def map_blocks(cube, func, *, outputs: dict, max_memory: int = DEFAULT_MAX_MEMOR
         False: blocks read from a file may keep the file's byte order (``func`` swaps).
     """
     nchan, ny, nx = cube.shape
-    rows = task_rows(cube.shape, max_memory=max_memory, factor=factor, client=client)
-    out = {k: np.full(tuple(lead) + (ny, nx), fill, dtype=dt) for k, (lead, dt, fill) in outputs.items()}
+    rows = task_rows(cube.shape, max_memory=max_memory, factor=factor, client=client,
+                     outputs=outputs)
+    # maps too large for the memory bound are kept on disk (parallel.store)
+    out = allocate(outputs, (ny, nx), max_memory=max_memory)
     bar = None
     if progress:
         bar = tqdm(total=ny, unit="row", desc=progress if isinstance(progress, str) else None,
@@ -123,6 +140,7 @@ def map_blocks(cube, func, *, outputs: dict, max_memory: int = DEFAULT_MAX_MEMOR
     def store(ys, res):
         for k, arr in res.items():
             out[k][..., ys, :] = arr
+            release(out[k])
         if bar is not None:
             bar.update(ys.stop - ys.start)
 
