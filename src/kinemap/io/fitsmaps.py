@@ -17,6 +17,8 @@ import numpy as np
 from astropy.io import fits
 
 from kinemap._version import __version__
+from kinemap.parallel import store
+from kinemap.parallel.store import derive, release
 from kinemap.spectral.airvac import fits_air_to_vacuum
 
 __all__ = ["product_header", "write_fits"]
@@ -76,14 +78,134 @@ def product_header(meta, *, unit, description: str, key: str, options: dict | No
     return h
 
 
+# file dtype (big-endian, as FITS stores numbers) of each array dtype written as it is
+_FILE_DTYPES = {np.dtype(t): np.dtype(t).newbyteorder(">")
+                for t in (np.uint8, np.int16, np.int32, np.int64, np.float32, np.float64)}
+
+
 def write_fits(path, data, header) -> None:
     """Write one HDU with CHECKSUM/DATASUM.  astropy's WCS comments that do not fit on a
-    card are shortened (their warning is not the user's concern)."""
-    arr = np.asarray(data)
+    card are shortened (their warning is not the user's concern).
+
+    The data go to the file a band at a time, converted to the file's byte order band by
+    band, so writing a map costs no full-size copy (a map kept on disk by
+    :mod:`kinemap.parallel.store` is never wholly in memory); the checksums are summed
+    over the same bands.  Types FITS has no plain BITPIX for (unsigned 16/32-bit) go
+    through astropy's own writer, which scales them.
+    """
+    arr = data if isinstance(data, np.ndarray) else np.asarray(data)
     if arr.dtype == bool:
-        arr = arr.astype(np.uint8)
-    if arr.dtype.kind == "f" and arr.dtype != np.float32 and arr.dtype != np.float64:
+        arr = derive(arr, lambda a: a.astype(np.uint8), np.uint8)
+    if arr.dtype.kind == "f" and arr.dtype.itemsize not in (4, 8):  # float16, float128
         arr = arr.astype(np.float32)
+    native = arr.dtype.newbyteorder("=")
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message="Card is too long")
-        fits.PrimaryHDU(data=arr, header=header).writeto(path, overwrite=True, checksum=True)
+        if native not in _FILE_DTYPES or arr.ndim == 0:
+            fits.PrimaryHDU(data=arr, header=header).writeto(path, overwrite=True, checksum=True)
+            return
+        # the structural cards (BITPIX, NAXISn, ...) as astropy writes them for this array,
+        # from a zero-size stand-in of its shape and type
+        stand_in = np.broadcast_to(np.zeros((), dtype=native), arr.shape)
+        h = fits.PrimaryHDU(data=stand_in, header=header).header.copy()
+        h["CHECKSUM"], h["DATASUM"] = "0" * 16, "0"
+        size = len(h.tostring())
+    file_dtype = _FILE_DTYPES[native]
+    datasum = _OnesSum()
+    with open(path, "wb") as fh:
+        fh.write(b"\0" * size)  # the header goes in last, when its sums are known
+        for part in _file_order_parts(arr):
+            raw = np.ascontiguousarray(part, dtype=file_dtype).view(np.uint8).reshape(-1)
+            datasum.add(raw)
+            fh.write(raw.data)
+        pad = -(arr.size * file_dtype.itemsize) % 2880
+        fh.write(b"\0" * pad)
+        h["DATASUM"] = (str(datasum.value), "data unit checksum")
+        h["CHECKSUM"] = ("0" * 16, "HDU checksum")
+        text = h.tostring().encode("ascii")
+        total = _OnesSum()
+        total.add(np.frombuffer(text, np.uint8))
+        h["CHECKSUM"] = (_encode_checksum(_ones_add(total.value, datasum.value)),
+                         "HDU checksum")
+        text = h.tostring().encode("ascii")
+        if len(text) != size:  # pragma: no cover - the cards' count did not change
+            raise RuntimeError("FITS header length changed while writing")
+        fh.seek(0)
+        fh.write(text)
+
+
+def _file_order_parts(arr):
+    """Consecutive slabs ``arr[i0:i1]`` of about ``store.CHUNK_BYTES`` along the first
+    axis, in the file's (C) order; a map on disk gives its pages back after each."""
+    n = arr.shape[0]
+    step = max(1, min(n, store.CHUNK_BYTES // max(1, arr.nbytes // max(n, 1))))
+    for i0 in range(0, n, step):
+        yield arr[i0:i0 + step]
+        release(arr)
+
+
+def _ones_add(a: int, b: int) -> int:
+    """32-bit ones'-complement sum (end-around carry)."""
+    s = a + b
+    while s >> 32:
+        s = (s & 0xFFFFFFFF) + (s >> 32)
+    return s
+
+
+class _OnesSum:
+    """The FITS checksum sum (FITS Standard 4.0, appendix J, from memory: 32-bit
+    ones'-complement sum of the bytes read as big-endian 32-bit words), over bytes given
+    in pieces of any length; a last partial word is padded with zeros, as FITS pads."""
+
+    def __init__(self):
+        self._sum, self._rest = 0, np.zeros(0, np.uint8)
+
+    def add(self, raw: np.ndarray) -> None:
+        if self._rest.size:
+            k = min(4 - self._rest.size, raw.size)
+            self._rest, raw = np.concatenate([self._rest, raw[:k]]), raw[k:]
+            if self._rest.size < 4:
+                return
+            self._word(self._rest)
+            self._rest = np.zeros(0, np.uint8)
+        whole = raw.size - raw.size % 4
+        self._word(raw[:whole])
+        self._rest = raw[whole:].copy()
+
+    def _word(self, raw):
+        words = raw.view(">u4")
+        self._sum = _ones_add(self._sum, int(words.sum(dtype=np.uint64)))
+
+    @property
+    def value(self) -> int:
+        s = self._sum
+        if self._rest.size:
+            s = _ones_add(s, int(np.concatenate(
+                [self._rest, np.zeros(4 - self._rest.size, np.uint8)]).view(">u4")[0]))
+        return s
+
+
+_EXCLUDE = frozenset(range(0x3A, 0x41)) | frozenset(range(0x5B, 0x61))  # :;<=>?@ [\\]^_`
+
+
+def _encode_checksum(value: int) -> str:
+    """The 16-character ASCII encoding of the complement of ``value`` (the FITS checksum
+    convention: each byte split over four characters from '0', punctuation avoided, the
+    string rotated one place to the right)."""
+    value = ~value & 0xFFFFFFFF
+    chars = [0] * 16
+    for i in range(4):
+        byte = (value >> (24 - 8 * i)) & 0xFF
+        quotient, remainder = byte // 4 + 0x30, byte % 4
+        ch = [quotient + remainder, quotient, quotient, quotient]
+        changed = True
+        while changed:
+            changed = False
+            for j in (0, 2):
+                if ch[j] in _EXCLUDE or ch[j + 1] in _EXCLUDE:
+                    ch[j] += 1
+                    ch[j + 1] -= 1
+                    changed = True
+        for j in range(4):
+            chars[4 * j + i] = ch[j]
+    return "".join(chr(chars[(k - 1) % 16]) for k in range(16))
