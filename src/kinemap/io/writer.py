@@ -17,6 +17,7 @@ from kinemap.errors import KinemapError, ProductWarning
 from kinemap.io.fitsmaps import product_header, write_fits
 from kinemap.io.manifest import build_manifest, write_json
 from kinemap.io.outdir import StagedOutput, writing_into
+from kinemap.parallel.store import any_finite
 
 __all__ = ["write_products", "write_results", "empty_products", "warm_up_plots"]
 
@@ -28,12 +29,12 @@ def _has_finite(p) -> bool | None:
         cols = [np.asarray(p.data[c]) for c in p.data.colnames]
         cols = [c for c in cols if np.issubdtype(c.dtype, np.floating)]
     else:
-        cols = [np.asarray(p.data)]
+        cols = [p.data if isinstance(p.data, np.ndarray) else np.asarray(p.data)]
         cols = [c for c in cols if np.issubdtype(c.dtype, np.floating)
                 or np.issubdtype(c.dtype, np.complexfloating)]
     if not cols:
         return None
-    return any(bool(np.isfinite(c).any()) for c in cols)
+    return any(any_finite(c) for c in cols)
 
 
 def _listed(results):
@@ -162,7 +163,7 @@ def _write_product(folder, meta, p, options, center, png, figure_list) -> dict:
         p.data.meta["description"] = p.description
         p.data.write(folder / name, format="ascii.ecsv", overwrite=True)
     else:
-        arr = np.asarray(p.data)
+        arr = p.data if isinstance(p.data, np.ndarray) else np.asarray(p.data)
         name = f"{p.key}.fits"
         header = product_header(p.meta or meta, unit=p.unit, description=p.description, key=p.key,
                                 options=options, ndim=arr.ndim, extra=p.extra_header,
@@ -203,8 +204,10 @@ def _warm():
 
 
 def _map_png(arr, meta, product, center, path):
+    from kinemap.plotting._display import display_map
     from kinemap.plotting.maps import plot_map, save
 
+    arr, meta = display_map(arr, meta, product.kind)  # a picture's worth of pixels
     fig = plot_map(arr, meta, title=product.description, unit=product.unit, kind=product.kind,
                    center=center)
     save(fig, path)

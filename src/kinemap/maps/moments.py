@@ -37,6 +37,7 @@ import numpy as np
 
 from kinemap.units import KMS
 from kinemap.parallel.blocks import DEFAULT_MAX_MEMORY, map_blocks
+from kinemap.parallel.store import any_finite, any_true, derive, nanmedian
 from kinemap.errors import KinemapError, NoiseWarning
 from kinemap.io.products import Product
 from kinemap.io.results import StageResult
@@ -93,23 +94,35 @@ class MomentMaps(StageResult):
                 a["moment0"])
 
     def systemic_velocity(self) -> float | None:
-        v = self.arrays["moment1"]
-        return float(np.nanmedian(v)) if np.isfinite(v).any() else None
+        v = nanmedian(self.arrays["moment1"])
+        return v if np.isfinite(v) else None
 
     def products(self) -> list[Product]:
         b = self.meta.bunit
         units = {"b": b, "bv": b * KMS, "v": KMS, "1": u.one}
         out = [Product(k, self.arrays[k], units[uk], desc, kind)
                for k, (uk, desc, kind) in _PRODUCTS.items()]
-        out[-1] = replace(out[-1], data=self.arrays["nchan"].astype(np.int16))
+        out[-1] = replace(out[-1], data=derive(self.arrays["nchan"], _as_int16, np.int16))
         if self.arrays.get("noise") is not None:
             out.append(Product("noise", self.arrays["noise"], b, "1-sigma noise per channel",
                                "noise"))
         if self.arrays.get("mask") is not None:
-            out.append(Product("mask", self.arrays["mask"].astype(np.uint8), u.one,
+            out.append(Product("mask", derive(self.arrays["mask"], _as_uint8, np.uint8), u.one,
                                f"1 where the spectrum has channels in the signal mask "
                                f"({self.settings.get('mask', 'none')})", "mask"))
         return out
+
+
+def _as_int16(a):
+    return a.astype(np.int16)
+
+
+def _as_uint8(a):
+    return a.astype(np.uint8)
+
+
+def _positive(a):
+    return a > 0
 
 
 _KEYS = ("moment0", "moment1", "moment2", "moment0_err", "moment1_err", "moment2_err",
@@ -199,9 +212,9 @@ def _mask_mode(mask):
 def _why_empty(out, mask) -> str | None:
     """Why no pixel has a finite moment 0 (one line naming the cause and the fix), or
     None when some pixel has one: maps without a single value are refused, not written."""
-    if np.isfinite(out["moment0"]).any():
+    if any_finite(out["moment0"]):
         return None
-    if not (out["nchan"] > 0).any():
+    if not any_true(out["nchan"], _positive):
         if mask is None or mask.method in ("none", "given"):
             return ("the cube has no finite value to make moment maps of (every spectrum is "
                     "blank or the mask given selects nothing)")
@@ -220,7 +233,7 @@ def _moment_maps(out, noise, mask, cube, response, t0) -> MomentMaps:
     if why is not None:
         raise KinemapError(why)
     out["noise"] = noise.sigma if noise is not None else None
-    out["mask"] = out["nchan"] > 0
+    out["mask"] = derive(out["nchan"], _positive, np.bool_)
     return MomentMaps(arrays=out, meta=cube.meta, channel_response=response,
                       settings={"mask": mask.describe() if mask is not None else "none",
                                 "channel_response": response},

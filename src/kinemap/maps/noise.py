@@ -22,6 +22,7 @@ import numpy as np
 
 from kinemap.units import KMS, to_value
 from kinemap.parallel.blocks import DEFAULT_MAX_MEMORY, map_blocks
+from kinemap.parallel.store import any_true, finite_fraction, nanmedian
 from kinemap.maps._noise_kernel import noise_kernel
 from kinemap.errors import KinemapError, NoiseWarning
 from kinemap.spectral.response import noise_correlation, variance_of_sum
@@ -64,7 +65,7 @@ class NoiseMap:
 
     @property
     def median(self) -> float:
-        return float(np.nanmedian(self.sigma)) if np.isfinite(self.sigma).any() else float("nan")
+        return nanmedian(self.sigma)
 
 
 # Second differences x_i-1 - 2 x_i + x_i+1: a line many channels wide nearly cancels in
@@ -148,20 +149,20 @@ def noise_map(sigma, nused, finite, unit, auto, *, stacklevel=3, nchan=None) -> 
     """The :class:`NoiseMap` of the kernels' per-pixel outputs, refusing a cube with nothing
     to measure (``KinemapError``, naming the likely cause; ``nchan`` is the cube's number
     of channels) and warning when most pixels are undetermined."""
-    if not bool(finite.any()):
+    if not any_true(finite):
         raise KinemapError("the cube holds no finite values (all NaN); check the input file")
-    bad = ~np.isfinite(sigma)
-    if bad.all() and auto and nchan is not None and nchan < _MIN_CHANNELS:
+    bad = 1.0 - finite_fraction(sigma)  # maps may be on disk: counted band by band
+    if bad == 1.0 and auto and nchan is not None and nchan < _MIN_CHANNELS:
         raise KinemapError(
             f"the cube has {nchan} channel{'s' if nchan != 1 else ''}: too few to measure the "
             f"noise or a line (at least {_MIN_CHANNELS} are needed); give a cube with more "
             "channels")
-    if bad.all():
+    if bad == 1.0:
         raise KinemapError("the noise could not be estimated for any pixel: the spectra are "
                            "constant, or NaN channels leave no three finite neighbours; give "
                            "line-free ranges with --line-free")
-    if bad.mean() > 0.5:
-        warnings.warn(f"noise undetermined for {bad.mean():.0%} of pixels", NoiseWarning,
+    if bad > 0.5:
+        warnings.warn(f"noise undetermined for {bad:.0%} of pixels", NoiseWarning,
                       stacklevel=stacklevel)
     return NoiseMap(sigma=sigma, nchan_used=nused, unit=unit,
                     method="clipped RMS of second differences" if auto else "line-free ranges")

@@ -17,6 +17,7 @@ import numpy as np
 from kinemap.errors import KinemapError
 from kinemap.io.maps import read_map
 from kinemap.io.outdir import StagedOutput, writing_into
+from kinemap.parallel.store import on_disk, scratch_folder
 from kinemap.io.reader import read_cube
 from kinemap.io.subset import select_channels
 from kinemap.io.writer import warm_up_plots, write_results
@@ -391,7 +392,8 @@ def run_config(cfg: dict, *, stage_dir=None) -> RunState:
         staged = StagedOutput(out["dir"], overwrite=out["overwrite"], inputs=input_paths(cfg))
     if out["plots"]:
         warm_up_plots()  # imports matplotlib beside the computing stages
-    with staged as stage:
+    with staged as stage, scratch_folder(stage.path if stage is not None else stage_dir):
+        # maps too large for the memory bound go to (deleted) files beside the products
         with open_client(scheduler=cfg["run"]["scheduler"],
                          workers=cfg["run"]["workers"]) as client:
             state = _run_stages(cfg, client)
@@ -474,4 +476,8 @@ def _execution(cfg, state) -> dict:
                                        factor=1.5 if state.moments is not None else 2.5,
                                        client=state.client)
         info["cube_shape"] = list(state.cube.shape)
+    moments = state.results.get("moments")
+    if moments is not None and hasattr(moments, "arrays"):
+        # maps beyond a share of max_memory are kept on disk (kinemap.parallel.store)
+        info["maps_on_disk"] = on_disk(moments.arrays["moment0"])
     return info

@@ -1,0 +1,53 @@
+"""Maps larger than a picture can show, reduced for their PNG.
+
+A map PNG is about a thousand pixels wide, so drawing a 20000 x 20000 map at full size
+costs gigabytes and shows nothing more.  :func:`display_map` averages blocks of f x f
+pixels (NaN-aware) until the map is at most ``MAX_SIDE`` pixels on a side, and gives the
+WCS of the reduced grid (astropy's ``WCS.slice`` with a step, which puts each new pixel
+at the centre of its block).  Maps of categories (status codes, masks, counts) keep one
+pixel of each block instead (its first: half a block off, which the picture cannot show),
+so their values stay whole.  The FITS files keep every
+pixel; the map is read a band at a time, so a map kept on disk is never wholly in memory.
+"""
+from __future__ import annotations
+
+import warnings
+from dataclasses import replace
+
+import numpy as np
+
+from kinemap.parallel import store
+from kinemap.parallel.store import release
+
+__all__ = ["display_map", "MAX_SIDE"]
+
+MAX_SIDE = 1024  # pixels on the longer side of a map as drawn (the axes are ~700 wide)
+_CATEGORIES = ("status", "mask", "count")
+
+
+def display_map(data, meta, kind: str, *, max_side: int = MAX_SIDE):
+    """``(map, meta)`` to draw: ``data`` and ``meta`` themselves when the map is at most
+    ``max_side`` pixels on a side, else the block-reduced map and a meta with its WCS."""
+    ny, nx = np.shape(data)
+    f = -(-max(ny, nx) // max_side)
+    if f <= 1 or meta is None:
+        return data, meta
+    my, mx = -(-ny // f), -(-nx // f)
+    out = np.empty((my, mx), dtype=np.float64 if kind not in _CATEGORIES else data.dtype)
+    rows = f * max(1, store.CHUNK_BYTES // max(1, f * nx * data.dtype.itemsize))
+    for y0 in range(0, ny, rows):
+        band = data[y0:y0 + rows]
+        i0 = y0 // f
+        if kind in _CATEGORIES:
+            small = band[::f, ::f]
+        else:
+            h = band.shape[0]
+            padded = np.full((-(-h // f) * f, mx * f), np.nan)
+            padded[:h, :nx] = band
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)  # blocks with no value: NaN
+                small = np.nanmean(padded.reshape(-1, f, mx, f), axis=(1, 3))
+        out[i0:i0 + small.shape[0]] = small
+        release(data)  # after the band's last use: reading it maps its pages again
+    wcs = meta.wcs.slice((slice(None, None, f), slice(None, None, f)))
+    return out, replace(meta, wcs=wcs)
