@@ -18,6 +18,8 @@ from matplotlib.figure import Figure
 from matplotlib.patches import Ellipse
 
 from kinemap.plotting._frame import reuse_frame
+from kinemap.plotting._image import show_nearest
+from kinemap.plotting._png import write_png
 from kinemap.status import Status
 
 __all__ = ["plot_map", "CMAPS", "robust_limits", "world_axes", "save", "save_pages"]
@@ -119,7 +121,7 @@ def _draw_discrete(fig, ax, data, kind, label):
         from matplotlib.ticker import MaxNLocator
 
         cmap = matplotlib.colormaps[CMAPS.get(kind, "viridis")].with_extremes(bad="#e8e8e8")
-        im = ax.imshow(data, origin="lower", cmap=cmap, interpolation="nearest")
+        im = show_nearest(ax, data, origin="lower", cmap=cmap)
         cb = fig.colorbar(im, ax=ax)
         cb.locator = MaxNLocator(integer=True)
         cb.update_ticks()
@@ -130,7 +132,7 @@ def _draw_discrete(fig, ax, data, kind, label):
     norm = BoundaryNorm(np.arange(values[0] - 0.5, values[-1] + 1.0), cmap.N)
     shown = (np.where(np.isfinite(data), data, Status.NO_DATA) if kind == "status"
              else np.asarray(data, dtype=float))
-    im = ax.imshow(shown, origin="lower", cmap=cmap, norm=norm, interpolation="nearest")
+    im = show_nearest(ax, shown, origin="lower", cmap=cmap, norm=norm)
     cb = fig.colorbar(im, ax=ax, ticks=values)
     cb.ax.set_yticklabels(labels, fontsize=7 if kind == "status" else None)
     cb.ax.minorticks_off()
@@ -172,8 +174,7 @@ def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float
     else:
         cmap = matplotlib.colormaps[CMAPS.get(kind, "viridis")].with_extremes(bad="#e8e8e8")
         vmin, vmax = robust_limits(vals, kind, center)
-        im = ax.imshow(data, origin="lower", cmap=cmap, vmin=vmin, vmax=vmax,
-                       interpolation="nearest")
+        im = show_nearest(ax, data, origin="lower", cmap=cmap, vmin=vmin, vmax=vmax)
         cb = fig.colorbar(im, ax=ax)
         cb.set_label(label)
     _add_beam(ax, meta)
@@ -184,7 +185,7 @@ def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float
     # everything the frame (ticks, labels) depends on: maps with one key share one drawing
     key = (tuple(figsize), kind if kind in _DISCRETE else "", wrapped.count("\n"), bool(label),
            tuple(meta.wcs.wcs.ctype), np.shape(data), _wcs_key(meta.wcs))
-    _layout(fig, cb, key)
+    _layout(fig, ax, cb, key)
     reuse_frame(ax, key)
     return fig
 
@@ -200,12 +201,12 @@ def world_axes(ax, wcs, *, ticks: int = 4, ylabel: bool = True):
     lat.set_ticklabel(exclude_overlapping=True)
 
 
-# Layout of the figures drawn so far: key -> (subplot parameters, right edge of the colour
-# bar in pixels).  tight_layout has to draw the WCS axes to measure their tick labels,
-# which cost as much as drawing the PNG itself; maps of one cube share those labels, so
-# the first figure of a kind measures and the others reuse its margins.
+# Layout of the figures drawn so far: key -> (figure width, boxes of the map and colour-bar
+# axes in inches, right edge of the colour bar's labels in inches).  tight_layout has to
+# draw the WCS axes to measure their tick labels, which cost as much as drawing the PNG
+# itself; maps of one cube share those labels, so the first figure of a kind measures and
+# the others reuse its boxes.
 _TEMPLATES: dict = {}
-_RIGHT_STEP = 0.1  # inches
 
 
 def _wcs_key(wcs):
@@ -215,31 +216,36 @@ def _wcs_key(wcs):
             tuple(np.round(w.get_pc().ravel(), 12)), tuple(np.round(w.get_cdelt(), 12)))
 
 
-def _layout(fig, cb, key):
-    """tight_layout on the first figure of ``key``; the same margins for the next ones.
+def _layout(fig, ax, cb, key):
+    """tight_layout on the first figure of ``key``; the same axes boxes for the next ones.
 
     Only the colour bar's tick labels differ between maps of one cube, and measuring them
-    is cheap (a plain axis): the right margin moves by the difference in their extent, as
-    tight_layout would move it.
+    is cheap (a plain axis).  The map and its colour bar keep the first figure's boxes, in
+    inches from the bottom left, and the figure's width follows the labels' reach, so its
+    right margin is the one tight_layout gave: every map of a layout is drawn at one
+    scale and place, and its frame is one picture (_frame.py).
     """
     renderer = fig.canvas.get_renderer()
     template = _TEMPLATES.get(key)
     if template is None:
         fig.tight_layout()
-        right_px = cb.ax.get_tightbbox(renderer).x1
-        pars = fig.subplotpars
-        _TEMPLATES[key] = ({k: getattr(pars, k) for k in ("left", "right", "bottom", "top",
-                                                           "wspace", "hspace")}, right_px)
+        width = fig.get_figwidth()
+        boxes = [a.get_position(original=True).bounds for a in (ax, cb.ax)]
+        boxes = [(x0 * width, y0, w * width, h) for x0, y0, w, h in boxes]
+        _TEMPLATES[key] = (width, boxes, cb.ax.get_tightbbox(renderer).x1 / fig.dpi)
         return
-    pars, right_px = template
-    fig.subplots_adjust(**pars)
-    shift = (cb.ax.get_tightbbox(renderer).x1 - right_px) / (fig.get_figwidth() * fig.dpi)
-    # in whole steps of _RIGHT_STEP inches, rounded towards more room: maps whose colour
-    # bar labels differ a little share the axes box, and so the frame picture (_frame.py)
-    step = _RIGHT_STEP / fig.get_figwidth()
-    shift = np.ceil(shift / step - 1e-6) * step
-    if abs(shift) > 1e-4:
-        fig.subplots_adjust(right=pars["right"] - shift)
+    width, boxes, right = template
+    _place(fig, (ax, cb.ax), boxes, width)
+    reach = cb.ax.get_tightbbox(renderer).x1 / fig.dpi
+    if abs(reach - right) > 1e-6:
+        _place(fig, (ax, cb.ax), boxes, width + reach - right)
+
+
+def _place(fig, axes, boxes, width):
+    """Width ``width`` inches for ``fig``, and ``axes`` at ``boxes`` (x in inches)."""
+    fig.set_figwidth(width)
+    for a, (x0, y0, w, h) in zip(axes, boxes):
+        a.set_position((x0 / width, y0, w / width, h))
 
 
 def _axis_label(wcs, i):
@@ -249,10 +255,10 @@ def _axis_label(wcs, i):
 
 
 def save(fig, path, *, dpi=120):
-    """Write ``fig`` as a PNG.  zlib level 1 instead of PIL's 6: the same pixels (PNG is
-    lossless), a map saved in about 40 % less time, files of about the same size (noisy
-    maps compress little either way)."""
-    fig.savefig(path, dpi=dpi, pil_kwargs={"compress_level": 1})
+    """Write ``fig`` as a PNG: matplotlib's pixels, encoded unfiltered at zlib level 1
+    (:mod:`kinemap.plotting._png`: a map saved in about a third of PIL's time, in smaller
+    files)."""
+    write_png(fig, path, dpi=dpi)
 
 
 def save_pages(figs, path):
