@@ -183,8 +183,8 @@ def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float
     wrapped = textwrap.fill(title, 48)
     ax.set_title(wrapped, fontsize=10 if len(title) > 48 else None)
     # everything the frame (ticks, labels) depends on: maps with one key share one drawing
-    key = (tuple(figsize), kind if kind in _DISCRETE else "", wrapped.count("\n"), bool(label),
-           tuple(meta.wcs.wcs.ctype), np.shape(data), _wcs_key(meta.wcs))
+    # (the title and colour bar move the figure's top and right edges, not the frame)
+    key = (tuple(figsize), tuple(meta.wcs.wcs.ctype), np.shape(data), _wcs_key(meta.wcs))
     _layout(fig, ax, cb, key)
     reuse_frame(ax, key)
     return fig
@@ -201,11 +201,11 @@ def world_axes(ax, wcs, *, ticks: int = 4, ylabel: bool = True):
     lat.set_ticklabel(exclude_overlapping=True)
 
 
-# Layout of the figures drawn so far: key -> (figure width, boxes of the map and colour-bar
-# axes in inches, right edge of the colour bar's labels in inches).  tight_layout has to
-# draw the WCS axes to measure their tick labels, which cost as much as drawing the PNG
-# itself; maps of one cube share those labels, so the first figure of a kind measures and
-# the others reuse its boxes.
+# Layout of the figures drawn so far: key -> (figure size, boxes of the map and colour-bar
+# axes in inches from the bottom left, how far the colour bar's labels reach to the right
+# and the title up, in inches).  tight_layout has to draw the WCS axes to measure their
+# tick labels, which cost as much as drawing the PNG itself; maps of one cube share those
+# labels, so the first figure measures and the others reuse its boxes.
 _TEMPLATES: dict = {}
 
 
@@ -216,36 +216,45 @@ def _wcs_key(wcs):
             tuple(np.round(w.get_pc().ravel(), 12)), tuple(np.round(w.get_cdelt(), 12)))
 
 
+def _reach(fig, ax, cb, renderer):
+    """(right edge of the colour bar with its labels, top of the title), in inches."""
+    return (cb.ax.get_tightbbox(renderer).x1 / fig.dpi,
+            ax.title.get_window_extent(renderer).y1 / fig.dpi)
+
+
 def _layout(fig, ax, cb, key):
     """tight_layout on the first figure of ``key``; the same axes boxes for the next ones.
 
-    Only the colour bar's tick labels differ between maps of one cube, and measuring them
-    is cheap (a plain axis).  The map and its colour bar keep the first figure's boxes, in
-    inches from the bottom left, and the figure's width follows the labels' reach, so its
-    right margin is the one tight_layout gave: every map of a layout is drawn at one
-    scale and place, and its frame is one picture (_frame.py).
+    Only the colour bar's tick labels and the title differ between maps of one cube, and
+    measuring them is cheap (plain text).  The map and its colour bar keep the first
+    figure's boxes, in inches from the bottom left, and the figure grows or shrinks to the
+    right and at the top by how much further its colour-bar labels and title reach, so its
+    margins are the ones tight_layout gave: every map of a cube is drawn at one scale and
+    place, and its frame is one picture (_frame.py).
     """
     renderer = fig.canvas.get_renderer()
     template = _TEMPLATES.get(key)
     if template is None:
         fig.tight_layout()
-        width = fig.get_figwidth()
+        size = tuple(fig.get_size_inches())
         boxes = [a.get_position(original=True).bounds for a in (ax, cb.ax)]
-        boxes = [(x0 * width, y0, w * width, h) for x0, y0, w, h in boxes]
-        _TEMPLATES[key] = (width, boxes, cb.ax.get_tightbbox(renderer).x1 / fig.dpi)
+        boxes = [(x0 * size[0], y0 * size[1], w * size[0], h * size[1])
+                 for x0, y0, w, h in boxes]
+        _TEMPLATES[key] = (size, boxes, _reach(fig, ax, cb, renderer))
         return
-    width, boxes, right = template
-    _place(fig, (ax, cb.ax), boxes, width)
-    reach = cb.ax.get_tightbbox(renderer).x1 / fig.dpi
-    if abs(reach - right) > 1e-6:
-        _place(fig, (ax, cb.ax), boxes, width + reach - right)
+    size, boxes, reach = template
+    _place(fig, (ax, cb.ax), boxes, size)
+    now = _reach(fig, ax, cb, renderer)
+    if max(abs(a - b) for a, b in zip(now, reach)) > 1e-6:
+        _place(fig, (ax, cb.ax), boxes, [s + a - b for s, a, b in zip(size, now, reach)])
 
 
-def _place(fig, axes, boxes, width):
-    """Width ``width`` inches for ``fig``, and ``axes`` at ``boxes`` (x in inches)."""
-    fig.set_figwidth(width)
-    for a, (x0, y0, w, h) in zip(axes, boxes):
-        a.set_position((x0 / width, y0, w / width, h))
+def _place(fig, axes, boxes, size):
+    """Size ``size`` (inches) for ``fig``, and ``axes`` at ``boxes`` (inches)."""
+    w, h = size
+    fig.set_size_inches(w, h)
+    for a, (x0, y0, bw, bh) in zip(axes, boxes):
+        a.set_position((x0 / w, y0 / h, bw / w, bh / h))
 
 
 def _axis_label(wcs, i):
