@@ -172,3 +172,32 @@ def test_maps_of_one_cube_share_the_axes_box_and_frame(meta, monkeypatch):
     np.testing.assert_array_equal(boxes[0], boxes[1])
     assert sizes[1][0] > sizes[0][0] and sizes[1][1] > sizes[0][1]  # taller and wider
     assert len(_frame._PICTURES) == 1
+
+
+def test_save_map_on_a_kept_figure_equals_a_new_figure(meta, tmp_path, monkeypatch):
+    """Maps drawn one after another on the kept figure: byte for byte the pixels of
+    save(plot_map(...)) on a new figure, whatever the previous map was (colour scales of
+    other sizes, an offset on the colour bar, one- and two-line titles, integer and
+    constant maps in between)."""
+    monkeypatch.setattr(pm._KEPT, "figures", {}, raising=False)
+    rng = np.random.default_rng(9)
+    maps = [
+        ("intensity", "integrated intensity", "K km/s", rng.gamma(2.0, 3.0, (40, 50))),
+        ("velocity", "velocity at the line peak, a much longer title of two lines", "km/s",
+         rng.normal(1500.0, 40.0, (40, 50))),
+        ("mask", "signal mask", "", (rng.random((40, 50)) > 0.5).astype(float)),
+        ("error", "error of the velocity", "km/s", rng.gamma(1.0, 2e-7, (40, 50))),
+        ("noise", "noise", "K", np.full((40, 50), 0.2)),
+        ("residual", "residual", "km/s", rng.normal(0.0, 5.0, (40, 50))),
+        ("dispersion", "dispersion", "km/s", rng.normal(1.0e6, 10.0, (40, 50))),
+    ]
+    maps[0][3][:5, :7] = np.nan
+    for kind, title, unit, data in maps:
+        kept, new = tmp_path / f"kept_{kind}.png", tmp_path / f"new_{kind}.png"
+        pm.save_map(kept, data, meta, title=title, unit=unit, kind=kind, center=1500.0)
+        pm.save(pm.plot_map(data, meta, title=title, unit=unit, kind=kind, center=1500.0),
+                new)
+        a, b = np.asarray(Image.open(kept)), np.asarray(Image.open(new))
+        assert a.shape == b.shape, kind
+        np.testing.assert_array_equal(a, b, err_msg=kind)
+    assert len(pm._KEPT.figures) == 1  # the continuous maps were drawn on one figure

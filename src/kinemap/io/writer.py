@@ -203,11 +203,10 @@ def _warm():
 
 
 def _map_png(arr, meta, product, center, path):
-    from kinemap.plotting.maps import plot_map, save
+    from kinemap.plotting.maps import save_map
 
-    fig = plot_map(arr, meta, title=product.description, unit=product.unit, kind=product.kind,
-                   center=center)
-    save(fig, path)
+    save_map(path, arr, meta, title=product.description, unit=product.unit, kind=product.kind,
+             center=center)
 
 
 def _figure_png(fig, path):
