@@ -3,13 +3,15 @@
 A map shown with ``interpolation="nearest"`` is, for every pixel of the PNG, the colour of
 the map pixel under that pixel's centre.  Matplotlib gets there the general way: it
 colour-maps the whole map to floating-point RGBA, then resamples the four channels with
-Agg's image filter (about 20 ms for a 512 x 512 map, most of a map plot's drawing).  For an
+Agg's image filter (11 ms for a 512 x 512 map shrunk to 480 pixels; 2 ms here).  For an
 axis-aligned affine image transform (every map here: pixel axes of a WCSAxes) the map
 pixel under each output pixel's centre is a floor of a linear function of the output
 column, and of the output row: two index vectors.  :class:`NearestImage` takes the map's
-values at those indices (a view-free gather on the PNG's grid, fewer pixels than the map
-when it is shrunk) and colour-maps only them, with the image's own norm and colormap
+values at those indices (a gather on the PNG's grid: fewer pixels than the map when it
+is shrunk) and colour-maps only them, with the image's own norm and colormap
 (``to_rgba``), so colours, the bad colour and discrete norms are exactly matplotlib's.
+Where a map pixel's edge falls within 1/256 of a PNG pixel's centre, Agg's fixed-point
+coordinates may put that edge one PNG pixel over; otherwise the pixels are Agg's own.
 
 Geometry (the output box rounded to whole pixels, where it is drawn) is matplotlib's own
 ``_make_image`` arithmetic; anything else (non-affine or rotated transforms, RGB data,
@@ -58,7 +60,7 @@ class NearestImage(AxesImage):
         if xe - x0 <= 0 or ye - y0 <= 0:
             return None, 0, 0, None
         ny, nx = A.shape
-        t0 = IdentityOrFlip(self.origin, ny)
+        t0 = _array_rows(self.origin, ny)
         t0 += (Affine2D().scale(bbox.width / nx, bbox.height / ny).translate(bbox.x0, bbox.y0)
                + trans)
         t = t0 + Affine2D().scale(magnification).translate(-x0, -y0)
@@ -81,7 +83,7 @@ class NearestImage(AxesImage):
         return out, x0 / magnification, y0 / magnification, t
 
 
-def IdentityOrFlip(origin, ny):  # noqa: N802 - mirrors matplotlib's t0
+def _array_rows(origin, ny):
     """Array rows to image rows: flipped for ``origin="upper"``, as matplotlib does."""
     if origin == "upper":
         return Affine2D().translate(0, -ny).scale(1, -1)
