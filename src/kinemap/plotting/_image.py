@@ -10,7 +10,7 @@ column, and of the output row: two index vectors.  :class:`NearestImage` takes t
 values at those indices (a gather on the PNG's grid: fewer pixels than the map when it
 is shrunk) and colour-maps only them, with the image's own norm and colormap
 (``to_rgba``), so colours, the bad colour and discrete norms are exactly matplotlib's.
-Where a map pixel's edge falls within 1/256 of a PNG pixel's centre, Agg's fixed-point
+Where a map pixel's edge falls within a few 1/256 of a PNG pixel's centre, Agg's fixed-point
 coordinates may put that edge one PNG pixel over; otherwise the pixels are Agg's own.
 
 Geometry (the output box rounded to whole pixels, where it is drawn) is matplotlib's own
