@@ -13,6 +13,11 @@ write their maps to FITS:
 The ratios printed are spectral-cube time / kinemap time (FITS only) and the plots' extra
 time / the FITS-only time, from the best of --repeat runs; each time is printed with the
 1-minute load average read before it (the machine may be shared).
+
+With --per-plot, each default map PNG is also timed in this process (CPU time of the
+drawing thread, median of 3): as the writer draws it (plotting.maps.save_map: a kept
+figure, the unfiltered PNG writer) against a new figure saved by matplotlib's savefig
+(PIL's PNG encoder at zlib level 1), the baseline measured in the same run.
 """
 import argparse
 import os
@@ -51,11 +56,57 @@ def timed(cmd):
     return dt
 
 
+def per_plot(cube):
+    """Per-map CPU time of the writer's PNG drawing against a new figure + savefig."""
+    import io
+    import warnings
+
+    import numpy as np
+
+    import kinemap
+    from kinemap.plotting import maps as pm
+
+    warnings.simplefilter("ignore")
+    res = kinemap.compute_moments(kinemap.read_cube(cube))
+    maps = [p for p in res.products() if p.plot and np.ndim(p.data) == 2]
+    meta, center = res.meta, res.systemic_velocity()
+
+    def general(p):
+        fig = pm.plot_map(np.asarray(p.data), meta, title=p.description, unit=p.unit,
+                          kind=p.kind, center=center)
+        fig.savefig(io.BytesIO(), format="png", dpi=120, pil_kwargs={"compress_level": 1})
+
+    def writer(p):
+        pm.save_map(io.BytesIO(), np.asarray(p.data), meta, title=p.description, unit=p.unit,
+                    kind=p.kind, center=center)
+
+    def cpu(fn, p):
+        t = time.thread_time()
+        fn(p)
+        return time.thread_time() - t
+
+    for p in maps:  # first drawings: layout template, frame picture, text caches
+        general(p)
+        writer(p)
+    totals = [0.0, 0.0]
+    print(f"{'map':20s} {'new figure + savefig':>22s} {'writer':>8s}  ratio ({load()})")
+    for p in maps:
+        a = float(np.median([cpu(general, p) for _ in range(3)]))
+        b = float(np.median([cpu(writer, p) for _ in range(3)]))
+        totals[0] += a
+        totals[1] += b
+        print(f"{p.key:20s} {a * 1e3:19.1f} ms {b * 1e3:5.1f} ms  {b / a:.2f}")
+    print(f"{'all ' + str(len(maps)) + ' maps':20s} {totals[0] * 1e3:19.0f} ms {totals[1] * 1e3:5.0f} ms"
+          f"  {totals[1] / totals[0]:.2f}")
+
+
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--size", type=int, default=512)
     ap.add_argument("--nchan", type=int, default=256)
     ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--per-plot", action="store_true",
+                    help="also time each map PNG in this process (see the module doc)")
     args = ap.parse_args()
     bindir = os.path.dirname(sys.executable)
     with tempfile.TemporaryDirectory() as tmp:
@@ -89,6 +140,8 @@ def main():
         print(f"speed-up (spectral-cube / kinemap FITS only): {sc / fits_only:.1f}x (aim: 5x)")
         print(f"plot overhead (with PNGs - FITS only) / FITS only: "
               f"{(pngs - fits_only) / fits_only:.2f} (aim: at most 0.5)")
+        if args.per_plot:
+            per_plot(cube)
 
 if __name__ == "__main__":
     main()

@@ -205,12 +205,11 @@ def _warm():
 
 def _map_png(arr, meta, product, center, path):
     from kinemap.plotting._display import display_map
-    from kinemap.plotting.maps import plot_map, save
+    from kinemap.plotting.maps import save_map
 
     arr, meta = display_map(arr, meta, product.kind)  # a picture's worth of pixels
-    fig = plot_map(arr, meta, title=product.description, unit=product.unit, kind=product.kind,
-                   center=center)
-    save(fig, path)
+    save_map(path, arr, meta, title=product.description, unit=product.unit, kind=product.kind,
+             center=center)
 
 
 def _figure_png(fig, path):

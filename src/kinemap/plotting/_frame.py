@@ -10,8 +10,9 @@ pastes that picture where the frame would be drawn: in the frame's place in the 
 
 Only the frame is reused; the image, colour bar, title and patches are drawn for each map.
 The caller names what the frame depends on besides the axes box (``key``); the axes box
-in pixels, the dpi and matplotlib's font, axes and tick settings are added here (the
-colour bar's width moves the box).
+in pixels from the bottom left, the dpi and matplotlib's font, axes and tick settings are
+added here (the figure's size is not: the frame is drawn from the bottom left, so maps
+whose figures differ only to the right of it or above it share the picture).
 """
 from __future__ import annotations
 
@@ -54,9 +55,10 @@ def _style():
 
 
 def _full_key(ax, key, renderer):
-    box = ax.get_position(original=False)  # after the aspect was applied by Axes.draw
-    return (key, renderer.width, renderer.height, float(renderer.dpi), _style(),
-            tuple(round(v, 6) for v in (box.x0, box.y0, box.width, box.height)))
+    # the box in pixels from the bottom left, after the aspect was applied by Axes.draw:
+    # figures of different sizes with the axes at one place share the picture
+    return (key, float(renderer.dpi), _style(),
+            tuple(round(v, 3) for v in ax.bbox.bounds))
 
 
 def _render(ax, renderer):
