@@ -247,23 +247,25 @@ class StagedOutput:
 
     # -- entering ---------------------------------------------------------------------
     def __enter__(self) -> "StagedOutput":
-        with _signals_held():
-            try:
-                self._made = self._make_parent()
-                self._target = Path(os.path.realpath(self._target))  # follow a symlinked folder
-                self._take_lock()
-                self._tidy()
-                # again under the lock: another run may have published in the meantime
-                check_output_dir(self.out, overwrite=self.overwrite, inputs=self.inputs)
-                self.path = Path(tempfile.mkdtemp(
-                    prefix=f".{self._target.name}.staging-{os.getpid()}-",
-                    dir=self._target.parent))
-            except OSError as exc:
-                self._undo()
-                raise KinemapError(os_error_message(exc, self.out)) from None
-            except BaseException:
-                self._undo()
-                raise
+        try:
+            with _signals_held():
+                try:
+                    self._made = self._make_parent()
+                    self._target = Path(os.path.realpath(self._target))  # a symlinked folder
+                    self._take_lock()
+                    self._tidy()
+                    # again under the lock: another run may have published in the meantime
+                    check_output_dir(self.out, overwrite=self.overwrite, inputs=self.inputs)
+                    self.path = Path(tempfile.mkdtemp(
+                        prefix=f".{self._target.name}.staging-{os.getpid()}-",
+                        dir=self._target.parent))
+                except OSError as exc:
+                    raise KinemapError(os_error_message(exc, self.out)) from None
+        except BaseException:
+            # also a signal held during the block, raised as it ends: __exit__ will not
+            # run for a failed __enter__, so the lock and the staging folder go here
+            self._undo()
+            raise
         return self
 
     def _make_parent(self) -> list[Path]:
