@@ -1,7 +1,7 @@
 """Compiled moment kernel: all moment maps and their errors in three passes per spectrum.
 
 Same formulas as :mod:`kinemap.maps.moments` (the docstring there is the reference).  The
-per-spectrum work is :func:`spectrum_moments`, shared by :func:`moments_kernel` (moments
+work on a tile of spectra is :func:`tile_moments`, shared by :func:`moments_kernel` (moments
 alone) and the fused noise-and-moments pass (:mod:`kinemap.maps._fused_kernel`), so the two
 paths cannot drift apart.
 """
@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import numba
 import numpy as np
+
+from kinemap.maps._noise_kernel import TILE, load_tile
 
 # Which channels count: 0 every finite channel, 1 value > threshold * sigma, 2 a given mask,
 # 3 both (a threshold inside the user's mask)
@@ -28,39 +30,102 @@ def _use(mode, x, thr_sigma, mask_val):
     return True
 
 
-@numba.njit(cache=True, nogil=True)
-def spectrum_moments(spec, velocity, dv, mode, threshold, sigma_p, mask, p, inside, rho, out):
-    """Moments of one spectrum ``spec`` (nchan,) into column ``p`` of ``out`` (9, npix).
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footprint, rho,
+                 out):
+    """Moments of the spectra tile[:, q], q < nq, into columns p0 + q of ``out`` (9, npix).
 
-    ``spec`` may be float32 or float64 and strided: every product with the float64 channel
-    widths and velocities is float64, so the sums are the same either way.  ``sigma_p`` is
-    the spectrum's noise, ``mask`` the (nchan, npix) voxel mask (read in modes 2 and 3),
-    ``inside`` False for pixels outside the footprint.
+    ``tile`` (nchan, >= nq) holds the spectra channel by channel, float32 or float64:
+    every product with the float64 channel widths and velocities is float64, so the sums
+    are the same either way.  ``sigma`` (npix,) is the noise, ``mask`` the (nchan, npix)
+    voxel mask (read in modes 2 and 3), ``footprint`` (npix,) False outside the data.
+    Each pass runs over the channels and, inside, over the spectra (one lane each, state in
+    small arrays), so it vectorises across spectra while every spectrum's sums still run
+    through its channels in order.  ``error_model='numpy'``: lanes without signal divide by
+    zero harmlessly (their results are not used).
     """
-    nchan = spec.shape[0]
+    nchan = tile.shape[0]
     nlag = rho.shape[0]
+    r1 = rho[1] if nlag > 1 else 0.0
+    r2 = rho[2] if nlag > 2 else 0.0
+    thr = threshold * sigma[p0:p0 + nq]
+    msk = mask[:, p0:p0 + nq]  # (read in modes 2 and 3 only; slices index from 0)
+    S = np.zeros(nq)
+    Sv = np.zeros(nq)
+    n = np.zeros(nq, np.int64)
+    peak = np.full(nq, -np.inf)
+    ipk = np.full(nq, -1)
+    v0 = np.zeros(nq)
+    prev1 = np.zeros(nq)
+    prev2 = np.zeros(nq)
+    for c in range(nchan):
+        for q in range(nq):
+            x = tile[c, q]
+            use = _use(mode, x, thr[q], msk[c, q] if mode >= 2 else True)
+            w = x * dv[c] if use else 0.0
+            S[q] += w
+            Sv[q] += w * velocity[c] if use else 0.0
+            n[q] += use
+            better = use & (x > peak[q])
+            peak[q] = x if better else peak[q]
+            ipk[q] = c if better else ipk[q]
+            # error of moment 0: weights dv_i on used channels, banded correlation
+            w = dv[c] if use else 0.0
+            v0[q] += w * w
+            if nlag > 1:
+                v0[q] += 2.0 * r1 * w * prev1[q]
+            if nlag > 2:
+                v0[q] += 2.0 * r2 * w * prev2[q]
+            prev2[q] = prev1[q]
+            prev1[q] = w
+    m1 = Sv / S
+    M2 = np.zeros(nq)
+    for c in range(nchan):
+        for q in range(nq):
+            x = tile[c, q]
+            d = velocity[c] - m1[q]
+            use = _use(mode, x, thr[q], msk[c, q] if mode >= 2 else True)
+            M2[q] += x * dv[c] * d * d if use else 0.0
+    M2 /= S
+    v1 = np.zeros(nq)
+    v2 = np.zeros(nq)
+    a1 = np.zeros(nq)
+    a2 = np.zeros(nq)
+    b1 = np.zeros(nq)
+    b2 = np.zeros(nq)
+    for c in range(nchan):
+        for q in range(nq):
+            x = tile[c, q]
+            use = _use(mode, x, thr[q], msk[c, q] if mode >= 2 else True)
+            d = velocity[c] - m1[q]
+            w1 = dv[c] * d / S[q] if use else 0.0
+            w2 = dv[c] * (d * d - M2[q]) / S[q] if use else 0.0
+            v1[q] += w1 * w1
+            v2[q] += w2 * w2
+            if nlag > 1:
+                v1[q] += 2.0 * r1 * w1 * a1[q]
+                v2[q] += 2.0 * r1 * w2 * b1[q]
+            if nlag > 2:
+                v1[q] += 2.0 * r2 * w1 * a2[q]
+                v2[q] += 2.0 * r2 * w2 * b2[q]
+            a2[q] = a1[q]
+            a1[q] = w1
+            b2[q] = b1[q]
+            b1[q] = w2
+    for q in range(nq):
+        _finish(out, p0 + q, footprint[p0 + q], sigma[p0 + q], S[q], n[q], peak[q], ipk[q],
+                m1[q], M2[q], v0[q], v1[q], v2[q], velocity, dv)
+
+
+@numba.njit(cache=True, nogil=True)
+def _finish(out, p, inside, sigma_p, S, n, peak, ipk, m1, M2, v0, v1, v2, velocity, dv):
+    """Column ``p`` of ``out`` from one spectrum's sums."""
     nan = np.nan
     if not inside:
         for k in range(8):
             out[k, p] = nan
         out[8, p] = 0.0
         return
-    thr = threshold * sigma_p
-    S = 0.0
-    Sv = 0.0
-    n = 0
-    peak = -np.inf
-    ipk = -1
-    for c in range(nchan):
-        x = spec[c]
-        if _use(mode, x, thr, mask[c, p] if mode >= 2 else True):
-            w = x * dv[c]
-            S += w
-            Sv += w * velocity[c]
-            n += 1
-            if x > peak:
-                peak = x
-                ipk = c
     out[8, p] = n
     if n == 0:
         for k in range(8):
@@ -70,20 +135,6 @@ def spectrum_moments(spec, velocity, dv, mode, threshold, sigma_p, mask, p, insi
     out[6, p] = peak
     out[7, p] = velocity[ipk]
     s2 = sigma_p * sigma_p
-    # error of moment 0: weights dv_i on used channels, banded correlation
-    v0 = 0.0
-    prev1 = 0.0
-    prev2 = 0.0
-    for c in range(nchan):
-        x = spec[c]
-        w = dv[c] if _use(mode, x, thr, mask[c, p] if mode >= 2 else True) else 0.0
-        v0 += w * w
-        if nlag > 1:
-            v0 += 2.0 * rho[1] * w * prev1
-        if nlag > 2:
-            v0 += 2.0 * rho[2] * w * prev2
-        prev2 = prev1
-        prev1 = w
     out[3, p] = np.sqrt(s2 * v0)
     if not S > 0.0:
         out[1, p] = nan
@@ -91,42 +142,7 @@ def spectrum_moments(spec, velocity, dv, mode, threshold, sigma_p, mask, p, insi
         out[4, p] = nan
         out[5, p] = nan
         return
-    m1 = Sv / S
-    M2 = 0.0
-    for c in range(nchan):
-        x = spec[c]
-        if _use(mode, x, thr, mask[c, p] if mode >= 2 else True):
-            d = velocity[c] - m1
-            M2 += x * dv[c] * d * d
-    M2 /= S
     out[1, p] = m1
-    v1 = 0.0
-    v2 = 0.0
-    a1 = 0.0
-    a2 = 0.0
-    b1 = 0.0
-    b2 = 0.0
-    for c in range(nchan):
-        x = spec[c]
-        if _use(mode, x, thr, mask[c, p] if mode >= 2 else True):
-            d = velocity[c] - m1
-            w1 = dv[c] * d / S
-            w2 = dv[c] * (d * d - M2) / S
-        else:
-            w1 = 0.0
-            w2 = 0.0
-        v1 += w1 * w1
-        v2 += w2 * w2
-        if nlag > 1:
-            v1 += 2.0 * rho[1] * w1 * a1
-            v2 += 2.0 * rho[1] * w2 * b1
-        if nlag > 2:
-            v1 += 2.0 * rho[2] * w1 * a2
-            v2 += 2.0 * rho[2] * w2 * b2
-        a2 = a1
-        a1 = w1
-        b2 = b1
-        b1 = w2
     out[4, p] = np.sqrt(s2 * v1)
     if n == 1:
         # one channel: the velocity is only known to within the channel (top-hat
@@ -152,7 +168,12 @@ def moments_kernel(data, velocity, dv, mode, threshold, sigma, mask, footprint, 
     peak, velocity_at_peak, nchan.  ``mask`` is (nchan, npix) bool (only read in modes 2 and 3),
     ``footprint`` (npix,) bool, ``rho`` the noise correlation at lags 0.. (len <= 3).
     """
-    npix = data.shape[1]
-    for p in numba.prange(npix):
-        spectrum_moments(data[:, p], velocity, dv, mode, threshold, sigma[p], mask, p,
-                         footprint[p], rho, out)
+    nchan, npix = data.shape
+    ntile = (npix + TILE - 1) // TILE
+    for t in numba.prange(ntile):
+        p0 = t * TILE
+        nq = min(npix, p0 + TILE) - p0
+        tile = np.empty((nchan, TILE), dtype=data.dtype)
+        load_tile(data, p0, nq, tile)
+        tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footprint, rho,
+                     out)

@@ -6,75 +6,108 @@ Values beyond ``clip`` times the current sigma of the current mean are dropped u
 kept set stops changing; the RMS of a Gaussian truncated at +-c sigma is low by the factor
 sqrt(1 - 2 c phi(c) / (2 Phi(c) - 1)) (truncated normal variance), which ``correction``
 undoes (computed by the caller; see :func:`kinemap.maps.noise.clip_correction`).
+
+Layout: the kernels work on a tile of ``TILE`` neighbouring spectra held channel by channel
+(``tile[c, q]``, as the cube stores them), one lane per spectrum.  Each pass runs over the
+channels and, inside, over the lanes: the inner loop is branch-free (a value counts or adds
+zero) and independent from lane to lane, so it vectorises across spectra without fast-math,
+while every spectrum's sums still run through its channels in order; the numbers are those
+of a plain loop over one spectrum.  All lanes take the clipping pass until each has
+settled (the spectra of a tile rarely need different numbers of passes).
 """
 from __future__ import annotations
 
 import numba
 import numpy as np
 
-TILE = 32  # pixels per tile: a tile's spectra are copied to contiguous memory first
+TILE = 32  # spectra per tile: a tile is copied channel by channel into contiguous memory
 MAX_ITER = 20
+_BIG = np.finfo(np.float64).max  # |v| <= _BIG: v is finite (False for NaN and infinity)
 
 
-@numba.njit(cache=True, nogil=True)
-def _clipped_sigma(x, n, clip, correction):
-    """Sigma of x[:n] by iterative clipping at clip * sigma around the mean."""
-    if n < 3:
-        return np.nan, n
-    lo, hi = -np.inf, np.inf
-    kept_prev = -1
-    sigma = np.nan
-    kept = 0
-    for _ in range(MAX_ITER):
-        s1 = 0.0
-        s2 = 0.0
-        kept = 0
-        for i in range(n):
-            v = x[i]
-            if v >= lo and v <= hi:
-                s1 += v
-                s2 += v * v
-                kept += 1
-        if kept < 3:
-            return np.nan, kept
-        mean = s1 / kept
-        var = s2 / kept - mean * mean
-        sigma = np.sqrt(var * kept / (kept - 1)) if var > 0 else 0.0
-        if kept == kept_prev:
-            break
-        kept_prev = kept
-        lo = mean - clip * sigma
-        hi = mean + clip * sigma
-    return sigma / correction, kept
-
-
-@numba.njit(cache=True, nogil=True)
-def spectrum_noise(x, buf, second_differences, keep, factor, clip, correction):
-    """(sigma, channels kept, finite channels) of one spectrum ``x`` (nchan,).
-
-    ``buf`` is scratch of at least nchan float64.  ``x`` may be float32 or float64: the
-    second differences are formed in float64 either way (the constant 2.0 promotes them),
-    so the estimate does not depend on the precision the spectrum was loaded in.
-    """
-    nchan = x.shape[0]
-    nf = 0
-    for c in range(nchan):
-        if np.isfinite(x[c]):
-            nf += 1
-    n = 0
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _sums(tile, nq, second_differences, keep, lo, hi, kept, s1, s2):
+    """Per lane q < nq: count, sum and sum of squares of the finite values in [lo, hi] of
+    the second differences of tile[:, q] (``second_differences``) or of its channels where
+    ``keep`` is True, all in float64."""
+    nchan = tile.shape[0]
+    kept[:nq] = 0
+    s1[:nq] = 0.0
+    s2[:nq] = 0.0
     if second_differences:
-        for c in range(1, nchan - 1):
-            d = x[c - 1] - 2.0 * x[c] + x[c + 1]
-            if np.isfinite(d):
-                buf[n] = d
-                n += 1
+        for c in range(nchan - 2):
+            for q in range(nq):
+                v = tile[c, q] - 2.0 * tile[c + 1, q] + tile[c + 2, q]
+                use = (v >= lo[q]) & (v <= hi[q]) & (abs(v) <= _BIG)
+                kept[q] += use
+                v = v if use else 0.0
+                s1[q] += v
+                s2[q] += v * v
     else:
         for c in range(nchan):
-            if keep[c] and np.isfinite(x[c]):
-                buf[n] = x[c]
-                n += 1
-    s, kept = _clipped_sigma(buf, n, clip, correction)
-    return (s / factor if s > 0 else np.nan), kept, nf
+            if keep[c]:
+                for q in range(nq):
+                    v = tile[c, q] + 0.0  # float64
+                    use = (v >= lo[q]) & (v <= hi[q]) & (abs(v) <= _BIG)
+                    kept[q] += use
+                    v = v if use else 0.0
+                    s1[q] += v
+                    s2[q] += v * v
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def tile_noise(tile, nq, p0, second_differences, keep, factor, clip, correction, out, nused,
+               nfinite):
+    """Noise of the spectra tile[:, q], q < nq, into out[p0 + q], nused[p0 + q] (values
+    the clipped RMS kept) and nfinite[p0 + q] (finite channels)."""
+    nchan = tile.shape[0]
+    nf = nfinite[p0:p0 + nq]  # slices of the outputs: indices from 0 vectorise
+    nf[:] = 0
+    for c in range(nchan):
+        row = tile[c]
+        for q in range(nq):
+            nf[q] += abs(row[q]) <= _BIG
+    lo = np.full(nq, -np.inf)
+    hi = np.full(nq, np.inf)
+    kept = np.empty(nq, np.int64)
+    s1 = np.empty(nq)
+    s2 = np.empty(nq)
+    prev = np.full(nq, -1)
+    done = np.zeros(nq, np.bool_)
+    for it in range(MAX_ITER):
+        _sums(tile, nq, second_differences, keep, lo, hi, kept, s1, s2)
+        left = 0
+        for q in range(nq):
+            if done[q]:
+                continue
+            k = kept[q]
+            if k < 3:
+                out[p0 + q] = np.nan
+                nused[p0 + q] = k
+                done[q] = True
+                continue
+            mean = s1[q] / k
+            var = s2[q] / k - mean * mean
+            sigma = np.sqrt(var * k / (k - 1)) if var > 0 else 0.0
+            if k == prev[q] or it == MAX_ITER - 1:
+                s = sigma / correction
+                out[p0 + q] = s / factor if s > 0 else np.nan
+                nused[p0 + q] = k
+                done[q] = True
+                continue
+            prev[q] = k
+            lo[q] = mean - clip * sigma
+            hi[q] = mean + clip * sigma
+            left += 1
+        if left == 0:
+            break
+
+
+@numba.njit(cache=True, nogil=True)
+def load_tile(data, p0, nq, tile):
+    """tile[:, :nq] = data[:, p0:p0 + nq] (contiguous rows of the tile's spectra)."""
+    for c in range(data.shape[0]):
+        tile[c, :nq] = data[c, p0:p0 + nq]
 
 
 @numba.njit(parallel=True, cache=True, nogil=True)
@@ -87,15 +120,8 @@ def noise_kernel(data, second_differences, keep, factor, clip, correction, out, 
     ntile = (npix + TILE - 1) // TILE
     for t in numba.prange(ntile):
         p0 = t * TILE
-        p1 = min(npix, p0 + TILE)
-        tile = np.empty((p1 - p0, nchan))
-        for c in range(nchan):
-            for q in range(p1 - p0):
-                tile[q, c] = data[c, p0 + q]
-        buf = np.empty(max(nchan, 1))
-        for q in range(p1 - p0):
-            s, kept, nf = spectrum_noise(tile[q], buf, second_differences, keep, factor, clip,
-                                         correction)
-            out[p0 + q] = s
-            nused[p0 + q] = kept
-            nfinite[p0 + q] = nf
+        nq = min(npix, p0 + TILE) - p0
+        tile = np.empty((nchan, TILE), dtype=data.dtype)
+        load_tile(data, p0, nq, tile)
+        tile_noise(tile, nq, p0, second_differences, keep, factor, clip, correction, out,
+                   nused, nfinite)
