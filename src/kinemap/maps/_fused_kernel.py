@@ -66,7 +66,8 @@ def fused_kernel_swapped(raw, second_differences, keep, factor, clip, correction
             for q in range(nq):
                 v = src[q]
                 dst[q] = (((v >> 24) & 0xFF) | ((v >> 8) & 0xFF00)
-                              | ((v << 8) & 0xFF0000) | ((v << 24) & 0xFF000000))
+                          | ((v << 8) & 0xFF0000) | ((v << 24) & 0xFF000000))
+            dst[nq:] = 0  # padding lanes of a last, partial tile (as load_tile)
         _tile_work(bits.view(np.float32), nq, p0, second_differences, keep, factor, clip,
                    correction, velocity, dv, mode, threshold, mask, footprint, rho, sigma,
                    nused, nfinite, out)

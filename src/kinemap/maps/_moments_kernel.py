@@ -35,7 +35,9 @@ def tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footp
                  out):
     """Moments of the spectra tile[:, q], q < nq, into columns p0 + q of ``out`` (9, npix).
 
-    ``tile`` (nchan, >= nq) holds the spectra channel by channel, float32 or float64:
+    ``tile`` (nchan, TILE) holds the spectra channel by channel as :func:`load_tile` fills
+    it (lanes from nq on are padding, each loop over lanes runs TILE times, a constant the
+    compiler unrolls into a few vector operations), float32 or float64:
     every product with the float64 channel widths and velocities is float64, so the sums
     are the same either way.  ``sigma`` (npix,) is the noise, ``mask`` the (nchan, npix)
     voxel mask (read in modes 2 and 3), ``footprint`` (npix,) False outside the data.
@@ -48,66 +50,89 @@ def tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footp
     nlag = rho.shape[0]
     r1 = rho[1] if nlag > 1 else 0.0
     r2 = rho[2] if nlag > 2 else 0.0
-    thr = threshold * sigma[p0:p0 + nq]
-    msk = mask[:, p0:p0 + nq]  # (read in modes 2 and 3 only; slices index from 0)
-    S = np.zeros(nq)
-    Sv = np.zeros(nq)
-    n = np.zeros(nq, np.int64)
-    peak = np.full(nq, -np.inf)
-    ipk = np.full(nq, -1)
-    v0 = np.zeros(nq)
-    prev1 = np.zeros(nq)
-    prev2 = np.zeros(nq)
+    thr = np.zeros(TILE)
+    thr[:nq] = threshold * sigma[p0:p0 + nq]
+    msk = np.zeros((nchan if mode >= 2 else 1, TILE), np.bool_)  # the mask's tile, padded
+    if mode >= 2:
+        for c in range(nchan):
+            msk[c, :nq] = mask[c, p0:p0 + nq]
+    # Products are formed for every lane and selected afterwards (x if use else 0.0): a
+    # select of a computed value vectorises, a computation inside the select does not.
+    S = np.zeros(TILE)
+    Sv = np.zeros(TILE)
+    n = np.zeros(TILE, np.int64)
+    peak = np.full(TILE, -np.inf)
+    ipk = np.full(TILE, -1)
     for c in range(nchan):
-        for q in range(nq):
+        dvc = dv[c]  # per-channel values as locals: loaded once, not once per lane
+        vc = velocity[c]
+        for q in range(TILE):
             x = tile[c, q]
             use = _use(mode, x, thr[q], msk[c, q] if mode >= 2 else True)
-            w = x * dv[c] if use else 0.0
-            S[q] += w
-            Sv[q] += w * velocity[c] if use else 0.0
+            w = x * dvc
+            wv = w * vc
+            S[q] += w if use else 0.0
+            Sv[q] += wv if use else 0.0
             n[q] += use
-            better = use & (x > peak[q])
-            peak[q] = x if better else peak[q]
-            ipk[q] = c if better else ipk[q]
-            # error of moment 0: weights dv_i on used channels, banded correlation
-            w = dv[c] if use else 0.0
-            v0[q] += w * w
+            x = x + 0.0  # float64
+            pq = peak[q]
+            better = use & (x > pq)
+            peak[q] = x if better else pq
+            iq = ipk[q]
+            ipk[q] = c if better else iq
+    m1 = Sv / S
+    # M2, and the error of moment 0: weights dv_i on used channels, banded correlation
+    M2 = np.zeros(TILE)
+    v0 = np.zeros(TILE)
+    prev1 = np.zeros(TILE)
+    prev2 = np.zeros(TILE)
+    for c in range(nchan):
+        dvc = dv[c]
+        vc = velocity[c]
+        for q in range(TILE):
+            x = tile[c, q]
+            use = _use(mode, x, thr[q], msk[c, q] if mode >= 2 else True)
+            d = vc - m1[q]
+            t = x * dvc * d * d
+            M2[q] += t if use else 0.0
+            w = dvc if use else 0.0
+            acc = v0[q] + w * w
             if nlag > 1:
-                v0[q] += 2.0 * r1 * w * prev1[q]
+                acc += 2.0 * r1 * w * prev1[q]
             if nlag > 2:
-                v0[q] += 2.0 * r2 * w * prev2[q]
+                acc += 2.0 * r2 * w * prev2[q]
+            v0[q] = acc
             prev2[q] = prev1[q]
             prev1[q] = w
-    m1 = Sv / S
-    M2 = np.zeros(nq)
-    for c in range(nchan):
-        for q in range(nq):
-            x = tile[c, q]
-            d = velocity[c] - m1[q]
-            use = _use(mode, x, thr[q], msk[c, q] if mode >= 2 else True)
-            M2[q] += x * dv[c] * d * d if use else 0.0
     M2 /= S
-    v1 = np.zeros(nq)
-    v2 = np.zeros(nq)
-    a1 = np.zeros(nq)
-    a2 = np.zeros(nq)
-    b1 = np.zeros(nq)
-    b2 = np.zeros(nq)
+    # errors of moments 1 and 2
+    v1 = np.zeros(TILE)
+    v2 = np.zeros(TILE)
+    a1 = np.zeros(TILE)
+    a2 = np.zeros(TILE)
+    b1 = np.zeros(TILE)
+    b2 = np.zeros(TILE)
     for c in range(nchan):
-        for q in range(nq):
+        dvc = dv[c]
+        vc = velocity[c]
+        for q in range(TILE):
             x = tile[c, q]
             use = _use(mode, x, thr[q], msk[c, q] if mode >= 2 else True)
-            d = velocity[c] - m1[q]
-            w1 = dv[c] * d / S[q] if use else 0.0
-            w2 = dv[c] * (d * d - M2[q]) / S[q] if use else 0.0
-            v1[q] += w1 * w1
-            v2[q] += w2 * w2
+            d = vc - m1[q]
+            u1 = dvc * d / S[q]
+            u2 = dvc * (d * d - M2[q]) / S[q]
+            w1 = u1 if use else 0.0
+            w2 = u2 if use else 0.0
+            acc1 = v1[q] + w1 * w1
+            acc2 = v2[q] + w2 * w2
             if nlag > 1:
-                v1[q] += 2.0 * r1 * w1 * a1[q]
-                v2[q] += 2.0 * r1 * w2 * b1[q]
+                acc1 += 2.0 * r1 * w1 * a1[q]
+                acc2 += 2.0 * r1 * w2 * b1[q]
             if nlag > 2:
-                v1[q] += 2.0 * r2 * w1 * a2[q]
-                v2[q] += 2.0 * r2 * w2 * b2[q]
+                acc1 += 2.0 * r2 * w1 * a2[q]
+                acc2 += 2.0 * r2 * w2 * b2[q]
+            v1[q] = acc1
+            v2[q] = acc2
             a2[q] = a1[q]
             a1[q] = w1
             b2[q] = b1[q]

@@ -26,17 +26,18 @@ _BIG = np.finfo(np.float64).max  # |v| <= _BIG: v is finite (False for NaN and i
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def _sums(tile, nq, second_differences, keep, lo, hi, kept, s1, s2):
-    """Per lane q < nq: count, sum and sum of squares of the finite values in [lo, hi] of
-    the second differences of tile[:, q] (``second_differences``) or of its channels where
-    ``keep`` is True, all in float64."""
+def _sums(tile, second_differences, keep, lo, hi, kept, s1, s2):
+    """Per lane q: count, sum and sum of squares of the finite values in [lo, hi] of the
+    second differences of tile[:, q] (``second_differences``) or of its channels where
+    ``keep`` is True, all in float64.  Every loop over the lanes runs TILE times (a
+    constant: the compiler unrolls it into a few vector operations)."""
     nchan = tile.shape[0]
-    kept[:nq] = 0
-    s1[:nq] = 0.0
-    s2[:nq] = 0.0
+    kept[:] = 0
+    s1[:] = 0.0
+    s2[:] = 0.0
     if second_differences:
         for c in range(nchan - 2):
-            for q in range(nq):
+            for q in range(TILE):
                 v = tile[c, q] - 2.0 * tile[c + 1, q] + tile[c + 2, q]
                 use = (v >= lo[q]) & (v <= hi[q]) & (abs(v) <= _BIG)
                 kept[q] += use
@@ -46,7 +47,7 @@ def _sums(tile, nq, second_differences, keep, lo, hi, kept, s1, s2):
     else:
         for c in range(nchan):
             if keep[c]:
-                for q in range(nq):
+                for q in range(TILE):
                     v = tile[c, q] + 0.0  # float64
                     use = (v >= lo[q]) & (v <= hi[q]) & (abs(v) <= _BIG)
                     kept[q] += use
@@ -59,23 +60,23 @@ def _sums(tile, nq, second_differences, keep, lo, hi, kept, s1, s2):
 def tile_noise(tile, nq, p0, second_differences, keep, factor, clip, correction, out, nused,
                nfinite):
     """Noise of the spectra tile[:, q], q < nq, into out[p0 + q], nused[p0 + q] (values
-    the clipped RMS kept) and nfinite[p0 + q] (finite channels)."""
+    the clipped RMS kept) and nfinite[p0 + q] (finite channels).  ``tile`` is (nchan, TILE)
+    as :func:`load_tile` fills it (lanes from nq on are padding)."""
     nchan = tile.shape[0]
-    nf = nfinite[p0:p0 + nq]  # slices of the outputs: indices from 0 vectorise
-    nf[:] = 0
+    nf = np.zeros(TILE, np.int64)
     for c in range(nchan):
-        row = tile[c]
-        for q in range(nq):
-            nf[q] += abs(row[q]) <= _BIG
-    lo = np.full(nq, -np.inf)
-    hi = np.full(nq, np.inf)
-    kept = np.empty(nq, np.int64)
-    s1 = np.empty(nq)
-    s2 = np.empty(nq)
+        for q in range(TILE):
+            nf[q] += abs(tile[c, q]) <= _BIG
+    nfinite[p0:p0 + nq] = nf[:nq]
+    lo = np.full(TILE, -np.inf)
+    hi = np.full(TILE, np.inf)
+    kept = np.empty(TILE, np.int64)
+    s1 = np.empty(TILE)
+    s2 = np.empty(TILE)
     prev = np.full(nq, -1)
     done = np.zeros(nq, np.bool_)
     for it in range(MAX_ITER):
-        _sums(tile, nq, second_differences, keep, lo, hi, kept, s1, s2)
+        _sums(tile, second_differences, keep, lo, hi, kept, s1, s2)
         left = 0
         for q in range(nq):
             if done[q]:
@@ -105,9 +106,11 @@ def tile_noise(tile, nq, p0, second_differences, keep, factor, clip, correction,
 
 @numba.njit(cache=True, nogil=True)
 def load_tile(data, p0, nq, tile):
-    """tile[:, :nq] = data[:, p0:p0 + nq] (contiguous rows of the tile's spectra)."""
+    """tile[:, :nq] = data[:, p0:p0 + nq] (contiguous rows of the tile's spectra); the
+    padding lanes tile[:, nq:] of a last, partial tile are zero."""
     for c in range(data.shape[0]):
         tile[c, :nq] = data[c, p0:p0 + nq]
+        tile[c, nq:] = 0
 
 
 @numba.njit(parallel=True, cache=True, nogil=True)
