@@ -10,9 +10,10 @@ versions compile in this process.  The data: seeded float32 spectra with one Gau
 each plus noise, a few NaN channels and outliers, held big-endian as FITS stores them (the
 fused kernel swaps the bytes as it loads them, as in ``kinemap maps``).  Also timed, as the
 floor of any one-read pass: a numpy byteswapping copy of the same bytes (one streaming
-pass).  Prints best-of-``--repeat`` times with the load average, the ratios old / new and
-kernel / streaming pass, ns per voxel per core, and the largest relative difference of
-the outputs (float rounding expected; counts should agree).
+pass).  Prints best-of-``--repeat`` wall and CPU times (CPU summed over threads: steadier on
+a shared machine) with the load average, the ratios old / new and kernel / streaming pass,
+CPU ns per voxel, and the largest relative difference of the outputs (the kernels keep
+each spectrum's summation order, so 0 is expected; counts must agree).
 """
 import argparse
 import importlib
@@ -62,11 +63,13 @@ def make_data(nchan, npix, seed=7):
 
 
 def best(fn, repeat):
+    """(wall, CPU) seconds of the best of ``repeat`` calls; CPU time (all threads) is the
+    steadier figure on a shared machine."""
     times = []
     for _ in range(repeat):
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time()
         fn()
-        times.append(time.perf_counter() - t0)
+        times.append((time.perf_counter() - t0, time.process_time() - c0))
     return min(times)
 
 
@@ -126,14 +129,17 @@ def main():
             run_fused(kern, raw[:, :64], nchan, 64, rho)  # compile
             res[label] = run_fused(kern, raw, nchan, npix, rho)
         la = load()
-        t_stream = best(lambda: raw_be.astype(np.float32), args.repeat)
-        t_old = best(lambda: run_fused(old["_fused_kernel"], raw, nchan, npix, rho), args.repeat)
-        t_new = best(lambda: run_fused(new_fused, raw, nchan, npix, rho), args.repeat)
-        per = 1e9 * numba.get_num_threads() / voxels
-        print(f"streaming pass (numpy byteswapping copy): {t_stream:.3f} s ({la})")
-        print(f"fused kernel old {t_old:.3f} s ({t_old * per:.2f} ns/voxel/core), "
-              f"new {t_new:.3f} s ({t_new * per:.2f} ns/voxel/core): old / new {t_old / t_new:.2f}x;"
-              f" new / streaming pass {t_new / t_stream:.1f}x ({load()})")
+        (t_stream, c_stream), (t_old, c_old), (t_new, c_new) = (best(f, args.repeat) for f in (
+            lambda: raw_be.astype(np.float32),
+            lambda: run_fused(old["_fused_kernel"], raw, nchan, npix, rho),
+            lambda: run_fused(new_fused, raw, nchan, npix, rho)))
+        per = 1e9 / voxels
+        print(f"streaming pass (numpy byteswapping copy, one thread): {t_stream:.3f} s wall, "
+              f"{c_stream * per:.2f} ns CPU per voxel ({la})")
+        print(f"fused kernel old {t_old:.3f} s wall, {c_old * per:.2f} ns CPU per voxel; "
+              f"new {t_new:.3f} s wall, {c_new * per:.2f} ns CPU per voxel: old / new "
+              f"{t_old / t_new:.2f}x wall, {c_old / c_new:.2f}x CPU; new / streaming pass "
+              f"{c_new / c_stream:.1f}x CPU ({load()})")
         names = ("sigma", "nused", "nfinite") + tuple(f"out[{i}]" for i in range(9))
         o, n = res["old"], res["new"]
         diffs = [rel(a, b) for a, b in zip(o[:3] + tuple(o[3]), n[:3] + tuple(n[3]))]
@@ -143,10 +149,12 @@ def main():
         for label, kern in (("old", old["_noise_kernel"]), ("new", new_noise)):
             run_noise(kern, native[:, :64], nchan, 64)
         la = load()
-        t_old = best(lambda: run_noise(old["_noise_kernel"], native, nchan, npix), args.repeat)
-        t_new = best(lambda: run_noise(new_noise, native, nchan, npix), args.repeat)
-        print(f"noise kernel alone: old {t_old:.3f} s, new {t_new:.3f} s: old / new "
-              f"{t_old / t_new:.2f}x ({la})")
+        (t_old, c_old), (t_new, c_new) = (best(f, args.repeat) for f in (
+            lambda: run_noise(old["_noise_kernel"], native, nchan, npix),
+            lambda: run_noise(new_noise, native, nchan, npix)))
+        print(f"noise kernel alone: old {t_old:.3f} s wall, {c_old * per:.2f} ns CPU per voxel; "
+              f"new {t_new:.3f} s wall, {c_new * per:.2f} ns CPU per voxel: old / new "
+              f"{t_old / t_new:.2f}x wall, {c_old / c_new:.2f}x CPU ({la})")
 
 
 if __name__ == "__main__":

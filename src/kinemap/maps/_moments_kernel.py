@@ -10,7 +10,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from kinemap.maps._noise_kernel import TILE, load_tile
+from kinemap.maps._noise_kernel import TILE, lane, load_tile
 
 # Which channels count: 0 every finite channel, 1 value > threshold * sigma, 2 a given mask,
 # 3 both (a threshold inside the user's mask)
@@ -50,7 +50,7 @@ def tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footp
     nlag = rho.shape[0]
     r1 = rho[1] if nlag > 1 else 0.0
     r2 = rho[2] if nlag > 2 else 0.0
-    thr = np.zeros(TILE)
+    thr = lane(0.0)
     thr[:nq] = threshold * sigma[p0:p0 + nq]
     msk = np.zeros((nchan if mode >= 2 else 1, TILE), np.bool_)  # the mask's tile, padded
     if mode >= 2:
@@ -58,14 +58,15 @@ def tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footp
             msk[c, :nq] = mask[c, p0:p0 + nq]
     # Products are formed for every lane and selected afterwards (x if use else 0.0): a
     # select of a computed value vectorises, a computation inside the select does not.
-    S = np.zeros(TILE)
-    Sv = np.zeros(TILE)
-    n = np.zeros(TILE, np.int64)
-    peak = np.full(TILE, -np.inf)
-    ipk = np.full(TILE, -1)
+    S = lane(0.0)
+    Sv = lane(0.0)
+    n = lane(0.0)
+    peak = lane(-np.inf)
+    ipk = lane(-1.0)
     for c in range(nchan):
         dvc = dv[c]  # per-channel values as locals: loaded once, not once per lane
         vc = velocity[c]
+        cf = float(c)
         for q in range(TILE):
             x = tile[c, q]
             use = _use(mode, x, thr[q], msk[c, q] if mode >= 2 else True)
@@ -79,13 +80,15 @@ def tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footp
             better = use & (x > pq)
             peak[q] = x if better else pq
             iq = ipk[q]
-            ipk[q] = c if better else iq
-    m1 = Sv / S
+            ipk[q] = cf if better else iq
+    m1 = lane(0.0)
+    for q in range(TILE):
+        m1[q] = Sv[q] / S[q]
     # M2, and the error of moment 0: weights dv_i on used channels, banded correlation
-    M2 = np.zeros(TILE)
-    v0 = np.zeros(TILE)
-    prev1 = np.zeros(TILE)
-    prev2 = np.zeros(TILE)
+    M2 = lane(0.0)
+    v0 = lane(0.0)
+    prev1 = lane(0.0)
+    prev2 = lane(0.0)
     for c in range(nchan):
         dvc = dv[c]
         vc = velocity[c]
@@ -104,14 +107,15 @@ def tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footp
             v0[q] = acc
             prev2[q] = prev1[q]
             prev1[q] = w
-    M2 /= S
+    for q in range(TILE):
+        M2[q] /= S[q]
     # errors of moments 1 and 2
-    v1 = np.zeros(TILE)
-    v2 = np.zeros(TILE)
-    a1 = np.zeros(TILE)
-    a2 = np.zeros(TILE)
-    b1 = np.zeros(TILE)
-    b2 = np.zeros(TILE)
+    v1 = lane(0.0)
+    v2 = lane(0.0)
+    a1 = lane(0.0)
+    a2 = lane(0.0)
+    b1 = lane(0.0)
+    b2 = lane(0.0)
     for c in range(nchan):
         dvc = dv[c]
         vc = velocity[c]
@@ -152,13 +156,13 @@ def _finish(out, p, inside, sigma_p, S, n, peak, ipk, m1, M2, v0, v1, v2, veloci
         out[8, p] = 0.0
         return
     out[8, p] = n
-    if n == 0:
+    if n == 0.0:
         for k in range(8):
             out[k, p] = nan
         return
     out[0, p] = S
     out[6, p] = peak
-    out[7, p] = velocity[ipk]
+    out[7, p] = velocity[int(ipk)]
     s2 = sigma_p * sigma_p
     out[3, p] = np.sqrt(s2 * v0)
     if not S > 0.0:
@@ -169,10 +173,10 @@ def _finish(out, p, inside, sigma_p, S, n, peak, ipk, m1, M2, v0, v1, v2, veloci
         return
     out[1, p] = m1
     out[4, p] = np.sqrt(s2 * v1)
-    if n == 1:
+    if n == 1.0:
         # one channel: the velocity is only known to within the channel (top-hat
         # sigma dv/sqrt(12)), and there is no width to measure
-        out[4, p] = dv[ipk] / np.sqrt(12.0)
+        out[4, p] = dv[int(ipk)] / np.sqrt(12.0)
         out[2, p] = nan
         out[5, p] = nan
         return
