@@ -18,7 +18,7 @@ from kinemap.maps.masks import make_mask
 from kinemap.maps.moments import _KEYS, compute_moments, noise_and_moments
 from kinemap.maps.noise import estimate_noise
 
-NCHAN, NY, NX = 64, 13, 10  # 130 spectra: the last 32-spectrum tile is partly filled
+NCHAN, NY, NX = 64, 13, 10  # 130 spectra: two tiles of 128, the last partly filled
 
 
 def _data(seed=3):

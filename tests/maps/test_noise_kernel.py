@@ -9,7 +9,7 @@ is that sigma / correction / factor, NaN with fewer than three values.
 import numpy as np
 import pytest
 
-from kinemap.maps._noise_kernel import MAX_ITER, noise_kernel
+from kinemap.maps._noise_kernel import MAX_ITER, TILE, noise_kernel
 from kinemap.maps.noise import CLIP, clip_correction
 
 
@@ -48,7 +48,7 @@ def _spectra(rng, nchan, npix, dtype):
 @pytest.mark.parametrize("second_differences", [True, False])
 def test_noise_kernel_equals_numpy_reference(dtype, second_differences):
     rng = np.random.default_rng(11)
-    nchan, npix = 200, 75  # 75 spectra: the last 32-spectrum tile is partly filled
+    nchan, npix = 200, TILE + 22  # two tiles, the last partly filled
     data = _spectra(rng, nchan, npix, dtype)
     keep = np.ones(nchan, bool) if second_differences else rng.random(nchan) < 0.6
     factor = np.sqrt(6.0) if second_differences else 1.0
