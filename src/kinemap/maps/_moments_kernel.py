@@ -36,15 +36,14 @@ def tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footp
     """Moments of the spectra tile[:, q], q < nq, into columns p0 + q of ``out`` (9, npix).
 
     ``tile`` (nchan, TILE) holds the spectra channel by channel as :func:`load_tile` fills
-    it (lanes from nq on are padding, each loop over lanes runs TILE times, a constant the
-    compiler unrolls into a few vector operations), float32 or float64:
-    every product with the float64 channel widths and velocities is float64, so the sums
-    are the same either way.  ``sigma`` (npix,) is the noise, ``mask`` the (nchan, npix)
-    voxel mask (read in modes 2 and 3), ``footprint`` (npix,) False outside the data.
-    Each pass runs over the channels and, inside, over the spectra (one lane each, state in
-    small arrays), so it vectorises across spectra while every spectrum's sums still run
-    through its channels in order.  ``error_model='numpy'``: lanes without signal divide by
-    zero harmlessly (their results are not used).
+    it (lanes from nq on are padding), float32 or float64: every product with the float64
+    channel widths and velocities is float64, so the sums are the same either way.
+    ``sigma`` (npix,) is the noise, ``mask`` the (nchan, npix) voxel mask (read in modes 2
+    and 3), ``footprint`` (npix,) False outside the data.  Each pass runs over the channels
+    and, inside, over the spectra, one lane each, as in :mod:`kinemap.maps._noise_kernel`:
+    it vectorises across spectra while every spectrum's sums run through its channels in
+    order.  ``error_model='numpy'``: lanes without signal divide by zero harmlessly (their
+    results are not used).
     """
     nchan = tile.shape[0]
     nlag = rho.shape[0]
