@@ -34,10 +34,11 @@ def _reference(x, second_differences, keep, factor, clip, correction):
 
 def _spectra(rng, nchan, npix, dtype):
     x = rng.normal(0.4, 1.0, (nchan, npix))
-    x += 5.0 * np.exp(-0.5 * ((np.arange(nchan)[:, None] - rng.uniform(0, nchan, npix)) / 4.0) ** 2)
+    z = (np.arange(nchan)[:, None] - rng.uniform(0, nchan, npix)) / 4.0
+    x += 5.0 * np.exp(-0.5 * z ** 2)                                # a line
     out = rng.random((nchan, npix)) < 0.03
     x[out] += rng.choice([-1.0, 1.0], out.sum()) * rng.uniform(6.0, 60.0, out.sum())  # outliers
-    x[rng.random((nchan, npix)) < 0.05] = np.nan                                     # blank channels
+    x[rng.random((nchan, npix)) < 0.05] = np.nan                    # blank channels
     x[:, 3] = np.nan                  # a blank spectrum
     x[: nchan - 3, 4] = np.nan        # too few values
     x[5, 5] = np.inf                  # an infinite channel
