@@ -38,8 +38,6 @@ def fused_kernel(data, second_differences, keep, factor, clip, correction, veloc
     Outputs: ``sigma``, ``nused``, ``nfinite`` as :func:`noise_kernel` fills them, ``out``
     (9, npix) as :func:`moments_kernel` does; the arguments are theirs.
     """
-    numba.literally(second_differences)  # compiled for each value and mode: loops
-    numba.literally(mode)                # free of their tests run twice as fast
     nchan, npix = data.shape
     ntile = (npix + TILE - 1) // TILE
     for t in numba.prange(ntile):
@@ -56,8 +54,6 @@ def fused_kernel_swapped(raw, second_differences, keep, factor, clip, correction
                          dv, mode, threshold, mask, footprint, rho, sigma, nused, nfinite, out):
     """:func:`fused_kernel` for float32 data of the other byte order, given as its raw bits
     ``raw`` (nchan, npix) uint32: bytes are swapped as the tile is copied."""
-    numba.literally(second_differences)  # (see fused_kernel)
-    numba.literally(mode)
     nchan, npix = raw.shape
     ntile = (npix + TILE - 1) // TILE
     for t in numba.prange(ntile):

@@ -30,9 +30,26 @@ def _use(mode, x, thr_sigma, mask_val):
     return True
 
 
-@numba.njit(cache=True, nogil=True, error_model="numpy")
+@numba.njit(cache=True, nogil=True)
 def tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footprint, rho,
                  out):
+    """Moments of the spectra tile[:, q], q < nq, into columns p0 + q of ``out`` (9, npix),
+    :func:`_tile_moments` compiled for each ``mode`` (a constant there, so the loops carry
+    no test of it: twice as fast as one version for all modes)."""
+    # the mode as a number literal in each call: numba compiles a version for each value
+    if mode == 0:
+        _tile_moments(tile, nq, p0, velocity, dv, 0, threshold, sigma, mask, footprint, rho, out)
+    elif mode == 1:
+        _tile_moments(tile, nq, p0, velocity, dv, 1, threshold, sigma, mask, footprint, rho, out)
+    elif mode == 2:
+        _tile_moments(tile, nq, p0, velocity, dv, 2, threshold, sigma, mask, footprint, rho, out)
+    else:
+        _tile_moments(tile, nq, p0, velocity, dv, 3, threshold, sigma, mask, footprint, rho, out)
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footprint, rho,
+                  out):
     """Moments of the spectra tile[:, q], q < nq, into columns p0 + q of ``out`` (9, npix).
 
     ``tile`` (nchan, TILE) holds the spectra channel by channel as :func:`load_tile` fills
@@ -42,10 +59,8 @@ def tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footp
     and 3), ``footprint`` (npix,) False outside the data.  Each pass runs over the channels
     and, inside, over the spectra, one lane each, as in :mod:`kinemap.maps._noise_kernel`:
     it vectorises across spectra while every spectrum's sums run through its channels in
-    order.  The kernels pass ``mode`` as a constant (``numba.literally``): a version for
-    each mode, with loops free of its tests, twice as fast as one version for all.
-    ``error_model='numpy'``: lanes without signal divide by zero harmlessly (their results
-    are not used).
+    order.  ``error_model='numpy'``: lanes without signal divide by zero harmlessly (their
+    results are not used).
     """
     nchan = tile.shape[0]
     nlag = rho.shape[0]
@@ -198,7 +213,6 @@ def moments_kernel(data, velocity, dv, mode, threshold, sigma, mask, footprint, 
     peak, velocity_at_peak, nchan.  ``mask`` is (nchan, npix) bool (only read in modes 2 and 3),
     ``footprint`` (npix,) bool, ``rho`` the noise correlation at lags 0.. (len <= 3).
     """
-    numba.literally(mode)  # compiled for each mode (see tile_moments)
     nchan, npix = data.shape
     ntile = (npix + TILE - 1) // TILE
     for t in numba.prange(ntile):

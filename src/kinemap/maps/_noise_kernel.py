@@ -95,14 +95,26 @@ def _lane_sums(tile, q, second_differences, keep, lo, hi):
     return kept, s1, s2
 
 
-@numba.njit(cache=True, nogil=True, error_model="numpy")
+@numba.njit(cache=True, nogil=True)
 def tile_noise(tile, nq, p0, second_differences, keep, factor, clip, correction, out, nused,
                nfinite):
     """Noise of the spectra tile[:, q], q < nq, into out[p0 + q], nused[p0 + q] (values
     the clipped RMS kept) and nfinite[p0 + q] (finite channels).  ``tile`` is (nchan, TILE)
-    as :func:`load_tile` fills it (lanes from nq on are padding).  The kernels pass
-    ``second_differences`` as a constant (``numba.literally``): a version for each value,
-    with loops free of the test, twice as fast as one version for both."""
+    as :func:`load_tile` fills it (lanes from nq on are padding).
+
+    ``second_differences`` reaches the work as a constant: numba compiles a version for
+    each value, with the loops free of the test (twice as fast as one version for both).
+    """
+    if second_differences:
+        _tile_noise(tile, nq, p0, True, keep, factor, clip, correction, out, nused, nfinite)
+    else:
+        _tile_noise(tile, nq, p0, False, keep, factor, clip, correction, out, nused, nfinite)
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _tile_noise(tile, nq, p0, second_differences, keep, factor, clip, correction, out, nused,
+                nfinite):
+    """:func:`tile_noise` for one value of ``second_differences``."""
     nchan = tile.shape[0]
     nf = lane(0)
     lo = lane(-np.inf)
@@ -168,7 +180,6 @@ def noise_kernel(data, second_differences, keep, factor, clip, correction, out, 
     x[i-1] - 2 x[i] + x[i+1] over finite triples (``second_differences``), or of its finite
     values in the channels where ``keep`` is True, divided by ``factor``; nfinite[p] counts
     the finite channels of the spectrum."""
-    numba.literally(second_differences)  # compiled for each value (see tile_noise)
     nchan, npix = data.shape
     ntile = (npix + TILE - 1) // TILE
     for t in numba.prange(ntile):
