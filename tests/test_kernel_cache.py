@@ -16,11 +16,13 @@ PROBE = """
 import json, os
 import numpy as np
 import kinemap
-from kinemap.maps._noise_kernel import _clipped_sigma
-sigma, kept = _clipped_sigma(np.array([1.0, -1.0, 0.5, -0.5, 0.0]), 5, 3.0, 1.0)
-s = _clipped_sigma.stats
+from kinemap.maps._noise_kernel import tile_noise
+tile = np.array([[1.0], [-1.0], [0.5], [-0.5], [0.0]])  # one spectrum, channel by channel
+sigma, kept, nfinite = np.empty(1), np.empty(1, np.int64), np.empty(1, np.int64)
+tile_noise(tile, 1, 0, False, np.ones(5, np.bool_), 1.0, 3.0, 1.0, sigma, kept, nfinite)
+s = tile_noise.stats
 print(json.dumps({"dir": os.environ.get("NUMBA_CACHE_DIR"), "hits": sum(s.cache_hits.values()),
-                  "misses": sum(s.cache_misses.values()), "kept": int(kept)}))
+                  "misses": sum(s.cache_misses.values()), "kept": int(kept[0])}))
 """
 
 

@@ -19,7 +19,7 @@ from kinemap.maps.moments import _KEYS, compute_moments, noise_and_moments
 from kinemap.maps.noise import estimate_noise
 from kinemap.parallel.store import on_disk
 
-NCHAN, NY, NX = 64, 13, 10  # 130 spectra: the last 32-spectrum tile is partly filled
+NCHAN, NY, NX = 64, 13, 10  # 130 spectra: two tiles of 128, the last partly filled
 
 
 def _data(seed=3):

@@ -2,11 +2,11 @@
 
 The noise pass and the moments pass each used to read the whole cube, and each spent most
 of its time waiting for memory (one strided load per channel per spectrum).  Here a tile of
-``TILE`` neighbouring spectra is copied once into contiguous float32 rows that stay in the
-core's cache; the noise of each row is estimated (:func:`spectrum_noise`) and its moments
-follow at once (:func:`spectrum_moments`), with the noise of the same spectrum for a
-threshold mask and the error maps.  The per-spectrum code is the code the separate kernels
-run, so the results are the same numbers.
+``TILE`` neighbouring spectra is copied once, channel by channel as the cube stores them,
+into contiguous memory that stays in the core's cache; the noise of its spectra is
+estimated (:func:`tile_noise`) and their moments follow at once (:func:`tile_moments`), with
+the noise of the same spectra for a threshold mask and the error maps.  The tile code is
+the code the separate kernels run, so the results are the same numbers.
 
 FITS stores floats big-endian.  :func:`fused_kernel_swapped` takes the block's raw bits as
 uint32 and swaps the bytes while it copies the tile, which saves the reader a separate
@@ -17,25 +17,17 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from kinemap.maps._moments_kernel import spectrum_moments
-from kinemap.maps._noise_kernel import spectrum_noise
-
-TILE = 32  # spectra per tile: 32 x 1024 channels x 4 bytes = 128 KB, inside L2
+from kinemap.maps._moments_kernel import tile_moments
+from kinemap.maps._noise_kernel import TILE, load_tile, tile_noise
 
 
 @numba.njit(cache=True, nogil=True)
 def _tile_work(tile, nq, p0, second_differences, keep, factor, clip, correction, velocity,
-               dv, mode, threshold, mask, footprint, rho, buf, sigma, nused, nfinite, out):
-    """Noise, then moments, of the first ``nq`` rows of ``tile`` (pixels p0...)."""
-    for q in range(nq):
-        p = p0 + q
-        s, kept, nf = spectrum_noise(tile[q], buf, second_differences, keep, factor, clip,
-                                     correction)
-        sigma[p] = s
-        nused[p] = kept
-        nfinite[p] = nf
-        spectrum_moments(tile[q], velocity, dv, mode, threshold, s, mask, p, footprint[p],
-                         rho, out)
+               dv, mode, threshold, mask, footprint, rho, sigma, nused, nfinite, out):
+    """Noise, then moments, of the spectra tile[:, :nq] (pixels p0...)."""
+    tile_noise(tile, nq, p0, second_differences, keep, factor, clip, correction, sigma, nused,
+               nfinite)
+    tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footprint, rho, out)
 
 
 @numba.njit(parallel=True, cache=True, nogil=True)
@@ -51,13 +43,10 @@ def fused_kernel(data, second_differences, keep, factor, clip, correction, veloc
     for t in numba.prange(ntile):
         p0 = t * TILE
         nq = min(npix, p0 + TILE) - p0
-        tile = np.empty((TILE, nchan), dtype=data.dtype)
-        for c in range(nchan):
-            for q in range(nq):
-                tile[q, c] = data[c, p0 + q]
-        buf = np.empty(max(nchan, 1))
+        tile = np.empty((nchan, TILE), dtype=data.dtype)
+        load_tile(data, p0, nq, tile)
         _tile_work(tile, nq, p0, second_differences, keep, factor, clip, correction, velocity,
-                   dv, mode, threshold, mask, footprint, rho, buf, sigma, nused, nfinite, out)
+                   dv, mode, threshold, mask, footprint, rho, sigma, nused, nfinite, out)
 
 
 @numba.njit(parallel=True, cache=True, nogil=True)
@@ -70,13 +59,15 @@ def fused_kernel_swapped(raw, second_differences, keep, factor, clip, correction
     for t in numba.prange(ntile):
         p0 = t * TILE
         nq = min(npix, p0 + TILE) - p0
-        bits = np.empty((TILE, nchan), dtype=np.uint32)
+        bits = np.empty((nchan, TILE), dtype=np.uint32)
         for c in range(nchan):
+            src = raw[c, p0:p0 + nq]
+            dst = bits[c]
             for q in range(nq):
-                v = raw[c, p0 + q]
-                bits[q, c] = (((v >> 24) & 0xFF) | ((v >> 8) & 0xFF00)
-                              | ((v << 8) & 0xFF0000) | ((v << 24) & 0xFF000000))
-        tile = bits.view(np.float32)
-        buf = np.empty(max(nchan, 1))
-        _tile_work(tile, nq, p0, second_differences, keep, factor, clip, correction, velocity,
-                   dv, mode, threshold, mask, footprint, rho, buf, sigma, nused, nfinite, out)
+                v = src[q]
+                dst[q] = (((v >> 24) & 0xFF) | ((v >> 8) & 0xFF00)
+                          | ((v << 8) & 0xFF0000) | ((v << 24) & 0xFF000000))
+            dst[nq:] = 0  # padding lanes of a last, partial tile (as load_tile)
+        _tile_work(bits.view(np.float32), nq, p0, second_differences, keep, factor, clip,
+                   correction, velocity, dv, mode, threshold, mask, footprint, rho, sigma,
+                   nused, nfinite, out)

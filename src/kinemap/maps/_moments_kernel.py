@@ -1,7 +1,7 @@
 """Compiled moment kernel: all moment maps and their errors in three passes per spectrum.
 
 Same formulas as :mod:`kinemap.maps.moments` (the docstring there is the reference).  The
-per-spectrum work is :func:`spectrum_moments`, shared by :func:`moments_kernel` (moments
+work on a tile of spectra is :func:`tile_moments`, shared by :func:`moments_kernel` (moments
 alone) and the fused noise-and-moments pass (:mod:`kinemap.maps._fused_kernel`), so the two
 paths cannot drift apart.
 """
@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import numba
 import numpy as np
+
+from kinemap.maps._noise_kernel import TILE, lane, load_tile
 
 # Which channels count: 0 every finite channel, 1 value > threshold * sigma, 2 a given mask,
 # 3 both (a threshold inside the user's mask)
@@ -29,61 +31,155 @@ def _use(mode, x, thr_sigma, mask_val):
 
 
 @numba.njit(cache=True, nogil=True)
-def spectrum_moments(spec, velocity, dv, mode, threshold, sigma_p, mask, p, inside, rho, out):
-    """Moments of one spectrum ``spec`` (nchan,) into column ``p`` of ``out`` (9, npix).
+def tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footprint, rho,
+                 out):
+    """Moments of the spectra tile[:, q], q < nq, into columns p0 + q of ``out`` (9, npix),
+    :func:`_tile_moments` compiled for each ``mode`` (a constant there, so the loops carry
+    no test of it: twice as fast as one version for all modes)."""
+    # the mode as a number literal in each call: numba compiles a version for each value
+    if mode == 0:
+        _tile_moments(tile, nq, p0, velocity, dv, 0, threshold, sigma, mask, footprint, rho, out)
+    elif mode == 1:
+        _tile_moments(tile, nq, p0, velocity, dv, 1, threshold, sigma, mask, footprint, rho, out)
+    elif mode == 2:
+        _tile_moments(tile, nq, p0, velocity, dv, 2, threshold, sigma, mask, footprint, rho, out)
+    else:
+        _tile_moments(tile, nq, p0, velocity, dv, 3, threshold, sigma, mask, footprint, rho, out)
 
-    ``spec`` may be float32 or float64 and strided: every product with the float64 channel
-    widths and velocities is float64, so the sums are the same either way.  ``sigma_p`` is
-    the spectrum's noise, ``mask`` the (nchan, npix) voxel mask (read in modes 2 and 3),
-    ``inside`` False for pixels outside the footprint.
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footprint, rho,
+                  out):
+    """Moments of the spectra tile[:, q], q < nq, into columns p0 + q of ``out`` (9, npix).
+
+    ``tile`` (nchan, TILE) holds the spectra channel by channel as :func:`load_tile` fills
+    it (lanes from nq on are padding), float32 or float64: every product with the float64
+    channel widths and velocities is float64, so the sums are the same either way.
+    ``sigma`` (npix,) is the noise, ``mask`` the (nchan, npix) voxel mask (read in modes 2
+    and 3), ``footprint`` (npix,) False outside the data.  Each pass runs over the channels
+    and, inside, over the spectra, one lane each, as in :mod:`kinemap.maps._noise_kernel`:
+    it vectorises across spectra while every spectrum's sums run through its channels in
+    order.  ``error_model='numpy'``: lanes without signal divide by zero harmlessly (their
+    results are not used).
     """
-    nchan = spec.shape[0]
+    nchan = tile.shape[0]
     nlag = rho.shape[0]
+    r1 = rho[1] if nlag > 1 else 0.0
+    r2 = rho[2] if nlag > 2 else 0.0
+    thr = lane(0.0)
+    thr[:nq] = threshold * sigma[p0:p0 + nq]
+    msk = np.zeros((nchan if mode >= 2 else 1, TILE), np.bool_)  # the mask's tile, padded
+    if mode >= 2:
+        for c in range(nchan):
+            msk[c, :nq] = mask[c, p0:p0 + nq]
+    # Products are formed for every lane and selected afterwards (x if use else 0.0): a
+    # select of a computed value vectorises, a computation inside the select does not.
+    S = lane(0.0)
+    Sv = lane(0.0)
+    n = lane(0.0)
+    peak = lane(-np.inf)
+    ipk = lane(-1.0)
+    for c in range(nchan):
+        dvc = dv[c]  # per-channel values as locals: loaded once, not once per lane
+        vc = velocity[c]
+        cf = float(c)
+        for q in range(TILE):
+            x = tile[c, q]
+            use = _use(mode, x, thr[q], msk[c, q] if mode >= 2 else True)
+            w = x * dvc
+            wv = w * vc
+            S[q] += w if use else 0.0
+            Sv[q] += wv if use else 0.0
+            n[q] += use
+            x = x + 0.0  # float64
+            pq = peak[q]
+            better = use & (x > pq)
+            peak[q] = x if better else pq
+            iq = ipk[q]
+            ipk[q] = cf if better else iq
+    m1 = lane(0.0)
+    for q in range(TILE):
+        m1[q] = Sv[q] / S[q]
+    # M2, and the error of moment 0: weights dv_i on used channels, banded correlation
+    M2 = lane(0.0)
+    v0 = lane(0.0)
+    prev1 = lane(0.0)
+    prev2 = lane(0.0)
+    for c in range(nchan):
+        dvc = dv[c]
+        vc = velocity[c]
+        for q in range(TILE):
+            x = tile[c, q]
+            use = _use(mode, x, thr[q], msk[c, q] if mode >= 2 else True)
+            d = vc - m1[q]
+            t = x * dvc * d * d
+            M2[q] += t if use else 0.0
+            w = dvc if use else 0.0
+            acc = v0[q] + w * w
+            if nlag > 1:
+                acc += 2.0 * r1 * w * prev1[q]
+            if nlag > 2:
+                acc += 2.0 * r2 * w * prev2[q]
+            v0[q] = acc
+            prev2[q] = prev1[q]
+            prev1[q] = w
+    for q in range(TILE):
+        M2[q] /= S[q]
+    # errors of moments 1 and 2
+    v1 = lane(0.0)
+    v2 = lane(0.0)
+    a1 = lane(0.0)
+    a2 = lane(0.0)
+    b1 = lane(0.0)
+    b2 = lane(0.0)
+    for c in range(nchan):
+        dvc = dv[c]
+        vc = velocity[c]
+        for q in range(TILE):
+            x = tile[c, q]
+            use = _use(mode, x, thr[q], msk[c, q] if mode >= 2 else True)
+            d = vc - m1[q]
+            u1 = dvc * d / S[q]
+            u2 = dvc * (d * d - M2[q]) / S[q]
+            w1 = u1 if use else 0.0
+            w2 = u2 if use else 0.0
+            acc1 = v1[q] + w1 * w1
+            acc2 = v2[q] + w2 * w2
+            if nlag > 1:
+                acc1 += 2.0 * r1 * w1 * a1[q]
+                acc2 += 2.0 * r1 * w2 * b1[q]
+            if nlag > 2:
+                acc1 += 2.0 * r2 * w1 * a2[q]
+                acc2 += 2.0 * r2 * w2 * b2[q]
+            v1[q] = acc1
+            v2[q] = acc2
+            a2[q] = a1[q]
+            a1[q] = w1
+            b2[q] = b1[q]
+            b1[q] = w2
+    for q in range(nq):
+        _finish(out, p0 + q, footprint[p0 + q], sigma[p0 + q], S[q], n[q], peak[q], ipk[q],
+                m1[q], M2[q], v0[q], v1[q], v2[q], velocity, dv)
+
+
+@numba.njit(cache=True, nogil=True)
+def _finish(out, p, inside, sigma_p, S, n, peak, ipk, m1, M2, v0, v1, v2, velocity, dv):
+    """Column ``p`` of ``out`` from one spectrum's sums."""
     nan = np.nan
     if not inside:
         for k in range(8):
             out[k, p] = nan
         out[8, p] = 0.0
         return
-    thr = threshold * sigma_p
-    S = 0.0
-    Sv = 0.0
-    n = 0
-    peak = -np.inf
-    ipk = -1
-    for c in range(nchan):
-        x = spec[c]
-        if _use(mode, x, thr, mask[c, p] if mode >= 2 else True):
-            w = x * dv[c]
-            S += w
-            Sv += w * velocity[c]
-            n += 1
-            if x > peak:
-                peak = x
-                ipk = c
     out[8, p] = n
-    if n == 0:
+    if n == 0.0:
         for k in range(8):
             out[k, p] = nan
         return
     out[0, p] = S
     out[6, p] = peak
-    out[7, p] = velocity[ipk]
+    out[7, p] = velocity[int(ipk)]
     s2 = sigma_p * sigma_p
-    # error of moment 0: weights dv_i on used channels, banded correlation
-    v0 = 0.0
-    prev1 = 0.0
-    prev2 = 0.0
-    for c in range(nchan):
-        x = spec[c]
-        w = dv[c] if _use(mode, x, thr, mask[c, p] if mode >= 2 else True) else 0.0
-        v0 += w * w
-        if nlag > 1:
-            v0 += 2.0 * rho[1] * w * prev1
-        if nlag > 2:
-            v0 += 2.0 * rho[2] * w * prev2
-        prev2 = prev1
-        prev1 = w
     out[3, p] = np.sqrt(s2 * v0)
     if not S > 0.0:
         out[1, p] = nan
@@ -91,47 +187,12 @@ def spectrum_moments(spec, velocity, dv, mode, threshold, sigma_p, mask, p, insi
         out[4, p] = nan
         out[5, p] = nan
         return
-    m1 = Sv / S
-    M2 = 0.0
-    for c in range(nchan):
-        x = spec[c]
-        if _use(mode, x, thr, mask[c, p] if mode >= 2 else True):
-            d = velocity[c] - m1
-            M2 += x * dv[c] * d * d
-    M2 /= S
     out[1, p] = m1
-    v1 = 0.0
-    v2 = 0.0
-    a1 = 0.0
-    a2 = 0.0
-    b1 = 0.0
-    b2 = 0.0
-    for c in range(nchan):
-        x = spec[c]
-        if _use(mode, x, thr, mask[c, p] if mode >= 2 else True):
-            d = velocity[c] - m1
-            w1 = dv[c] * d / S
-            w2 = dv[c] * (d * d - M2) / S
-        else:
-            w1 = 0.0
-            w2 = 0.0
-        v1 += w1 * w1
-        v2 += w2 * w2
-        if nlag > 1:
-            v1 += 2.0 * rho[1] * w1 * a1
-            v2 += 2.0 * rho[1] * w2 * b1
-        if nlag > 2:
-            v1 += 2.0 * rho[2] * w1 * a2
-            v2 += 2.0 * rho[2] * w2 * b2
-        a2 = a1
-        a1 = w1
-        b2 = b1
-        b1 = w2
     out[4, p] = np.sqrt(s2 * v1)
-    if n == 1:
+    if n == 1.0:
         # one channel: the velocity is only known to within the channel (top-hat
         # sigma dv/sqrt(12)), and there is no width to measure
-        out[4, p] = dv[ipk] / np.sqrt(12.0)
+        out[4, p] = dv[int(ipk)] / np.sqrt(12.0)
         out[2, p] = nan
         out[5, p] = nan
         return
@@ -152,7 +213,12 @@ def moments_kernel(data, velocity, dv, mode, threshold, sigma, mask, footprint, 
     peak, velocity_at_peak, nchan.  ``mask`` is (nchan, npix) bool (only read in modes 2 and 3),
     ``footprint`` (npix,) bool, ``rho`` the noise correlation at lags 0.. (len <= 3).
     """
-    npix = data.shape[1]
-    for p in numba.prange(npix):
-        spectrum_moments(data[:, p], velocity, dv, mode, threshold, sigma[p], mask, p,
-                         footprint[p], rho, out)
+    nchan, npix = data.shape
+    ntile = (npix + TILE - 1) // TILE
+    for t in numba.prange(ntile):
+        p0 = t * TILE
+        nq = min(npix, p0 + TILE) - p0
+        tile = np.empty((nchan, TILE), dtype=data.dtype)
+        load_tile(data, p0, nq, tile)
+        tile_moments(tile, nq, p0, velocity, dv, mode, threshold, sigma, mask, footprint, rho,
+                     out)
