@@ -15,7 +15,6 @@ parent, so no memory of this script is counted in it.  This is a benchmark, not 
 """
 import argparse
 import os
-import resource
 import subprocess
 import sys
 import tempfile
