@@ -17,7 +17,7 @@ $(STAMP): pyproject.toml
 	$(BIN)/python -m pip install --quiet --upgrade pip
 	$(BIN)/python -m pip install --quiet -e '.[test]'
 	$(BIN)/python -c 'from kinemap.linefit._compile import warm; warm()'
-	$(BIN)/python -m kinemap.maps._warm
+	$(BIN)/python -m kinemap.pipeline.warm
 	touch $(STAMP)
 
 demo: setup
