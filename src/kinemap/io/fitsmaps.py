@@ -18,7 +18,7 @@ from astropy.io import fits
 
 from kinemap._version import __version__
 from kinemap.parallel import store
-from kinemap.parallel.store import derive, release
+from kinemap.parallel.store import derive
 from kinemap.spectral.airvac import fits_air_to_vacuum
 
 __all__ = ["product_header", "write_fits"]
@@ -114,7 +114,7 @@ def write_fits(path, data, header) -> None:
     datasum = _OnesSum()
     with open(path, "wb") as fh:
         fh.write(b"\0" * size)  # the header goes in last, when its sums are known
-        for part in _file_order_parts(arr):
+        for _, part in store.bands(arr, axis=0):  # slabs in the file's (C) order
             raw = np.ascontiguousarray(part, dtype=file_dtype).view(np.uint8).reshape(-1)
             datasum.add(raw)
             fh.write(raw.data)
@@ -132,16 +132,6 @@ def write_fits(path, data, header) -> None:
             raise RuntimeError("FITS header length changed while writing")
         fh.seek(0)
         fh.write(text)
-
-
-def _file_order_parts(arr):
-    """Consecutive slabs ``arr[i0:i1]`` of about ``store.CHUNK_BYTES`` along the first
-    axis, in the file's (C) order; a map on disk gives its pages back after each."""
-    n = arr.shape[0]
-    step = max(1, min(n, store.CHUNK_BYTES // max(1, arr.nbytes // max(n, 1))))
-    for i0 in range(0, n, step):
-        yield arr[i0:i0 + step]
-        release(arr)
 
 
 def _ones_add(a: int, b: int) -> int:

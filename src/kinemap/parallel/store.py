@@ -25,7 +25,7 @@ from contextlib import contextmanager
 
 import numpy as np
 
-__all__ = ["allocate", "on_disk", "scratch_folder", "row_chunks", "release", "derive",
+__all__ = ["allocate", "on_disk", "scratch_folder", "bands", "row_chunks", "release", "derive",
            "any_true", "any_finite", "finite_fraction", "nanmedian", "MAPS_SHARE", "CHUNK_BYTES"]
 
 MAPS_SHARE = 0.25  # maps beyond this share of max_memory go to disk
@@ -46,8 +46,9 @@ def scratch_folder(path):
 
 
 def on_disk(arr) -> bool:
-    """Whether ``arr`` (or the array it is a view of) is a map kept on disk."""
-    return isinstance(arr, np.memmap) or isinstance(getattr(arr, "base", None), mmap.mmap)
+    """Whether ``arr`` is a map kept on disk (a memory map, or a view of one, whose pages
+    :func:`release` can give back)."""
+    return getattr(arr, "_mmap", None) is not None
 
 
 def allocate(outputs: dict, plane: tuple, *, max_memory: int) -> dict:
@@ -86,23 +87,35 @@ def release(arr) -> None:
         m.madvise(mmap.MADV_DONTNEED)
 
 
-def row_chunks(arr, *, chunk_bytes: int | None = None):
-    """Yield ``(rows slice, arr[..., rows, :])`` bands of about ``chunk_bytes`` (default
-    ``CHUNK_BYTES``) covering ``arr`` (last two axes (ny, nx)); a map on disk has its
-    pages released after each band."""
-    ny = arr.shape[-2] if arr.ndim >= 2 else 1
-    per_row = max(1, arr.nbytes // max(ny, 1))
-    rows = max(1, min(ny, (chunk_bytes or CHUNK_BYTES) // per_row))
+def bands(arr, *, axis: int = -2, multiple: int = 1, chunk_bytes: int | None = None):
+    """Yield ``(slice, band)``: consecutive slices of ``arr`` along ``axis`` of about
+    ``chunk_bytes`` (default ``CHUNK_BYTES``), a whole ``multiple`` of elements long
+    except the last.  A map on disk gets its pages back after each band, and when the
+    reader stops early (``any(...)`` does)."""
+    axis = axis % arr.ndim if arr.ndim else 0
+    n = arr.shape[axis] if arr.ndim else 1
+    per_item = max(1, arr.nbytes // max(n, 1))
+    step = multiple * max(1, min(-(-n // multiple), (chunk_bytes or CHUNK_BYTES)
+                                 // (per_item * multiple)))
     disk = on_disk(arr)
+    lead = (slice(None),) * axis
     try:
-        for y0 in range(0, ny, rows):
-            ys = slice(y0, min(ny, y0 + rows))
-            yield ys, (arr[..., ys, :] if arr.ndim >= 2 else arr)
+        for i0 in range(0, n, step):
+            sl = slice(i0, min(n, i0 + step))
+            yield sl, (arr[lead + (sl,)] if arr.ndim else arr)
             if disk:
                 release(arr)
-    finally:  # also when the reader stops early (any(...) does)
+    finally:
         if disk:
             release(arr)
+
+
+def row_chunks(arr, *, chunk_bytes: int | None = None):
+    """Yield ``(rows slice, arr[..., rows, :])`` bands covering a map (last two axes
+    (ny, nx)); :func:`bands` along the rows."""
+    if arr.ndim < 2:
+        return bands(arr, axis=0, chunk_bytes=chunk_bytes)
+    return bands(arr, axis=-2, chunk_bytes=chunk_bytes)
 
 
 def derive(arr, fn, dtype) -> np.ndarray:

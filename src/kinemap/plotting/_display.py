@@ -17,7 +17,6 @@ from dataclasses import replace
 import numpy as np
 
 from kinemap.parallel import store
-from kinemap.parallel.store import release
 
 __all__ = ["display_map", "MAX_SIDE"]
 
@@ -34,10 +33,8 @@ def display_map(data, meta, kind: str, *, max_side: int = MAX_SIDE):
         return data, meta
     my, mx = -(-ny // f), -(-nx // f)
     out = np.empty((my, mx), dtype=np.float64 if kind not in _CATEGORIES else data.dtype)
-    rows = f * max(1, store.CHUNK_BYTES // max(1, f * nx * data.dtype.itemsize))
-    for y0 in range(0, ny, rows):
-        band = data[y0:y0 + rows]
-        i0 = y0 // f
+    for ys, band in store.bands(data, axis=0, multiple=f):
+        i0 = ys.start // f
         if kind in _CATEGORIES:
             small = band[::f, ::f]
         else:
@@ -48,6 +45,5 @@ def display_map(data, meta, kind: str, *, max_side: int = MAX_SIDE):
                 warnings.simplefilter("ignore", RuntimeWarning)  # blocks with no value: NaN
                 small = np.nanmean(padded.reshape(-1, f, mx, f), axis=(1, 3))
         out[i0:i0 + small.shape[0]] = small
-        release(data)  # after the band's last use: reading it maps its pages again
     wcs = meta.wcs.slice((slice(None, None, f), slice(None, None, f)))
     return out, replace(meta, wcs=wcs)
