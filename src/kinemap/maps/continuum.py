@@ -9,11 +9,13 @@ against it), so this stage runs before the noise and the masks.
 Line-free channels (one choice per cube, then per spectrum):
 
 1. every channel, or only those inside the ``line_free`` velocity ranges when given;
-2. minus a window of +-``line_window`` km/s around every catalogue line whose rest value
-   falls in the band (rest values in the cube's medium: air wavelengths on AWAV axes,
-   vacuum on WAVE, frequencies on frequency axes), shifted by the source's velocity, which
-   is read off the peak of the cube's mean spectrum (a velocity axis without a rest value
-   has one line, at that peak);
+2. minus a window around every catalogue line whose rest value falls in the band (rest
+   values in the cube's medium: air wavelengths on AWAV axes, vacuum on WAVE, frequencies
+   on frequency axes), shifted by the source's velocity, which is read off the peak of the
+   cube's mean spectrum (a velocity axis without a rest value has one line, at that peak).
+   The window reaches ``line_window`` km/s beyond the emission: the run of mean-spectrum
+   channels around the peak that stand above its baseline, so the whole rotation range of
+   a disk is masked, not just the velocity of its brighter horn;
 3. per spectrum, iterative sigma-clipping (``clip`` sigma, both sides) of what is left
    against the fitted polynomial, which removes lines the catalogue does not know and
    residual wings.
@@ -129,36 +131,62 @@ def _mean_spectrum(cube, nrows: int = 64) -> np.ndarray:
         return acc / cnt
 
 
-def _peak_velocity(cube) -> float | None:
-    """Velocity of the brightest channel of the mean spectrum above a clipped straight
-    line (so a sloped continuum does not win over the line)."""
+EMISSION_SIGMA = 3.0     # mean-spectrum channels this many noise sigma above its baseline
+EMISSION_FRACTION = 0.02  # ... and above this fraction of the peak are emission
+
+
+def _emission(cube) -> tuple[float, float, float] | None:
+    """(peak, low, high) velocities (km/s) of the line emission in the cube's mean spectrum.
+
+    The baseline is a straight line fitted to the channels below it plus twice the noise
+    (lines are positive: only the high side is clipped), the noise being the scatter of
+    channel-to-channel differences, which a broad line barely raises (a scatter measured
+    about the baseline would, and the clipping would then stall).  The peak is the brightest
+    channel above the baseline; low and high bound the run of channels around it that stand
+    EMISSION_SIGMA noise and EMISSION_FRACTION of the peak above the baseline.  A rotating
+    disk spreads one line over its whole rotation range, so a window around the peak alone
+    would leave the other half of its emission among the "line-free" channels.
+    """
     spec = _mean_spectrum(cube)
     ok = np.isfinite(spec)
     if ok.sum() < 4:
         return None
     x = np.arange(spec.size, dtype=float)
+    noise = 1.4826 * np.median(np.abs(np.diff(spec[ok]))) / np.sqrt(2.0)
     keep = ok.copy()
-    for _ in range(5):
+    for _ in range(20):
         coef = np.polyfit(x[keep], spec[keep], 1)
-        res = spec - np.polyval(coef, x)
-        s = np.std(res[keep])
-        new = ok & (res < 2.0 * s)  # lines are positive: clip the high side only
+        new = ok & (spec - np.polyval(coef, x) < 2.0 * noise)
         if new.sum() < 3 or np.array_equal(new, keep):
             break
         keep = new
     res = np.where(ok, spec - np.polyval(coef, x), -np.inf)
-    return float(cube.velocity[int(np.argmax(res))])
+    peak = int(np.argmax(res))
+    above = res > max(EMISSION_SIGMA * noise, EMISSION_FRACTION * res[peak])
+    lo = hi = peak
+    while lo > 0 and above[lo - 1]:
+        lo -= 1
+    while hi < spec.size - 1 and above[hi + 1]:
+        hi += 1
+    v = cube.velocity
+    return float(v[peak]), float(min(v[lo], v[hi])), float(max(v[lo], v[hi]))
 
 
 def _free_channels(cube, *, line_free, line_window, catalogue):
-    """(boolean line-free channels, {line: masked centre km/s}, velocity shift km/s)."""
+    """(boolean line-free channels, {line: masked centre km/s}, velocity shift km/s,
+    (low, high) extent of the emission about each centre km/s).
+
+    Around every line the window reaches ``line_window`` beyond the emission seen in the
+    mean spectrum (the same velocity extent about each line as about the brightest)."""
     v = cube.velocity
     auto = line_free is None or (isinstance(line_free, str) and line_free.lower() == "auto")
     free = np.ones(v.size, bool) if auto else line_free_channels(v, line_free)
     lines = line_positions(cube, catalogue=catalogue, margin=line_window)
-    peak = _peak_velocity(cube)
-    shift = 0.0
-    if peak is not None:
+    emission = _emission(cube)
+    shift, extent = 0.0, (0.0, 0.0)
+    if emission is not None:
+        peak, lo, hi = emission
+        extent = (lo - peak, hi - peak)
         if lines:
             nearest = min(lines.values(), key=lambda lv: abs(lv - peak))
             # the peak belongs to a known line only if it lies within that line's window
@@ -167,8 +195,8 @@ def _free_channels(cube, *, line_free, line_window, catalogue):
             lines = {"peak of the mean spectrum": peak}
     centres = {name: lv + shift for name, lv in lines.items()}
     for c in centres.values():
-        free &= np.abs(v - c) > line_window
-    return free, centres, shift
+        free &= (v < c + extent[0] - line_window) | (v > c + extent[1] + line_window)
+    return free, centres, shift, extent
 
 
 def _design(nchan: int, degree: int) -> np.ndarray:
@@ -224,6 +252,9 @@ class ContinuumResult(StageResult):
         The line-free channels before sigma-clipping.
     lines : dict
         The masked line centres (km/s) by name.
+    emission_extent : tuple (low, high)
+        Velocity extent (km/s) of the emission about each centre, from the mean spectrum;
+        the masked window is [centre + low - line_window, centre + high + line_window].
     reference : tuple (str, float)
         Where ``level`` is evaluated: (line name, velocity km/s).
     fraction_significant : float
@@ -246,6 +277,7 @@ class ContinuumResult(StageResult):
     free_channels: np.ndarray | None = None
     nchan_free: np.ndarray | None = None
     lines: dict = field(default_factory=dict)
+    emission_extent: tuple = (0.0, 0.0)
     reference: tuple = ("", float("nan"))
     fraction_significant: float = float("nan")
     write_cube: bool = False
@@ -285,6 +317,7 @@ class ContinuumResult(StageResult):
         return {"requested": self.requested, "method": self.method, "message": self.message,
                 "reference_line": name, "reference_velocity_kms": float(vref),
                 "masked_lines": {k: round(float(v), 3) for k, v in self.lines.items()},
+                "emission_extent_kms": [round(float(e), 3) for e in self.emission_extent],
                 "free_channels": int(np.sum(self.free_channels)) if self.free_channels is not None else 0,
                 "fraction_significant": float(self.fraction_significant),
                 "median_level": float(np.nanmedian(self.level[ok])) if ok.any() else None}
@@ -347,14 +380,17 @@ def subtract_continuum(cube, *, method: str = "auto", line=None, line_free="auto
         raise KinemapError(f"'line_window' must be >= 0 km/s, got {line_window!r}")
     if not clip > 0:
         raise KinemapError(f"'clip' must be a positive number of sigma, got {clip!r}")
-    free, centres, _ = _free_channels(cube, line_free=line_free, line_window=window,
-                                      catalogue=catalogue)
+    free, centres, _, extent = _free_channels(cube, line_free=line_free, line_window=window,
+                                              catalogue=catalogue)
     name, vref, ref = _reference(cube, centres, line)
     common = dict(cube=cube, requested=requested, meta=cube.meta, free_channels=free,
-                  lines=centres, reference=(name, vref), write_cube=bool(write_cube))
+                  lines=centres, emission_extent=extent, reference=(name, vref),
+                  write_cube=bool(write_cube))
     if free.sum() < degree + 1 + MIN_EXTRA:
-        text = (f"only {int(free.sum())} channels lie outside the +-{window:g} km/s windows of "
-                f"the lines ({', '.join(centres) or 'none'})")
+        spans = "; ".join(f"{n}: {c + extent[0]:.0f} to {c + extent[1]:.0f} km/s"
+                          for n, c in centres.items())
+        text = (f"only {int(free.sum())} channels lie more than {window:g} km/s beyond the "
+                f"emission of the lines ({spans or 'none'})")
         if requested == "auto":
             return ContinuumResult(method="none", message=f"continuum: none subtracted: {text}, "
                                    "too few to measure a continuum on", **common)
