@@ -12,8 +12,9 @@ Two methods:
   islands whose sky footprint is smaller than ``min_pixels`` or whose spectral extent is
   smaller than ``min_channels``.
 
-The smooth method works on the whole cube in memory as float32 (islands are global);
-the threshold method is computed block by block by the stages that use it.
+The smooth method smooths and thresholds block by block and keeps a few bytes per voxel
+of the whole cube (islands are global: :mod:`kinemap.maps._smooth_mask`); the threshold
+method is computed block by block by the stages that use it.
 A mask is True where a voxel counts as signal; NaN voxels are never signal.
 
 The user's own mask (``file``: a 2D or 3D FITS image or boolean array, True / non-zero =
@@ -28,7 +29,9 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from kinemap.errors import KinemapError
-from kinemap.spectral.response import noise_correlation, variance_of_sum
+from kinemap.maps._smooth_mask import BYTES_PER_VOXEL, noise_factor, smooth_mask
+from kinemap.parallel.blocks import DEFAULT_MAX_MEMORY
+from kinemap.spectral.response import noise_correlation
 
 __all__ = ["SignalMask", "make_mask", "as_mask", "MASK_METHODS", "MASK_MODES"]
 
@@ -104,31 +107,6 @@ class SignalMask:
         return out
 
 
-def _smoothing_noise_factor(filled, finite, sig, nbox, rho, nplanes=24):
-    """How much the smoothing lowers the noise.
-
-    Spatial part: measured, because radio noise is correlated on the beam scale.  The
-    differences of neighbouring channels hold the noise with its spatial correlation but
-    not the (spectrally smooth) emission, so the MAD of a few smoothed difference planes
-    over the MAD of the raw ones is the spatial factor.  Spectral part: exact for a boxcar
-    of ``nbox`` channels given the channel correlation ``rho``.
-    """
-    from scipy import ndimage
-
-    nchan = filled.shape[0]
-    idx = np.unique(np.linspace(0, nchan - 2, min(nplanes, nchan - 1)).astype(int))
-    diff = (filled[idx + 1] - filled[idx]) * (finite[idx + 1] & finite[idx])
-    f_space = 1.0
-    if sig > 0:
-        smd = ndimage.gaussian_filter(diff, sigma=(0, sig, sig), mode="constant")
-        raw_mad = np.median(np.abs(diff[diff != 0])) if np.any(diff != 0) else 0.0
-        if raw_mad > 0:
-            f_space = float(np.median(np.abs(smd[diff != 0])) / raw_mad)
-    w = np.full((nbox, 1), 1.0 / nbox)
-    f_spec = float(np.sqrt(variance_of_sum(w, 1.0, rho))[0]) if nbox > 1 else 1.0
-    return f_space * f_spec
-
-
 def as_mask(mask, cube) -> SignalMask | None:
     """A :class:`SignalMask` from what a caller passes as ``mask``: None, a SignalMask,
     a boolean array of shape (nchan, ny, nx) (voxels) or (ny, nx) (whole spectra), True
@@ -182,7 +160,8 @@ def make_mask(cube, *, noise=None, method: str = "smooth", threshold: float | No
               grow_threshold: float = 2.0, smooth_beams: float = 1.5,
               smooth_pixels: float = 3.0, smooth_channels: int = 3, min_pixels: int | None = None,
               min_channels: int = 2, channel_response: str = "tophat",
-              max_memory: int | None = None, file=None, mode: str = "and") -> SignalMask:
+              max_memory: int | None = None, file=None, mode: str = "and",
+              progress: bool = False) -> SignalMask:
     """Build a :class:`SignalMask` for ``cube`` with noise map ``noise``.
 
     Parameters
@@ -210,8 +189,9 @@ def make_mask(cube, *, noise=None, method: str = "smooth", threshold: float | No
     channel_response : str
         Sets the channel noise correlation used for the spectral smoothing factor.
     max_memory : int, optional
-        Bytes the run may use; 'smooth' needs about three float32 copies of the cube and
-        refuses with a clear message when they do not fit.
+        Bytes the run may use; 'smooth' keeps 7 bytes per voxel of the whole cube (flags,
+        island labels, the mask) and refuses with a clear message when they do not fit;
+        it smooths the cube in blocks of rows in what is left.
     file : str, path-like or boolean array, optional
         The user's mask: a 2D or 3D FITS image (non-zero = keep) on the cube's grid (a
         larger mask on the same pixels is cut to the cube), or a boolean array (nchan, ny,
@@ -219,6 +199,8 @@ def make_mask(cube, *, noise=None, method: str = "smooth", threshold: float | No
     mode : {'and', 'replace'}
         'and': a voxel counts when the signal mask and ``file`` both keep it; 'replace':
         ``file`` alone decides (the signal-mask method is not run).
+    progress : bool
+        'smooth': a progress bar over the rows.
     """
     md = str(mode).strip().lower()
     if md not in MASK_MODES:
@@ -226,7 +208,7 @@ def make_mask(cube, *, noise=None, method: str = "smooth", threshold: float | No
     if file is None:
         return _signal_mask(cube, noise, method, threshold, grow_threshold, smooth_beams,
                             smooth_pixels, smooth_channels, min_pixels, min_channels,
-                            channel_response, max_memory)
+                            channel_response, max_memory, progress)
     keep = _user_mask(file, cube)  # read (or refused) before the slow smooth mask is made
     name = (os.path.basename(os.fspath(file)) if isinstance(file, (str, os.PathLike))
             else "array")
@@ -234,12 +216,13 @@ def make_mask(cube, *, noise=None, method: str = "smooth", threshold: float | No
         return _with_user_mask(SignalMask("none"), keep, name, md)
     signal = _signal_mask(cube, noise, method, threshold, grow_threshold, smooth_beams,
                           smooth_pixels, smooth_channels, min_pixels, min_channels,
-                          channel_response, max_memory)
+                          channel_response, max_memory, progress)
     return _with_user_mask(signal, keep, name, md)
 
 
 def _signal_mask(cube, noise, method, threshold, grow_threshold, smooth_beams, smooth_pixels,
-                 smooth_channels, min_pixels, min_channels, channel_response, max_memory):
+                 smooth_channels, min_pixels, min_channels, channel_response, max_memory,
+                 progress=False):
     """The signal mask of :func:`make_mask` (its parameters)."""
     m = str(method).strip().lower()
     if m not in MASK_METHODS:
@@ -280,43 +263,24 @@ def _signal_mask(cube, noise, method, threshold, grow_threshold, smooth_beams, s
         from kinemap.maps.noise import estimate_noise
 
         noise = estimate_noise(cube, channel_response=channel_response)
-    need = 3 * 4 * int(np.prod(cube.shape))
+    need = BYTES_PER_VOXEL * int(np.prod(cube.shape))
     if max_memory is not None and need > max_memory:
         raise KinemapError(
-            f"the smooth mask holds the whole cube in memory ({need / 1e9:.1f} GB) and "
-            f"--max-memory is {max_memory / 1e9:.1f} GB; use --mask threshold or raise --max-memory")
-    from scipy import ndimage  # a tenth of a second to import: only for this method
-
-    data = np.asarray(cube.data, dtype=np.float32)
-    finite = np.isfinite(data)
-    filled = np.where(finite, data, 0.0).astype(np.float32)
+            f"the smooth mask keeps {BYTES_PER_VOXEL} bytes per voxel of the whole cube "
+            f"({need / 1e9:.1f} GB) and --max-memory is {max_memory / 1e9:.1f} GB; use "
+            "--mask threshold or raise --max-memory")
     sig = fwhm_pix / 2.354820045
-    sm = ndimage.gaussian_filter(filled, sigma=(0, sig, sig), mode="constant") if sig > 0 else filled
-    if smooth_channels > 1:
-        sm = ndimage.uniform_filter1d(sm, size=int(smooth_channels), axis=0, mode="constant")
-    factor = _smoothing_noise_factor(filled, finite, sig, int(smooth_channels),
-                                     noise_correlation(channel_response))
+    factor = noise_factor(cube, sig, int(smooth_channels), noise_correlation(channel_response))
     # Islands grow through blank spectra where the smoothed emission reaches them (the
     # noise there is the median noise), so blanks scattered over a source do not break it
     # into islands too small to keep; blank voxels are never signal in the end.
     sigma = noise.sigma
     if np.isfinite(sigma).any():
         sigma = np.where(np.isfinite(sigma), sigma, np.nanmedian(sigma))
-    with np.errstate(invalid="ignore", divide="ignore"):
-        snr = sm / (sigma[None] * factor)
-    seeds = snr > t
-    grown = ndimage.binary_propagation(seeds, mask=snr > grow_threshold)
-    labels, nlab = ndimage.label(grown)
-    if nlab:
-        objs = ndimage.find_objects(labels)
-        keep = np.zeros(nlab + 1, bool)
-        for k, sl in enumerate(objs, start=1):
-            sub = labels[sl] == k
-            npix = int(sub.any(axis=0).sum())
-            nch = int(sub.any(axis=(1, 2)).sum())
-            keep[k] = npix >= min_pixels and nch >= min_channels
-        grown = keep[labels]
-    grown &= finite
+    grown = smooth_mask(cube, scale=sigma * factor, sig=sig, nbox=int(smooth_channels),
+                        seed=t, grow=grow_threshold, min_pixels=int(min_pixels),
+                        min_channels=int(min_channels),
+                        max_memory=max_memory or DEFAULT_MAX_MEMORY, progress=progress)
     settings = {"threshold": t, "grow_threshold": grow_threshold, "smooth_fwhm_pixels": fwhm_pix,
                 "smooth_channels": int(smooth_channels), "min_pixels": int(min_pixels),
                 "min_channels": int(min_channels), "smoothed_noise_factor": factor}
