@@ -78,9 +78,9 @@ class FileSource:
         """Rows ``ys`` (relative to the subset) as a C-contiguous (nchan, rows, nx) array.
 
         ``dtype=None`` gives float32 for 4-byte data and float64 otherwise, native order.
-        ``swap=False`` lets unscaled float32 data of the other byte order come back as it
-        is in the file (dtype '>f4' on a little-endian machine: the same values to numpy),
-        for kernels that swap the bytes themselves while they load the data.
+        ``swap=False`` lets data read as it is stored (unscaled, of the dtype asked for)
+        come back in the file's byte order (dtype '>f4' on a little-endian machine: the
+        same values to numpy), for kernels that swap the bytes themselves while they load.
         """
         src = np.dtype(self.dtype)
         scaled = self.scaled
@@ -107,7 +107,7 @@ class FileSource:
                         if got != view.nbytes:
                             _short_read(self.path)
                     if src.byteorder not in ("=", "|") and src.byteorder != _NATIVE:
-                        if not swap and dtype is None:
+                        if not swap:
                             return out.view(out.dtype.newbyteorder())
                         out.view(out.dtype.newbyteorder()).byteswap(inplace=True)
                     return out

@@ -40,18 +40,21 @@ def block_rows(shape, *, max_memory: int = DEFAULT_MAX_MEMORY, factor: float = 6
     return int(max(1, min(ny, max_memory // max(per_row, 1))))
 
 
-def read_rows(cube, ys: slice, *, dtype=None, swap: bool = True) -> np.ndarray:
-    """Rows ``ys`` of ``cube`` as a C-contiguous (nchan, rows, nx) array.
+def read_rows(cube, ys: slice, *, dtype=np.float32, swap: bool = True) -> np.ndarray:
+    """Rows ``ys`` of ``cube`` as a C-contiguous (nchan, rows, nx) array, float32 unless
+    ``dtype`` says otherwise, whatever the file stores.
+
+    The kernels load float32 and accumulate in float64, so a float64 or scaled-integer
+    cube costs no precision that its noise would not hide, and every kernel has one
+    compiled version (a float64 block made numba compile the map kernels again, about 35 s,
+    in a user's first run on such a cube).
 
     ``swap=False``: float32 data read from a file may keep the file's byte order (see
     :meth:`kinemap.io._source.FileSource.read`); the caller's kernel swaps the bytes.
     """
     if cube.source is not None:
         return cube.source.read(ys, dtype=dtype, swap=swap)
-    raw = cube.data[:, ys, :]
-    single = raw.dtype.kind == "f" and raw.dtype.itemsize == 4  # any byte order
-    dt = dtype or (np.float32 if single else np.float64)
-    return np.ascontiguousarray(np.asarray(raw), dtype=dt)
+    return np.ascontiguousarray(np.asarray(cube.data[:, ys, :]), dtype=dtype)
 
 
 def task_rows(shape, *, max_memory: int, factor: float, client=None, outputs=None) -> int:
@@ -80,7 +83,7 @@ def _run_block(source, data, ys, func, args, kwargs, threads):
         import numba
 
         numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
-    block = source.read(ys) if source is not None else data
+    block = source.read(ys, dtype=np.float32) if source is not None else data
     return ys, func(block, **args, **kwargs)
 
 

@@ -3,8 +3,10 @@
 The fused noise-and-moments kernel compiles one version per noise and mask mode (about
 20 s in all) and the continuum kernel a few seconds more; numba caches them
 (:mod:`kinemap._kernel_cache`).  :func:`warm` runs the default ``maps --method moments``
-stages, with the mask and noise modes a run can pick, on a tiny invented cube read from a
-FITS file, so the kernels compile with the argument types real runs pass.
+stages, with the mask and noise modes a run can pick, on tiny invented cubes read from
+FITS files (one with a continuum under its line), so the kernels compile with the argument
+types real runs pass.  Blocks reach the kernels as float32 whatever the file stores
+(:func:`kinemap.parallel.blocks.read_rows`), so no other data type needs compiling.
 """
 from __future__ import annotations
 
@@ -22,7 +24,7 @@ def warm() -> None:
     from kinemap.pipeline.runner import run
 
     t0 = time.perf_counter()
-    print("kinemap: compiling the map kernels (once; about 30 s unless cached)", file=sys.stderr, flush=True)
+    print("kinemap: compiling the map kernels (once; about a minute unless cached)", file=sys.stderr, flush=True)
     h = fits.Header()
     h["CTYPE1"], h["CRVAL1"], h["CDELT1"], h["CRPIX1"] = "RA---SIN", 150.0, -2e-3, 4.0
     h["CTYPE2"], h["CRVAL2"], h["CDELT2"], h["CRPIX2"] = "DEC--SIN", 20.0, 2e-3, 4.0
@@ -42,6 +44,15 @@ def warm() -> None:
                      "mask": {"method": mask},
                      "noise": {"line_free": line_free}},
                     out=Path(tmp) / f"o{i}{len(str(line_free))}", plots=False, progress=False)
+        # a band wide enough for line-free channels and a continuum under the line: the
+        # continuum kernel, and the moments of the subtracted cube (native byte order)
+        h["CRVAL3"], h["CDELT3"] = -960.0, 40.0
+        wide = Path(tmp) / "continuum.fits"
+        fits.PrimaryHDU((data + 3.0).astype(np.float32), header=h).writeto(wide)
+        for mask in ("none", "threshold", "smooth"):
+            run({"input": {"cube": str(wide)}, "maps": {"method": "moments"},
+                 "mask": {"method": mask}},
+                out=Path(tmp) / f"c-{mask}", plots=False, progress=False)
     print(f"kinemap: map kernels ready and cached ({time.perf_counter() - t0:.0f} s)",
           file=sys.stderr, flush=True)
 
