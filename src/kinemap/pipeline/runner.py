@@ -97,7 +97,8 @@ def prepare(cfg: dict, state: RunState | None = None) -> RunState:
     state.noise = _timed(state, "noise", estimate_noise, state.cube, **ad.noise_kwargs(cfg),
                          **state.blocks)
     state.mask = _timed(state, "mask", make_mask, state.cube, noise=state.noise,
-                        **ad.mask_kwargs(cfg), max_memory=state.blocks["max_memory"])
+                        **ad.mask_kwargs(cfg), max_memory=state.blocks["max_memory"],
+                        progress=state.blocks["progress"])
     return state
 
 
