@@ -355,7 +355,8 @@ def subtract_continuum(cube, *, method: str = "auto", line=None, line_free="auto
         Only these channels may serve as line-free (the catalogue windows and clipping
         still apply); 'auto' or None: every channel outside the windows.
     line_window : float or Quantity (km/s)
-        Half-width of the window masked around every catalogue line in the band.
+        How far beyond the emission seen in the mean spectrum the window masked around
+        every catalogue line in the band reaches.
     clip : float
         Sigma-clipping threshold (both sides) of the per-spectrum fit.
     catalogue : str, optional

@@ -219,8 +219,9 @@ SCHEMA: dict[str, dict[str, Option]] = {
                               "channels and subtracted before noise and masks; auto: only "
                               "when a significant continuum is there"),
         "line_window": Option((int, float, str), 200.0, metavar="VELOCITY", unit="km/s",
-                              help="half-width of the window masked around every catalogue "
-                                   "line in the band for the continuum fit"),
+                              help="how far beyond a line's emission (seen in the mean "
+                                   "spectrum) the window masked around every catalogue line "
+                                   "in the band for the continuum fit reaches"),
         "clip": Option((int, float), 3.0, cli=False,
                        help="sigma-clipping threshold of the per-spectrum continuum fit"),
         "write_continuum": Option((bool,), False,
