@@ -181,7 +181,7 @@ def plot_map(data, meta, *, title: str, unit, kind: str = "other", center: float
     world_axes(ax, meta.wcs)
     _set_title(ax, title)
     key = _layout_key(figsize, meta, data)
-    _layout(fig, ax, cb, key)
+    _layout(fig, ax, cb, key, meta)
     reuse_frame(ax, key)
     return fig
 
@@ -241,11 +241,13 @@ def save_map(path, data, meta, *, title: str, unit, kind: str = "other",
     fig, ax, im, cb = kept[key]
     vmin, vmax = robust_limits(vals, kind, center)
     im.set_data(data)
-    im.set_cmap(_cmap(kind))
-    im.set_clim(vmin, vmax)
+    with im.callbacks.blocked():  # the colour bar redraws once for both changes
+        im.set_cmap(_cmap(kind))
+        im.set_clim(vmin, vmax)
+    cb.update_normal(im)
     cb.set_label(_unit_label(unit, kind))
     _set_title(ax, title)
-    _layout(fig, ax, cb, key[0])
+    _layout(fig, ax, cb, key[0], meta)
     save(fig, path)
 
 
@@ -260,11 +262,11 @@ def world_axes(ax, wcs, *, ticks: int = 4, ylabel: bool = True):
     lat.set_ticklabel(exclude_overlapping=True)
 
 
-# Layout of the figures drawn so far: key -> (figure size, boxes of the map and colour-bar
-# axes in inches from the bottom left, how far the colour bar's labels reach to the right
-# and the title up, in inches).  tight_layout has to draw the WCS axes to measure their
-# tick labels, which cost as much as drawing the PNG itself; maps of one cube share those
-# labels, so the first figure measures and the others reuse its boxes.
+# Layouts measured so far: key -> (figure size, boxes of the map and colour-bar axes in
+# inches from the bottom left, how far the colour bar's labels reach to the right and the
+# title up, in inches).  tight_layout has to draw the WCS axes to measure their tick labels,
+# which cost as much as drawing the PNG itself; maps of one cube share those labels, so a
+# layout is measured once and every map of it reuses the boxes.
 _TEMPLATES: dict = {}
 
 
@@ -281,31 +283,46 @@ def _reach(fig, ax, cb, renderer):
             ax.title.get_window_extent(renderer).y1 / fig.dpi)
 
 
-def _layout(fig, ax, cb, key):
-    """tight_layout on the first figure of ``key``; the same axes boxes for the next ones.
+def _layout(fig, ax, cb, key, meta):
+    """Place the map and its colour bar in the boxes of the layout ``key``.
 
-    Only the colour bar's tick labels and the title differ between maps of one cube, and
-    measuring them is cheap (plain text).  The map and its colour bar keep the first
-    figure's boxes, in inches from the bottom left, and the figure grows or shrinks to the
-    right and at the top by how much further its colour-bar labels and title reach, so its
-    margins are the ones tight_layout gave: every map of a cube is drawn at one scale and
-    place, and its frame is one picture (_frame.py).
+    The boxes are those tight_layout gives a standard map of the layout (a map of the same
+    shape and frame with a one-line title and a colour bar from 0 to 1 in km/s), measured
+    once per layout (:func:`_measure`).  Only the colour bar's tick labels and the title
+    differ between maps of one cube, and measuring them is cheap (plain text): each map
+    keeps the boxes, in inches from the bottom left, and its figure grows or shrinks to the
+    right and at the top by how much further its colour-bar labels and title reach than
+    the standard map's, so its margins are the ones tight_layout gave: every map of a cube
+    is drawn at one scale and place, its frame is one picture (_frame.py), and its PNG is
+    the same whatever was drawn before it (in this process or another).
     """
-    renderer = fig.canvas.get_renderer()
     template = _TEMPLATES.get(key)
     if template is None:
-        fig.tight_layout()
-        size = tuple(fig.get_size_inches())
-        boxes = [a.get_position(original=True).bounds for a in (ax, cb.ax)]
-        boxes = [(x0 * size[0], y0 * size[1], w * size[0], h * size[1])
-                 for x0, y0, w, h in boxes]
-        _TEMPLATES[key] = (size, boxes, _reach(fig, ax, cb, renderer))
-        return
+        template = _TEMPLATES[key] = _measure(key, meta)
     size, boxes, reach = template
     _place(fig, (ax, cb.ax), boxes, size)
-    now = _reach(fig, ax, cb, renderer)
+    now = _reach(fig, ax, cb, fig.canvas.get_renderer())
     if max(abs(a - b) for a, b in zip(now, reach)) > 1e-6:
         _place(fig, (ax, cb.ax), boxes, [s + a - b for s, a, b in zip(size, now, reach)])
+
+
+def _measure(key, meta):
+    """The layout of the standard map of ``key`` (see :func:`_layout`)."""
+    figsize, _, shape, _ = key
+    fig = Figure(figsize=figsize)
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot(111, projection=meta.wcs)
+    im = show_nearest(ax, np.zeros(shape), origin="lower", cmap=_cmap("other"), vmin=0.0,
+                      vmax=1.0)
+    cb = fig.colorbar(im, ax=ax)
+    cb.set_label(_unit_label(u.km / u.s, "velocity"))
+    world_axes(ax, meta.wcs)
+    _set_title(ax, "map")
+    fig.tight_layout()
+    size = tuple(fig.get_size_inches())
+    boxes = [a.get_position(original=True).bounds for a in (ax, cb.ax)]
+    boxes = [(x0 * size[0], y0 * size[1], w * size[0], h * size[1]) for x0, y0, w, h in boxes]
+    return size, boxes, _reach(fig, ax, cb, fig.canvas.get_renderer())
 
 
 def _place(fig, axes, boxes, size):
