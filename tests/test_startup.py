@@ -63,8 +63,10 @@ def test_moments_run_without_plots_skips_unused_packages(tmp_path):
     assert "numba" in modules
 
 
-def test_moments_run_with_plots_imports_matplotlib(tmp_path):
-    # the counterpart: the probe does see a package a run uses
+def test_moments_run_with_plots_draws_its_maps_in_other_processes(tmp_path):
+    """With PNGs: where the run forks drawing processes (Linux, more than one core), they
+    import matplotlib and the run's own process does not; elsewhere the run imports it
+    (the counterpart: the probe does see a package a run uses)."""
     cube = gaussian_cube(32, 6, 5, centre_chan=15.0, sigma_chan=3.0, noise=0.05)
     path = write_cube(tmp_path / "c.fits", cube, make_header("VRAD", nchan=32, ny=6, nx=5,
                                                              crval=0.0, cdelt=2000.0,
@@ -72,4 +74,6 @@ def test_moments_run_with_plots_imports_matplotlib(tmp_path):
     code, modules = _loaded(["maps", path, "--method", "moments", "--no-mask",
                              "--no-progress", "--out", str(tmp_path / "out")])
     assert code == 0
-    assert "matplotlib" in modules
+    assert (tmp_path / "out" / "moment1.png").exists()
+    forks = sys.platform.startswith("linux") and (os.cpu_count() or 1) > 1
+    assert ("matplotlib" in modules) is not forks

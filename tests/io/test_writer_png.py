@@ -1,5 +1,8 @@
-"""PNGs drawn on worker threads while FITS files are written: same files, warnings kept."""
+"""PNGs drawn in worker processes or on a thread while FITS files are written: the same
+files, warnings kept."""
 import hashlib
+import os
+import sys
 import warnings
 
 import numpy as np
@@ -8,7 +11,9 @@ import pytest
 import kinemap
 from conftest import gaussian_cube, make_header, write_cube
 from kinemap.io.products import Product
-from kinemap.io.writer import _map_png, _PngWriter
+from kinemap.io import writer
+from kinemap.io.writer import _PngWriter
+from kinemap.plotting.maps import save_map
 
 
 def _products(tmp_path):
@@ -28,18 +33,31 @@ def _digest(path):
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def test_threaded_pngs_equal_sequential_ones(tmp_path):
-    meta, prods = _products(tmp_path)
-    (tmp_path / "seq").mkdir()
-    (tmp_path / "thr").mkdir()
-    for p in prods:
-        _map_png(np.asarray(p.data), meta, p, None, tmp_path / "seq" / f"{p.key}.png")
-    with _PngWriter(True) as png:
+def _draw_all(folder, meta, prods, processes):
+    folder.mkdir()
+    with writer.drawing_processes(processes), _PngWriter(True) as png:
+        if processes and os.cpu_count() > 1 and sys.platform.startswith("linux"):
+            assert writer._DRAWING is not None
         for p in prods:
-            png.submit(_map_png, np.asarray(p.data), meta, p, None,
-                       tmp_path / "thr" / f"{p.key}.png")
+            png.submit_map(np.asarray(p.data), meta, p, None, folder / f"{p.key}.png")
+    assert writer._DRAWING is None  # the processes end with their block
+
+
+def test_pngs_are_the_same_wherever_and_in_whatever_order_drawn(tmp_path):
+    """Maps sent to the drawing processes, drawn on the writer's thread, and drawn one at
+    a time in this process last first: the same files (a map's layout does not depend on
+    the maps drawn before it, nor on the process)."""
+    meta, prods = _products(tmp_path)
+    _draw_all(tmp_path / "procs", meta, prods, True)
+    _draw_all(tmp_path / "thread", meta, prods, False)
+    (tmp_path / "seq").mkdir()
+    for p in reversed(prods):
+        save_map(tmp_path / "seq" / f"{p.key}.png", np.asarray(p.data), meta,
+                 title=p.description, unit=p.unit, kind=p.kind)
     for p in prods:
-        assert _digest(tmp_path / "thr" / f"{p.key}.png") == _digest(tmp_path / "seq" / f"{p.key}.png")
+        want = _digest(tmp_path / "seq" / f"{p.key}.png")
+        assert _digest(tmp_path / "procs" / f"{p.key}.png") == want, p.key
+        assert _digest(tmp_path / "thread" / f"{p.key}.png") == want, p.key
 
 
 def test_errors_of_a_png_job_reach_the_caller():

@@ -5,8 +5,8 @@ This is the only place (with :mod:`.outdir`) that writes files.  It takes a list
 """
 from __future__ import annotations
 
+import contextlib
 import re
-import threading
 import time
 import warnings
 from pathlib import Path
@@ -19,7 +19,7 @@ from kinemap.io.manifest import build_manifest, write_json
 from kinemap.io.outdir import StagedOutput, writing_into
 from kinemap.parallel.store import any_finite
 
-__all__ = ["write_products", "write_results", "empty_products", "warm_up_plots"]
+__all__ = ["write_products", "write_results", "empty_products", "drawing_processes"]
 
 
 def _has_finite(p) -> bool | None:
@@ -170,23 +170,83 @@ def _write_product(folder, meta, p, options, center, png, figure_list) -> dict:
                                 wcs=p.wcs)
         write_fits(folder / name, arr, header)
         if png.enabled and p.plot and arr.ndim == 2:
-            png.submit(_map_png, arr, meta, p, center, folder / f"{p.key}.png")
+            png.submit_map(arr, meta, p, center, folder / f"{p.key}.png")
             figure_list[p.key] = {"path": f"{p.key}.png", "description": p.description}
     return {"path": name, "unit": p.unit, "description": p.description}
 
 
-_WARM_UP = None  # the thread started by warm_up_plots, joined before the first PNG
+_DRAWING = None  # the map-drawing processes started by drawing_processes, if any
 
 
-def warm_up_plots():
-    """Import the plotting stack and build matplotlib's mathtext parser on a background
-    thread, so that cost (about a second) overlaps the computing stages, whose compiled
-    kernels and reads release the GIL.  Call at the start of a run that will draw PNGs;
-    the writer waits for it before its first PNG (mathtext's parser is not thread-safe)."""
-    global _WARM_UP
-    if _WARM_UP is None:
-        _WARM_UP = threading.Thread(target=_warm, name="kinemap-plot-warm-up", daemon=True)
-        _WARM_UP.start()
+@contextlib.contextmanager
+def drawing_processes(enabled: bool = True):
+    """Map-drawing processes for the PNGs of the run inside the block.
+
+    Drawing is Python and holds the GIL, so a thread of the run's process overlaps it
+    with little (and the plotting stack's import, about a second, slowed the computing
+    stages as much as it gained).  Where processes can be forked (Linux) and there is
+    more than one core, one process per core (up to MAX_PROCESSES) is forked here, before
+    the stages run: each imports the plotting stack while the run computes, and the
+    writer sends them the map PNGs (the map, reduced to a picture's worth of pixels, and
+    a picklable MapFrame).  A map's PNG does not depend on where it is drawn.  Elsewhere
+    (and for the stages' own figures, matplotlib objects of this process) a thread draws.
+    The processes end with the block.
+    """
+    global _DRAWING
+    pool = _start_drawing() if enabled and _DRAWING is None else None
+    if pool is None:
+        yield
+        return
+    _DRAWING = pool
+    try:
+        yield
+    finally:
+        _DRAWING = None
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+MAX_PROCESSES = 4
+
+
+def _start_drawing():
+    import multiprocessing
+    import os
+    import sys
+
+    n = min(MAX_PROCESSES, os.cpu_count() or 1)
+    if n < 2 or not sys.platform.startswith("linux"):
+        return None
+    from concurrent.futures import ProcessPoolExecutor
+
+    try:
+        with warnings.catch_warnings():
+            # Python 3.12+ notes that a forked child of a process with threads may
+            # deadlock on a lock another thread held; these only import and draw
+            warnings.simplefilter("ignore", DeprecationWarning)
+            pool = ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("fork"),
+                                       initializer=_drawing_process, initargs=(os.getpid(),))
+            pool.submit(int)  # forks the processes now, so they import beside the stages
+    except (OSError, ValueError):
+        return None
+    return pool
+
+
+def _drawing_process(parent: int):
+    """Start of a map-drawing process: it dies with the run's process (a killed run must
+    not leave processes holding its output folder's lock and its pipes), leaves Ctrl-C to
+    the run (which stops it), and imports the plotting stack."""
+    import ctypes
+    import os
+    import signal
+
+    try:  # Linux: SIGKILL when the process that forked this one ends (PR_SET_PDEATHSIG)
+        ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL), 0, 0, 0)
+    except (OSError, AttributeError):
+        pass
+    if os.getppid() != parent:  # it ended before that was set
+        os._exit(0)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    _warm()
 
 
 def _warm():
@@ -203,13 +263,10 @@ def _warm():
         pass
 
 
-def _map_png(arr, meta, product, center, path):
-    from kinemap.plotting._display import display_map
+def _map_png(arr, frame, title, unit, kind, center, path):
     from kinemap.plotting.maps import save_map
 
-    arr, meta = display_map(arr, meta, product.kind)  # a picture's worth of pixels
-    save_map(path, arr, meta, title=product.description, unit=product.unit, kind=product.kind,
-             center=center)
+    save_map(path, arr, frame, title=title, unit=unit, kind=kind, center=center)
 
 
 def _figure_png(fig, path):
@@ -219,15 +276,15 @@ def _figure_png(fig, path):
 
 
 class _PngWriter:
-    """Draws and saves PNGs on a worker thread while the caller goes on writing FITS files.
+    """Draws and saves PNGs beside the caller's FITS writes.
 
-    Each job draws its own matplotlib Figure with the object API on an Agg canvas (no
-    pyplot state), which matplotlib supports on any thread (fonts are cached per thread);
-    the PNGs are byte for byte those drawn one after the other.  FITS writes and PNG
-    compression release the GIL, so the thread overlaps them with drawing.  One thread
+    Map PNGs go to the drawing processes of :func:`drawing_processes` when the run has
+    them, else, with the stages' own figures, to a worker thread.  Each job draws its own
+    Figure with the object API on an Agg canvas (no pyplot state), which matplotlib
+    supports on any thread; a map's PNG is the same wherever it is drawn.  One thread
     only: two drawing at once failed now and then in mathtext (the tick labels' degree
     signs), whose parser keeps global state.  Leaving the block waits for every PNG and
-    raises the first error.
+    raises the first error; a map whose process died is drawn again on the thread.
 
     Warnings: the PNG code's were always silenced; the warnings filter is global, not
     per thread, so all warnings of the block are recorded and, at its end, those not
@@ -245,9 +302,6 @@ class _PngWriter:
         if self.enabled:
             from concurrent.futures import ThreadPoolExecutor
 
-            if _WARM_UP is not None:
-                _WARM_UP.join()
-
             self._warnings = warnings.catch_warnings(record=True)
             self._caught = self._warnings.__enter__()
             warnings.simplefilter("always")
@@ -255,17 +309,41 @@ class _PngWriter:
         return self
 
     def submit(self, fn, *args):
-        self._jobs.append(self._pool.submit(fn, *args))
+        """Run ``fn(*args)`` on the thread."""
+        self._jobs.append((self._pool.submit(fn, *args), fn, args))
+
+    def submit_map(self, arr, meta, product, center, path):
+        """Draw the map ``arr`` of ``product`` into ``path`` (in a drawing process when
+        the run has them)."""
+        from concurrent.futures.process import BrokenProcessPool
+
+        from kinemap.plotting._display import MapFrame, display_map
+
+        arr, shown = display_map(arr, meta, product.kind)  # a picture's worth of pixels
+        args = (np.asarray(arr), MapFrame.of(shown), product.description, product.unit,
+                product.kind, center, path)
+        if _DRAWING is not None:
+            try:
+                self._jobs.append((_DRAWING.submit(_map_png, *args), _map_png, args))
+                return
+            except (BrokenProcessPool, RuntimeError):
+                pass
+        self.submit(_map_png, *args)
 
     def __exit__(self, *exc):
         if self._pool is None:
             return False
+        from concurrent.futures.process import BrokenProcessPool
+
         try:
-            for job in self._jobs:
-                if exc[0] is None:
-                    job.result()
-                else:
+            for job, fn, args in self._jobs:
+                if exc[0] is not None:
                     job.cancel()
+                    continue
+                try:
+                    job.result()
+                except BrokenProcessPool:
+                    self._pool.submit(fn, *args).result()
         finally:
             self._pool.shutdown(wait=True)
             self._warnings.__exit__(None, None, None)

@@ -20,7 +20,7 @@ from kinemap.io.outdir import StagedOutput, writing_into
 from kinemap.parallel.store import on_disk, scratch_folder
 from kinemap.io.reader import read_cube
 from kinemap.io.subset import select_channels
-from kinemap.io.writer import warm_up_plots, write_results
+from kinemap.io.writer import drawing_processes, write_results
 from kinemap.maps.continuum import line_window_range, subtract_continuum
 from kinemap.maps.masks import make_mask
 from kinemap.maps.moments import compute_moments, noise_and_moments
@@ -391,9 +391,9 @@ def run_config(cfg: dict, *, stage_dir=None) -> RunState:
     staged = contextlib.nullcontext(None)
     if stage_dir is None:
         staged = StagedOutput(out["dir"], overwrite=out["overwrite"], inputs=input_paths(cfg))
-    if out["plots"]:
-        warm_up_plots()  # imports matplotlib beside the computing stages
-    with staged as stage, scratch_folder(stage.path if stage is not None else stage_dir):
+    # map PNGs are drawn in processes that import matplotlib beside the computing stages
+    with staged as stage, scratch_folder(stage.path if stage is not None else stage_dir), \
+            drawing_processes(out["plots"]):
         # maps too large for the memory bound go to (deleted) files beside the products
         with open_client(scheduler=cfg["run"]["scheduler"],
                          workers=cfg["run"]["workers"]) as client:

@@ -12,13 +12,13 @@ pixel; the map is read a band at a time, so a map kept on disk is never wholly i
 from __future__ import annotations
 
 import warnings
-from dataclasses import replace
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from kinemap.parallel import store
 
-__all__ = ["display_map", "MAX_SIDE"]
+__all__ = ["display_map", "MapFrame", "MAX_SIDE"]
 
 MAX_SIDE = 1024  # pixels on the longer side of a map as drawn (the axes are ~700 wide)
 _CATEGORIES = ("status", "mask", "count")
@@ -47,3 +47,19 @@ def display_map(data, meta, kind: str, *, max_side: int = MAX_SIDE):
         out[i0:i0 + small.shape[0]] = small
     wcs = meta.wcs.slice((slice(None, None, f), slice(None, None, f)))
     return out, replace(meta, wcs=wcs)
+
+
+@dataclass(frozen=True)
+class MapFrame:
+    """What a map's picture takes from the cube's metadata: the celestial WCS, the beam
+    and the pixel scale.  Unlike the metadata (which may hold an open file), it pickles,
+    so a map can be drawn in another process."""
+
+    wcs: object
+    beam: object = None
+    pixel_scale_arcsec: float | None = None
+
+    @classmethod
+    def of(cls, meta) -> "MapFrame":
+        return cls(meta.wcs, getattr(meta, "beam", None),
+                   getattr(meta, "pixel_scale_arcsec", None))
