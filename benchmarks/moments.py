@@ -10,6 +10,7 @@ write their maps to FITS:
                  does not look for a continuum either)
   kinemap with its default PNGs (eleven map plots), for the plot overhead
   kinemap with the default continuum check (--continuum auto), once, for information
+  kinemap as a user types it (smooth mask, continuum auto, PNGs), once, for information
 The ratios printed are spectral-cube time / kinemap time (FITS only) and the plots' extra
 time / the FITS-only time, from the best of --repeat runs; each time is printed with the
 1-minute load average read before it (the machine may be shared).
@@ -47,12 +48,22 @@ def load() -> str:
     return "load " + " ".join(f"{x:.2f}" for x in os.getloadavg())
 
 
-def timed(cmd):
+CPU = {}  # command name -> CPU seconds (user + system, the process and its children) of each run
+
+
+def timed(cmd, name=None):
+    """Wall time of ``cmd``; its CPU time (with its own child processes) goes to CPU[name]."""
+    import resource
+
+    r0 = resource.getrusage(resource.RUSAGE_CHILDREN)
     t0 = time.perf_counter()
     p = subprocess.run(cmd, capture_output=True, text=True)
     dt = time.perf_counter() - t0
+    r1 = resource.getrusage(resource.RUSAGE_CHILDREN)
     if p.returncode:
         sys.exit(f"failed: {' '.join(cmd)}\n{p.stderr}")
+    if name:
+        CPU.setdefault(name, []).append((r1.ru_utime - r0.ru_utime) + (r1.ru_stime - r0.ru_stime))
     return dt
 
 
@@ -116,9 +127,9 @@ def main():
         print(f"cube {args.size} x {args.size} x {args.nchan} ({mb:.0f} MB)")
         km = os.path.join(bindir, "kinemap")
 
-        def kinemap(i, *extra):
-            return timed([km, "maps", cube, "--no-mask", "--no-progress", "--out",
-                          os.path.join(tmp, f"km{i}-{len(extra)}"), *extra])
+        def kinemap(i, *extra, name=None, mask=("--no-mask",)):
+            return timed([km, "maps", cube, *mask, "--no-progress", "--out",
+                          os.path.join(tmp, f"km{i}-{len(extra)}"), *extra], name)
 
         times = {"spectral-cube": [], "kinemap FITS only": [], "kinemap with PNGs": []}
         for i in range(args.repeat):
@@ -126,20 +137,28 @@ def main():
             os.mkdir(out)
             for name, run in (
                     ("spectral-cube", lambda: timed([sys.executable, "-c", SPECTRAL_CUBE, cube, out])),
-                    ("kinemap FITS only", lambda: kinemap(i, "--no-plots", "--continuum", "none")),
-                    ("kinemap with PNGs", lambda: kinemap(i, "--continuum", "none"))):
+                    ("kinemap FITS only", lambda: kinemap(i, "--no-plots", "--continuum", "none",
+                                                          name="fits")),
+                    ("kinemap with PNGs", lambda: kinemap(i, "--continuum", "none", name="png"))):
                 la = load()
                 times[name].append(run())
                 print(f"{name:20s} {times[name][-1]:6.2f} s ({la})")
         la = load()
         auto = kinemap("auto", "--no-plots", "--continuum", "auto")
         print(f"{'kinemap FITS only, --continuum auto':20s} {auto:6.2f} s ({la})")
+        la = load()
+        default = kinemap("default", mask=())
+        print(f"{'kinemap default (smooth mask, continuum auto, PNGs)':20s} {default:6.2f} s ({la})")
         sc, fits_only, pngs = (min(times[k]) for k in times)
         print(f"best of {args.repeat}: spectral-cube {sc:.2f} s, kinemap FITS only {fits_only:.2f} s, "
               f"with PNGs {pngs:.2f} s")
         print(f"speed-up (spectral-cube / kinemap FITS only): {sc / fits_only:.1f}x (aim: 5x)")
         print(f"plot overhead (with PNGs - FITS only) / FITS only: "
               f"{(pngs - fits_only) / fits_only:.2f} (aim: at most 0.5)")
+        cf, cp = min(CPU["fits"]), min(CPU["png"])
+        print(f"CPU time (user + system, with child processes), best of {args.repeat}: FITS only "
+              f"{cf:.2f} s, with PNGs {cp:.2f} s: the PNGs cost {cp - cf:.2f} s of CPU, "
+              f"{(cp - cf) / cf:.2f}x the FITS-only run's")
         if args.per_plot:
             per_plot(cube)
 
