@@ -38,6 +38,7 @@ def _draw_all(folder, meta, prods, processes):
     with writer.drawing_processes(processes), _PngWriter(True) as png:
         if processes and os.cpu_count() > 1 and sys.platform.startswith("linux"):
             assert writer._DRAWING is not None
+        writer.prepare_maps(meta, (40, 36))  # a map laid out ahead: changes no file
         for p in prods:
             png.submit_map(np.asarray(p.data), meta, p, None, folder / f"{p.key}.png")
     assert writer._DRAWING is None  # the processes end with their block

@@ -19,7 +19,8 @@ from kinemap.io.manifest import build_manifest, write_json
 from kinemap.io.outdir import StagedOutput, writing_into
 from kinemap.parallel.store import any_finite
 
-__all__ = ["write_products", "write_results", "empty_products", "drawing_processes"]
+__all__ = ["write_products", "write_results", "empty_products", "drawing_processes",
+           "prepare_maps"]
 
 
 def _has_finite(p) -> bool | None:
@@ -176,6 +177,7 @@ def _write_product(folder, meta, p, options, center, png, figure_list) -> dict:
 
 
 _DRAWING = None  # the map-drawing processes started by drawing_processes, if any
+_DRAWING_COUNT = 0  # how many
 
 
 @contextlib.contextmanager
@@ -192,16 +194,16 @@ def drawing_processes(enabled: bool = True):
     (and for the stages' own figures, matplotlib objects of this process) a thread draws.
     The processes end with the block.
     """
-    global _DRAWING
-    pool = _start_drawing() if enabled and _DRAWING is None else None
+    global _DRAWING, _DRAWING_COUNT
+    pool, n = _start_drawing() if enabled and _DRAWING is None else (None, 0)
     if pool is None:
         yield
         return
-    _DRAWING = pool
+    _DRAWING, _DRAWING_COUNT = pool, n
     try:
         yield
     finally:
-        _DRAWING = None
+        _DRAWING, _DRAWING_COUNT = None, 0
         pool.shutdown(wait=True, cancel_futures=True)
 
 
@@ -215,7 +217,7 @@ def _start_drawing():
 
     n = min(MAX_PROCESSES, os.cpu_count() or 1)
     if n < 2 or not sys.platform.startswith("linux"):
-        return None
+        return None, 0
     from concurrent.futures import ProcessPoolExecutor
 
     try:
@@ -227,8 +229,8 @@ def _start_drawing():
                                        initializer=_drawing_process, initargs=(os.getpid(),))
             pool.submit(int)  # forks the processes now, so they import beside the stages
     except (OSError, ValueError):
-        return None
-    return pool
+        return None, 0
+    return pool, n
 
 
 def _drawing_process(parent: int):
@@ -261,6 +263,29 @@ def _warm():
         MathTextParser("agg").parse(r"$10^\circ15^\prime$", dpi=120, prop=FontProperties())
     except Exception:  # noqa: BLE001 - only a head start: the PNG jobs import for real
         pass
+
+
+def prepare_maps(meta, shape) -> None:
+    """Have the drawing processes lay out a map of ``shape`` on the cube's frame now (the
+    layout's measurement, the figure they keep, the frame's picture: the first map's
+    extra cost), while the stages compute.  Best effort: a process that misses it does
+    that at its first map.  Nothing happens without drawing processes."""
+    if _DRAWING is None:
+        return
+    from kinemap.plotting._display import display_frame
+
+    shown, frame = display_frame(tuple(shape), meta)
+    for _ in range(_DRAWING_COUNT):
+        _DRAWING.submit(_prepare_map, shown, frame)
+
+
+def _prepare_map(shape, frame):
+    import io
+
+    from kinemap.plotting.maps import save_map
+
+    ramp = np.linspace(0.0, 1.0, shape[0] * shape[1]).reshape(shape)  # not a constant map
+    save_map(io.BytesIO(), ramp, frame, title="map", unit="km/s", kind="intensity")
 
 
 def _map_png(arr, frame, title, unit, kind, center, path):

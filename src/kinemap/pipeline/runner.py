@@ -20,7 +20,7 @@ from kinemap.io.outdir import StagedOutput, writing_into
 from kinemap.parallel.store import on_disk, scratch_folder
 from kinemap.io.reader import read_cube
 from kinemap.io.subset import select_channels
-from kinemap.io.writer import drawing_processes, write_results
+from kinemap.io.writer import drawing_processes, prepare_maps, write_results
 from kinemap.maps.continuum import line_window_range, subtract_continuum
 from kinemap.maps.masks import make_mask
 from kinemap.maps.moments import compute_moments, noise_and_moments
@@ -77,6 +77,7 @@ def prepare(cfg: dict, state: RunState | None = None) -> RunState:
     shared first stages); later stages see the continuum-subtracted cube."""
     state = state or RunState(config=cfg)
     state.cube = _timed(state, "read", read_cube, cfg["input"]["cube"], **ad.read_kwargs(cfg))
+    prepare_maps(state.cube.meta, state.cube.shape[1:])  # the PNGs' layout, while we compute
     continuum = _timed(state, "continuum", subtract_continuum, state.cube,
                        **ad.continuum_kwargs(cfg), **state.blocks)
     state.results["continuum"] = continuum  # its products are empty when nothing was removed

@@ -18,17 +18,30 @@ import numpy as np
 
 from kinemap.parallel import store
 
-__all__ = ["display_map", "MapFrame", "MAX_SIDE"]
+__all__ = ["display_map", "display_frame", "MapFrame", "MAX_SIDE"]
 
 MAX_SIDE = 1024  # pixels on the longer side of a map as drawn (the axes are ~700 wide)
 _CATEGORIES = ("status", "mask", "count")
+
+
+def _factor(shape, max_side: int) -> int:
+    return -(-max(shape) // max_side)
+
+
+def display_frame(shape, meta, *, max_side: int = MAX_SIDE):
+    """``(shape, MapFrame)`` of a map of ``shape`` as :func:`display_map` draws it."""
+    f = _factor(shape, max_side)
+    if f <= 1:
+        return tuple(shape), MapFrame.of(meta)
+    wcs = meta.wcs.slice((slice(None, None, f), slice(None, None, f)))
+    return (-(-shape[0] // f), -(-shape[1] // f)), MapFrame.of(replace(meta, wcs=wcs))
 
 
 def display_map(data, meta, kind: str, *, max_side: int = MAX_SIDE):
     """``(map, meta)`` to draw: ``data`` and ``meta`` themselves when the map is at most
     ``max_side`` pixels on a side, else the block-reduced map and a meta with its WCS."""
     ny, nx = np.shape(data)
-    f = -(-max(ny, nx) // max_side)
+    f = _factor((ny, nx), max_side)
     if f <= 1 or meta is None:
         return data, meta
     my, mx = -(-ny // f), -(-nx // f)
