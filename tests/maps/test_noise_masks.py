@@ -146,3 +146,21 @@ def test_smooth_mask_matches_scipy_ndimage_in_small_blocks(tmp_path, beam, nbox)
                              s["min_channels"])
     assert ref.sum() > 500                       # the source is found ...
     np.testing.assert_array_equal(m.mask, ref)   # ... and it is the same mask
+
+
+def test_smooth_mask_of_the_real_cube_matches_scipy_ndimage(real_cube_path):
+    """Open data (the 13CO cube in ../shared/data) against the reference library: the
+    block-wise smooth mask is scipy.ndimage's whole-cube smooth-and-mask, voxel for voxel."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        cube = read_cube(real_cube_path)
+    noise = estimate_noise(cube)
+    m = make_mask(cube, noise=noise, method="smooth")
+    s = m.settings
+    sigma = np.where(np.isfinite(noise.sigma), noise.sigma, np.nanmedian(noise.sigma))
+    ref = _scipy_smooth_mask(np.asarray(cube.data, dtype=np.float32), sigma,
+                             s["smoothed_noise_factor"], s["smooth_fwhm_pixels"] / 2.354820045,
+                             s["smooth_channels"], s["threshold"], s["grow_threshold"],
+                             s["min_pixels"], s["min_channels"])
+    assert ref.sum() > 100000
+    np.testing.assert_array_equal(m.mask, ref)
