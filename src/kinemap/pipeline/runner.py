@@ -393,8 +393,10 @@ def run_config(cfg: dict, *, stage_dir=None) -> RunState:
     if stage_dir is None:
         staged = StagedOutput(out["dir"], overwrite=out["overwrite"], inputs=input_paths(cfg))
     # map PNGs are drawn in processes that import matplotlib beside the computing stages
+    # (spectra, cuts and channel pages make no map PNGs: their figures are drawn here)
+    maps = out["plots"] and not only_extracts(cfg.get("_sections", ()))
     with staged as stage, scratch_folder(stage.path if stage is not None else stage_dir), \
-            drawing_processes(out["plots"]):
+            drawing_processes(maps):
         # maps too large for the memory bound go to (deleted) files beside the products
         with open_client(scheduler=cfg["run"]["scheduler"],
                          workers=cfg["run"]["workers"]) as client:
