@@ -78,3 +78,28 @@ def test_other_warnings_are_issued_again_plotting_ones_are_not():
                                    "/x/site-packages/matplotlib/axis.py", 10)
     assert [str(w.message) for w in record] == ["header card too long"]
 
+
+
+_TEST_PROCESS, _DRAW = os.getpid(), writer._map_png
+
+
+def _dies_in_a_drawing_process(*args):
+    if os.getpid() != _TEST_PROCESS:
+        os._exit(1)
+    _DRAW(*args)
+
+
+@pytest.mark.skipif(not (sys.platform.startswith("linux") and (os.cpu_count() or 1) > 1),
+                    reason="drawing processes are forked on Linux with more than one core")
+def test_maps_of_a_dead_drawing_process_are_drawn_on_the_thread(tmp_path, monkeypatch):
+    """A drawing process that dies (killed, out of memory) loses no PNG: its maps are
+    drawn again on the writer's thread, the same files."""
+    meta, prods = _products(tmp_path)
+    monkeypatch.setattr(writer, "_map_png", _dies_in_a_drawing_process)  # forked with it
+    _draw_all(tmp_path / "procs", meta, prods, True)
+    (tmp_path / "seq").mkdir()
+    for p in prods:
+        save_map(tmp_path / "seq" / f"{p.key}.png", np.asarray(p.data), meta,
+                 title=p.description, unit=p.unit, kind=p.kind)
+        assert (_digest(tmp_path / "procs" / f"{p.key}.png")
+                == _digest(tmp_path / "seq" / f"{p.key}.png")), p.key
