@@ -155,6 +155,12 @@ def main():
         print(f"speed-up (spectral-cube / kinemap FITS only): {sc / fits_only:.1f}x (aim: 5x)")
         print(f"plot overhead (with PNGs - FITS only) / FITS only: "
               f"{(pngs - fits_only) / fits_only:.2f} (aim: at most 0.5)")
+        import statistics
+
+        mf, mp = (statistics.median(times[k]) for k in ("kinemap FITS only", "kinemap with PNGs"))
+        print(f"medians of {args.repeat} (steadier on a shared machine): FITS only {mf:.2f} s, "
+              f"with PNGs {mp:.2f} s, overhead {(mp - mf) / mf:.2f}; spectral-cube "
+              f"{statistics.median(times['spectral-cube']):.2f} s")
         cf, cp = min(CPU["fits"]), min(CPU["png"])
         print(f"CPU time (user + system, with child processes), best of {args.repeat}: FITS only "
               f"{cf:.2f} s, with PNGs {cp:.2f} s: the PNGs cost {cp - cf:.2f} s of CPU, "

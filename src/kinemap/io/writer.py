@@ -187,8 +187,8 @@ def drawing_processes(enabled: bool = True):
     Drawing is Python and holds the GIL, so a thread of the run's process overlaps it
     with little (and the plotting stack's import, about a second, slowed the computing
     stages as much as it gained).  Where processes can be forked (Linux) and there is
-    more than one core, one process per core (up to MAX_PROCESSES) is forked here, before
-    the stages run: each imports the plotting stack while the run computes, and the
+    more than one core, one process per core but one (up to MAX_PROCESSES) is forked here,
+    before the stages run: each imports the plotting stack while the run computes, and the
     writer sends them the map PNGs (the map, reduced to a picture's worth of pixels, and
     a picklable MapFrame).  A map's PNG does not depend on where it is drawn.  Elsewhere
     (and for the stages' own figures, matplotlib objects of this process) a thread draws.
@@ -215,8 +215,10 @@ def _start_drawing():
     import os
     import sys
 
-    n = min(MAX_PROCESSES, os.cpu_count() or 1)
-    if n < 2 or not sys.platform.startswith("linux"):
+    # one core stays with the run: on 2 cores one drawing process beat two (2.65 against
+    # 2.85 s, best of 6; two slowed the stages with their imports) and a thread (3.31 s)
+    n = min(MAX_PROCESSES, (os.cpu_count() or 1) - 1)
+    if n < 1 or not sys.platform.startswith("linux"):
         return None, 0
     from concurrent.futures import ProcessPoolExecutor
 
