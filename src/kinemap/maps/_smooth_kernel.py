@@ -82,11 +82,11 @@ def smooth_flags(block, top, weights, nbox, scale, seed, grow, flags):
                 snr = np.float64(np.float32(acc[x] * inv)) / s[x]
                 f = np.uint8(0)
                 if snr > grow:
-                    f |= np.uint8(1)
+                    f |= GROW
                 if snr > seed:
-                    f |= np.uint8(2)
+                    f |= SEED
                 if np.isfinite(raw[x]):
-                    f |= np.uint8(4)
+                    f |= FINITE
                 dst[x] = f
     return flags
 
@@ -111,7 +111,7 @@ def island_boxes(labels, flags, nlab):
                 k = row[x]
                 if k == 0:
                     continue
-                if frow[x] & 2:
+                if frow[x] & SEED:
                     seeded[k] = True
                 b = box[k]
                 if c < b[0]:

@@ -17,7 +17,7 @@ from kinemap.maps._smooth_kernel import FINITE, GROW, SEED, island_boxes, smooth
 from kinemap.parallel.blocks import block_rows, read_rows
 from kinemap.spectral.response import variance_of_sum
 
-__all__ = ["BYTES_PER_VOXEL", "gaussian_weights", "smooth_mask"]
+__all__ = ["BYTES_PER_VOXEL", "gaussian_weights", "noise_factor", "smooth_mask"]
 
 # whole-cube arrays: flags (1) + a boolean region (1) + labels (int32, 4) + the mask (1)
 BYTES_PER_VOXEL = 7

@@ -24,27 +24,29 @@ MAX_SIDE = 1024  # pixels on the longer side of a map as drawn (the axes are ~70
 _CATEGORIES = ("status", "mask", "count")
 
 
-def _factor(shape, max_side: int) -> int:
-    return -(-max(shape) // max_side)
+def _reduction(shape, meta, max_side: int):
+    """(f, shape, meta) of a map of ``shape`` reduced by blocks of f x f pixels to at most
+    ``max_side`` on a side (f = 1: the map and ``meta`` as they are)."""
+    f = -(-max(shape) // max_side)
+    if f <= 1 or meta is None:
+        return 1, tuple(shape), meta
+    wcs = meta.wcs.slice((slice(None, None, f), slice(None, None, f)))
+    return f, (-(-shape[0] // f), -(-shape[1] // f)), replace(meta, wcs=wcs)
 
 
 def display_frame(shape, meta, *, max_side: int = MAX_SIDE):
     """``(shape, MapFrame)`` of a map of ``shape`` as :func:`display_map` draws it."""
-    f = _factor(shape, max_side)
-    if f <= 1:
-        return tuple(shape), MapFrame.of(meta)
-    wcs = meta.wcs.slice((slice(None, None, f), slice(None, None, f)))
-    return (-(-shape[0] // f), -(-shape[1] // f)), MapFrame.of(replace(meta, wcs=wcs))
+    _, shown, reduced = _reduction(tuple(shape), meta, max_side)
+    return shown, MapFrame.of(reduced)
 
 
 def display_map(data, meta, kind: str, *, max_side: int = MAX_SIDE):
     """``(map, meta)`` to draw: ``data`` and ``meta`` themselves when the map is at most
     ``max_side`` pixels on a side, else the block-reduced map and a meta with its WCS."""
     ny, nx = np.shape(data)
-    f = _factor((ny, nx), max_side)
-    if f <= 1 or meta is None:
+    f, (my, mx), reduced = _reduction((ny, nx), meta, max_side)
+    if f <= 1:
         return data, meta
-    my, mx = -(-ny // f), -(-nx // f)
     out = np.empty((my, mx), dtype=np.float64 if kind not in _CATEGORIES else data.dtype)
     for ys, band in store.bands(data, axis=0, multiple=f):
         i0 = ys.start // f
@@ -58,8 +60,7 @@ def display_map(data, meta, kind: str, *, max_side: int = MAX_SIDE):
                 warnings.simplefilter("ignore", RuntimeWarning)  # blocks with no value: NaN
                 small = np.nanmean(padded.reshape(-1, f, mx, f), axis=(1, 3))
         out[i0:i0 + small.shape[0]] = small
-    wcs = meta.wcs.slice((slice(None, None, f), slice(None, None, f)))
-    return out, replace(meta, wcs=wcs)
+    return out, reduced
 
 
 @dataclass(frozen=True)
