@@ -28,13 +28,9 @@ import time
 import numpy as np
 
 sys.path.insert(0, os.path.dirname(__file__))
-from _cubes import write_line_cube  # noqa: E402
+from _cubes import load, write_line_cube  # noqa: E402
 
 CHUNK = 64 << 20
-
-
-def load() -> str:
-    return "load " + " ".join(f"{x:.2f}" for x in os.getloadavg())
 
 
 def read_pass(path) -> float:

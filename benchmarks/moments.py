@@ -28,7 +28,7 @@ import tempfile
 import time
 
 sys.path.insert(0, os.path.dirname(__file__))
-from _cubes import write_line_cube  # noqa: E402
+from _cubes import load, write_line_cube  # noqa: E402
 
 SPECTRAL_CUBE = r"""
 import sys, warnings
@@ -42,10 +42,6 @@ cube.moment0().write(out + "/m0.fits", overwrite=True)
 cube.moment1().write(out + "/m1.fits", overwrite=True)
 cube.linewidth_sigma().write(out + "/m2.fits", overwrite=True)
 """
-
-
-def load() -> str:
-    return "load " + " ".join(f"{x:.2f}" for x in os.getloadavg())
 
 
 CPU = {}  # command name -> CPU seconds (user + system, the process and its children) of each run

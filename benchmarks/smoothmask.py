@@ -20,7 +20,7 @@ import sys
 import tempfile
 
 sys.path.insert(0, os.path.dirname(__file__))
-from _cubes import write_line_cube  # noqa: E402
+from _cubes import load, write_line_cube  # noqa: E402
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
@@ -43,10 +43,6 @@ dt = time.perf_counter() - t
 np.save(out_path, np.packbits(m.mask))
 print(dt, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, int(m.mask.sum()))
 """
-
-
-def load() -> str:
-    return "load " + " ".join(f"{x:.2f}" for x in os.getloadavg())
 
 
 def main():
